@@ -143,7 +143,7 @@ def parse_utc(text: Any, *, file: Path | str | None = None, key: str | None = No
 
     if isinstance(text, _dt.datetime):
         if text.tzinfo is not None:
-            text = text.astimezone(_dt.timezone.utc).replace(tzinfo=None)
+            text = text.astimezone(_dt.UTC).replace(tzinfo=None)
         return np.datetime64(text, "ns")
     if isinstance(text, _dt.date):
         return np.datetime64(text, "ns")
@@ -430,7 +430,7 @@ def load_mission(path: str | Path) -> Mission:
     else:
         mode = est_r.string("mode", ESTIMATOR_MODES, "auto")
         overrides = {}
-        for k, v in est_r.table.items():
+        for k in est_r.table:
             if k == "mode":
                 continue
             overrides[k] = est_r.number(k, nonnegative=True)

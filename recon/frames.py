@@ -32,7 +32,7 @@ import erfa
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from .constants import WGS84_A_km, WGS84_F
+from .constants import WGS84_F, WGS84_A_km
 
 __all__ = [
     "rotation_from_q", "q_from_rotation", "body_from_gcrf",
@@ -80,7 +80,12 @@ def utc_to_jd(time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def jd_tt(time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Two-part Julian date on the TT scale, via pyerfa's leap-second table."""
     u1, u2 = utc_to_jd(time_utc)
-    a1, a2 = erfa.utctai(u1, u2)
+    # erfa's UTC quasi-JD counts a leap-second day as 86401 s: rescale the fraction on such days
+    # (datetime64 has no 23:59:60, so the fraction above is always seconds / 86400)
+    iy, im, iday, _ = erfa.jd2cal(u1, 0.0)
+    ny, nm, nday, _ = erfa.jd2cal(u1 + 1.0, 0.0)
+    day_s = 86400.0 + (erfa.dat(ny, nm, nday, 0.0) - erfa.dat(iy, im, iday, 0.0))
+    a1, a2 = erfa.utctai(u1, u2 * (86400.0 / day_s))
     return a1, a2 + TT_MINUS_TAI_s / 86400.0
 
 
