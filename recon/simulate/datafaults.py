@@ -1,0 +1,161 @@
+"""Injecting data faults into a log's lines, with a ledger of each one's kind and 1-based line number.
+
+The header is line 1. Kinds:
+
+- ``gap``: a run of rows removed; recorded at the line of the first row after the hole, with the
+  number of rows removed and the times of the first and last missing sample;
+- ``duplicate``: a row written twice; recorded at the second copy, with ``of_line``;
+- ``out_of_order``: two neighbouring rows swapped; recorded at the row whose time is earlier than the
+  line before it, with ``swapped_with_line``;
+- ``spike``: a large offset added to one value; recorded with the column and the offset (file units);
+- ``blank_line``: an empty line inserted;
+- ``malformed``: a row replaced by one with a field missing, an extra field or a non-numeric value;
+- ``saturation``: a run of rows whose value in one column is set to the sensor's full scale; one
+  record per line.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+
+from .scenarios import DATA_FAULT_KINDS
+
+__all__ = ["inject"]
+
+_RUN = {"gap": (3, 12), "saturation": (4, 8)}  # rows per run, inclusive range
+_MALFORMED = ("missing_field", "extra_field", "non_numeric")
+
+
+def _positions(n_rows: int, n_faults: int, rng: np.random.Generator, keep_out: list[int]) -> np.ndarray:
+    """One start row per fault: one per equal block of the file, away from its ends and ``keep_out``."""
+    lo, hi = 10, n_rows - 20
+    if n_faults == 0:
+        return np.zeros(0, int)
+    if hi - lo < 30 * n_faults:
+        raise ValueError(f"a log of {n_rows} rows is too short for {n_faults} data faults")
+    edges = np.linspace(lo, hi, n_faults + 1).astype(int)
+    out = []
+    for a, b in zip(edges[:-1], edges[1:], strict=True):
+        allowed = np.array([r for r in range(a + 2, b - 15) if all(abs(r - x) > 20 for x in keep_out)])
+        if len(allowed) == 0:
+            allowed = np.arange(a + 2, b - 15)
+        out.append(int(rng.choice(allowed)))
+    return np.asarray(out)
+
+
+def inject(file_name: str, header: str, times: list[str], values: np.ndarray, fmt: Callable,
+           plan: dict[str, int], rng: np.random.Generator, *, columns: tuple[str, ...],
+           full_scale: float | None = None, spike_size: float = 0.0, time_utc: np.ndarray | None = None,
+           keep_out: list[int] = ()) -> tuple[list[str], list[dict]]:
+    """Lines of one log file with the planned faults, and the ledger.
+
+    Parameters
+    ----------
+    file_name : str, for the ledger
+    header : str, line 1
+    times : list of str, the time field of each row (already formatted)
+    values : (N, 3) array, the values in file units
+    fmt : callable ``fmt(time_text, values_row) -> str`` making one line
+    plan : dict kind -> count
+    rng : numpy Generator
+    columns : the three value column names (for the ledger)
+    full_scale : float, the saturation value in file units
+    spike_size : float, offset of a spike in file units
+    time_utc : (N,) datetime64, the true instant of each row (for the ledger)
+    keep_out : rows near which no fault is placed (e.g. a counter rollover)
+
+    Returns
+    -------
+    lines : list of str (without newlines), header first
+    ledger : list of dict with ``file``, ``line``, ``kind`` and details
+    """
+    unknown = set(plan) - set(DATA_FAULT_KINDS)
+    if unknown:
+        raise ValueError(f"expected data fault kinds among {DATA_FAULT_KINDS}, got {sorted(unknown)}")
+    kinds = [k for k in DATA_FAULT_KINDS for _ in range(int(plan.get(k, 0)))]
+    order = rng.permutation(len(kinds))
+    kinds = [kinds[i] for i in order]
+    starts = _positions(len(times), len(kinds), rng, list(keep_out))
+    vals = np.array(values, dtype=float, copy=True)
+    action: dict[int, tuple] = {}
+    for kind, r in zip(kinds, starts, strict=True):
+        if kind == "gap":
+            action[r] = ("gap", int(rng.integers(_RUN["gap"][0], _RUN["gap"][1] + 1)))
+        elif kind == "saturation":
+            n, ax = int(rng.integers(_RUN["saturation"][0], _RUN["saturation"][1] + 1)), int(rng.integers(3))
+            sign = 1.0 if vals[r, ax] >= 0 else -1.0
+            vals[r:r + n, ax] = sign * full_scale
+            action[r] = ("saturation", n, ax, sign * full_scale)
+        elif kind == "spike":
+            ax = int(rng.integers(3))
+            off = spike_size * (1.0 if rng.random() < 0.5 else -1.0)
+            vals[r, ax] += off
+            action[r] = ("spike", ax, off)
+        elif kind == "malformed":
+            action[r] = ("malformed", _MALFORMED[int(rng.integers(len(_MALFORMED)))], int(rng.integers(3)))
+        else:
+            action[r] = (kind,)
+
+    def when(r: int) -> str | None:
+        return None if time_utc is None else str(np.datetime64(time_utc[r], "ms")) + "Z"
+
+    lines, ledger = [header], []
+    r = 0
+    while r < len(times):
+        a = action.get(r)
+        line = fmt(times[r], vals[r])
+        if a is None:
+            lines.append(line)
+            r += 1
+            continue
+        kind = a[0]
+        if kind == "gap":
+            n = a[1]
+            ledger.append({"file": file_name, "line": len(lines) + 1, "kind": "gap", "rows_removed": n,
+                           "first_missing_utc": when(r), "last_missing_utc": when(r + n - 1)})
+            r += n
+            continue
+        if kind == "duplicate":
+            lines.append(line)
+            lines.append(line)
+            ledger.append({"file": file_name, "line": len(lines), "kind": "duplicate", "of_line": len(lines) - 1,
+                           "time_utc": when(r)})
+        elif kind == "out_of_order":
+            lines.append(fmt(times[r + 1], vals[r + 1]))
+            lines.append(line)
+            ledger.append({"file": file_name, "line": len(lines), "kind": "out_of_order",
+                           "swapped_with_line": len(lines) - 1, "time_utc": when(r)})
+            r += 2
+            continue
+        elif kind == "spike":
+            lines.append(line)
+            ledger.append({"file": file_name, "line": len(lines), "kind": "spike", "column": columns[a[1]],
+                           "offset": a[2], "time_utc": when(r)})
+        elif kind == "blank_line":
+            lines.append("")
+            ledger.append({"file": file_name, "line": len(lines), "kind": "blank_line"})
+            lines.append(line)
+        elif kind == "malformed":
+            fields = line.split(",")
+            if a[1] == "missing_field":
+                bad = ",".join(fields[:-1])
+            elif a[1] == "extra_field":
+                bad = line + "," + fields[-1]
+            else:
+                fields[1 + a[2]] = "ERR"
+                bad = ",".join(fields)
+            lines.append(bad)
+            ledger.append({"file": file_name, "line": len(lines), "kind": "malformed", "detail": a[1],
+                           "time_utc": when(r)})
+        elif kind == "saturation":
+            n, ax, v = a[1], a[2], a[3]
+            for j in range(r, min(r + n, len(times))):
+                lines.append(fmt(times[j], vals[j]))
+                ledger.append({"file": file_name, "line": len(lines), "kind": "saturation",
+                               "column": columns[ax], "value": v, "time_utc": when(j)})
+            r += n
+            continue
+        r += 1
+    return lines, ledger

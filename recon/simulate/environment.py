@@ -1,0 +1,239 @@
+"""The simulated satellite's surroundings: its orbit (SGP4 from an invented TLE) and the magnetic field.
+
+The truth field is the IGRF-14 main field (ppigrf) plus an unmodelled smooth field of about 100 nT
+that stands for the crustal and external fields IGRF leaves out; recon is never told about the
+second part. Both are computed on a uniform time grid and carried between grid points by a cubic
+spline, whose node values and node derivatives feed the integrator's Hermite interpolation (a cubic
+spline *is* the piecewise cubic Hermite interpolant of its own node derivatives, so the integrator
+and the truth tables see exactly the same field).
+
+References
+----------
+Vallado, D. A., Crawford, P., Hujsak, R. and Kelso, T. S. (2006). Revisiting Spacetrack Report #3.
+AIAA 2006-6753 (SGP4 and the TEME frame).
+Alken, P. et al. (2025). International Geomagnetic Reference Field: the fourteenth generation.
+Earth, Planets and Space 77, 79.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from dataclasses import dataclass
+
+import numpy as np
+import ppigrf
+from scipy.interpolate import CubicSpline
+from sgp4.api import Satrec
+
+from ..errors import InputError
+from ..frames import itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
+
+__all__ = ["Environment", "tle_checksum", "format_tle", "invented_tle", "orbit_positions_km",
+           "igrf_gcrf_nT", "unmodelled_field_nT", "build_environment"]
+
+_NS_PER_S = 1_000_000_000
+
+
+def tle_checksum(line: str) -> int:
+    """Modulo-10 checksum of the first 68 characters of a TLE line (digits count, '-' counts 1).
+
+    References
+    ----------
+    Hoots, F. R. and Roehrich, R. L. (1980). Spacetrack Report No. 3, element set format.
+    """
+    return sum(int(c) if c.isdigit() else (1 if c == "-" else 0) for c in line[:68]) % 10
+
+
+def _exp_field(x: float) -> str:
+    """TLE 'assumed decimal point' field: 0.000061 -> ' 61000-4' (8 characters)."""
+    if x == 0.0:
+        return " 00000-0"
+    sign = "-" if x < 0 else " "
+    e = int(np.floor(np.log10(abs(x)))) + 1
+    mant = int(round(abs(x) / 10.0 ** e * 1e5))
+    if mant == 100000:
+        mant, e = 10000, e + 1
+    return f"{sign}{mant:05d}{'-' if e < 0 else '+'}{abs(e):d}"
+
+
+def format_tle(catalog: int, epoch_utc: np.datetime64, inclination_deg: float, raan_deg: float,
+               eccentricity: float, arg_perigee_deg: float, mean_anomaly_deg: float,
+               mean_motion_rev_day: float, bstar: float = 6.1e-5, ndot_rev_day2: float = 1.2e-5,
+               designator: str = "26001A", element_set: int = 999, rev_number: int = 2850) -> tuple[str, str]:
+    """Two TLE lines (with valid checksums) for the given mean elements.
+
+    Parameters
+    ----------
+    epoch_utc : datetime64
+        Element epoch (UTC); written as two-digit year and fractional day of year.
+    ndot_rev_day2 : float
+        First derivative of mean motion divided by two, rev/day^2, as the TLE stores it.
+    """
+    t = np.datetime64(epoch_utc, "ns")
+    year = int(str(t.astype("datetime64[Y]")))
+    jan1 = np.datetime64(f"{year}-01-01", "ns")
+    doy = 1.0 + (t - jan1).astype(np.int64) / (86400.0 * _NS_PER_S)
+    nd = f"{ndot_rev_day2:+.8f}".replace("+0.", " .").replace("-0.", "-.")
+    l1 = (f"1 {catalog:05d}U {designator:<8s} {year % 100:02d}{doy:012.8f} {nd} {_exp_field(0.0)} "
+          f"{_exp_field(bstar)} 0 {element_set:4d}")
+    ecc = f"{eccentricity:.7f}"[2:]
+    l2 = (f"2 {catalog:05d} {inclination_deg:8.4f} {raan_deg:8.4f} {ecc} {arg_perigee_deg:8.4f} "
+          f"{mean_anomaly_deg:8.4f} {mean_motion_rev_day:11.8f}{rev_number:5d}")
+    return l1 + str(tle_checksum(l1)), l2 + str(tle_checksum(l2))
+
+
+def invented_tle(epoch_utc: np.datetime64 | str = "2026-07-14T09:00:00") -> tuple[str, str]:
+    """Elements of recon's invented demo satellite (catalogue 99990), epoch ``epoch_utc`` (UTC).
+
+    A sun-synchronous near-circular orbit about 510 km high: 97.41 deg inclination (the
+    sun-synchronous inclination at that height), 15.19 rev/day.
+    """
+    return format_tle(99990, np.datetime64(epoch_utc, "ns"), 97.41, 83.2, 0.0012, 141.0, 219.2, 15.19)
+
+
+def orbit_positions_km(tle: tuple[str, str], time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """GCRF and ITRF positions from SGP4.
+
+    Parameters
+    ----------
+    tle : (str, str)
+    time_utc : (N,) datetime64[ns], UTC
+
+    Returns
+    -------
+    r_gcrf_km, r_itrf_km : (N, 3) arrays, km
+    """
+    sat = Satrec.twoline2rv(tle[0], tle[1])
+    if sat.error:
+        raise InputError(f"expected a valid TLE, sgp4 refused it with error code {sat.error}", key="tle")
+    t = np.asarray(time_utc, dtype="datetime64[ns]")
+    # sgp4 wants a two-part Julian date; split at midnight to keep precision
+    ns = t.astype(np.int64)
+    days, rem = np.divmod(ns, 86400 * _NS_PER_S)
+    jd = 2440587.5 + days.astype(float)
+    fr = rem.astype(float) / (86400.0 * _NS_PER_S)
+    err, r_teme, _ = sat.sgp4_array(jd, fr)
+    if np.any(err != 0):
+        raise InputError(f"expected sgp4 to propagate the TLE over the pass, got error codes "
+                         f"{sorted(set(err.tolist()) - {0})}", key="tle")
+    r_itrf = np.einsum("nij,nj->ni", teme_to_itrf_matrix(t), r_teme)
+    r_gcrf = np.einsum("nij,nj->ni", itrf_to_gcrf_matrix(t), r_itrf)
+    return r_gcrf, r_itrf
+
+
+def igrf_gcrf_nT(time_utc: np.ndarray, r_itrf_km: np.ndarray) -> np.ndarray:
+    """IGRF-14 main field in GCRF at ITRF positions, nT, (N, 3).
+
+    One coefficient date (the first instant) serves the whole pass: ppigrf broadcasts dates against
+    points, and over a pass the secular variation (tens of nT per year) changes nothing.
+    """
+    t = np.asarray(time_utc, dtype="datetime64[ns]")
+    lat, lon, h_km = itrf_to_geodetic(r_itrf_km)
+    date = _dt.datetime.fromisoformat(str(t[0].astype("datetime64[s]")))
+    be, bn, bu = ppigrf.igrf(np.degrees(lon), np.degrees(lat), h_km, date)
+    b_ned = np.stack([bn[0], be[0], -bu[0]], axis=-1)
+    b_itrf = np.einsum("nij,nj->ni", ned_to_itrf_matrix(lat, lon), b_ned)
+    return np.einsum("nij,nj->ni", itrf_to_gcrf_matrix(t), b_itrf)
+
+
+def unmodelled_field_nT(t_s: np.ndarray, r_gcrf_km: np.ndarray, rng: np.random.Generator,
+                        rms_nT: float, n_terms: int = 4) -> tuple[np.ndarray, list[dict]]:
+    """A smooth field the reference model leaves out: a few random sinusoids in position and time.
+
+    ``b(t) = sum_j a_j sin(kappa_j . r_hat(t) + omega_j t + phi_j)`` in GCRF, scaled so that the rms
+    of ``|b|`` over the given samples is ``rms_nT``. Spatial wavenumbers of 1-3 rad per unit of the
+    position unit vector make features of 20-60 deg of arc, like low-order crustal/external terms.
+
+    Returns
+    -------
+    b_gcrf_nT : (N, 3) array, nT, GCRF
+    terms : list of dict
+        The drawn amplitudes, wavenumbers, frequencies and phases (for the truth record).
+    """
+    r_hat = r_gcrf_km / np.linalg.norm(r_gcrf_km, axis=1, keepdims=True)
+    a = rng.normal(size=(n_terms, 3))
+    direction = rng.normal(size=(n_terms, 3))
+    kappa = direction / np.linalg.norm(direction, axis=1, keepdims=True) * rng.uniform(1.0, 3.0, (n_terms, 1))
+    omega = 2.0 * np.pi / rng.uniform(1200.0, 7200.0, n_terms)
+    phi = rng.uniform(0.0, 2.0 * np.pi, n_terms)
+    phase = r_hat @ kappa.T + np.outer(t_s, omega) + phi  # (N, n_terms)
+    b = np.sin(phase) @ a
+    rms = np.sqrt(np.mean(np.sum(b ** 2, axis=1)))
+    scale = 0.0 if rms == 0 or rms_nT == 0 else rms_nT / rms
+    b *= scale
+    terms = [{"amplitude_gcrf_nT": (a[j] * scale).tolist(), "kappa": kappa[j].tolist(),
+              "omega_rad_s": float(omega[j]), "phase_rad": float(phi[j])} for j in range(n_terms)]
+    return b, terms
+
+
+@dataclass(frozen=True)
+class Environment:
+    """Orbit and field on a uniform grid of ``t_s`` (seconds since the pass epoch ``t0_utc``).
+
+    Attributes
+    ----------
+    t0_utc : datetime64[ns]
+    t_s : (N,) grid times, s
+    r_gcrf_km, r_itrf_km : (N, 3) positions, km
+    b_igrf_gcrf_nT, b_unmodelled_gcrf_nT : (N, 3) field, nT, GCRF
+    hermite_y, hermite_dy : (N, 6) node values and time derivatives of [B_T (3), r_m (3)] in GCRF,
+        for the integrator (tesla and metres)
+    unmodelled_terms : list of dict
+    """
+
+    t0_utc: np.datetime64
+    t_s: np.ndarray
+    r_gcrf_km: np.ndarray
+    r_itrf_km: np.ndarray
+    b_igrf_gcrf_nT: np.ndarray
+    b_unmodelled_gcrf_nT: np.ndarray
+    hermite_y: np.ndarray
+    hermite_dy: np.ndarray
+    unmodelled_terms: list
+
+    @property
+    def step_s(self) -> float:
+        return float(self.t_s[1] - self.t_s[0])
+
+    def interpolate(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """True field (IGRF + unmodelled, nT) and position (km) in GCRF at times ``t_s`` (M,)."""
+        from .dynamics import hermite_many
+
+        y = hermite_many(np.asarray(t_s, dtype=float), self.t_s[0], self.step_s, self.hermite_y,
+                         self.hermite_dy)
+        return y[:, :3] * 1e9, y[:, 3:] / 1e3
+
+    def components(self, t_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """IGRF and unmodelled parts separately (nT, GCRF) at ``t_s`` by cubic spline."""
+        t = np.asarray(t_s, dtype=float)
+        return (CubicSpline(self.t_s, self.b_igrf_gcrf_nT)(t),
+                CubicSpline(self.t_s, self.b_unmodelled_gcrf_nT)(t))
+
+
+def build_environment(tle: tuple[str, str], t0_utc: np.datetime64, duration_s: float,
+                      rng: np.random.Generator, unmodelled_rms_nT: float = 100.0,
+                      step_s: float = 1.0, margin_s: float = 5.0) -> Environment:
+    """Orbit and field over ``[-margin_s, duration_s + margin_s]`` around ``t0_utc`` every ``step_s``.
+
+    Parameters
+    ----------
+    tle : (str, str)
+    t0_utc : datetime64, UTC, the pass epoch (t_s = 0)
+    duration_s : float
+    rng : numpy Generator, draws the unmodelled field
+    unmodelled_rms_nT : float
+    step_s : float
+        Grid step. At 1 s the cubic spline follows a field that turns at twice the orbital rate to
+        far better than 1 nT.
+    """
+    n = int(np.ceil((duration_s + 2 * margin_s) / step_s)) + 1
+    t_s = -margin_s + step_s * np.arange(n)
+    t0 = np.datetime64(t0_utc, "ns")
+    time_utc = t0 + np.round(t_s * _NS_PER_S).astype("timedelta64[ns]")
+    r_gcrf, r_itrf = orbit_positions_km(tle, time_utc)
+    b_igrf = igrf_gcrf_nT(time_utc, r_itrf)
+    b_unm, terms = unmodelled_field_nT(t_s, r_gcrf, rng, unmodelled_rms_nT)
+    y = np.hstack([(b_igrf + b_unm) * 1e-9, r_gcrf * 1e3])
+    dy = CubicSpline(t_s, y).derivative()(t_s)
+    return Environment(t0, t_s, r_gcrf, r_itrf, b_igrf, b_unm, np.ascontiguousarray(y),
+                       np.ascontiguousarray(dy), terms)
