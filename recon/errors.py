@@ -27,7 +27,8 @@ class InputError(ValueError):
 
     def __init__(self, message: str, file: str | Path | None = None, line: int | None = None,
                  key: str | None = None):
-        self.message = " ".join(str(message).split())  # always one line
+        # always one line; runs of spaces are kept (a TLE's columns must stay aligned in the message)
+        self.message = " ".join(part.strip() for part in str(message).splitlines() if part.strip())
         self.file = None if file is None else str(file)
         self.line = line
         self.key = key
