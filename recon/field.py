@@ -34,9 +34,9 @@ from scipy.interpolate import CubicSpline
 
 from . import frames
 from .errors import InputError
-from .orbit import itrf_to_gcrf_matrix_fast, orbit_at
+from .orbit import itrf_to_gcrf, orbit_at
 
-__all__ = ["ReferenceField", "reference_field", "field_along_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
+__all__ = ["ReferenceField", "reference_field", "field_along_orbit", "field_for_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
            "GRID_STEP_s", "DATE_BLOCK_s", "IGRF14_START_UTC", "IGRF14_STOP_UTC"]
 
 GRID_STEP_s = 20.0
@@ -156,8 +156,7 @@ def igrf_gcrf_nT(time_utc: np.ndarray, r_itrf_km: np.ndarray, date: np.datetime6
             sel = block == k
             mid = np.datetime64(int((ns[sel].min() + ns[sel].max()) // 2), "ns")
             b_itrf[sel] = igrf_itrf_nT(r[sel], mid)
-    m = itrf_to_gcrf_matrix_fast(t, dut1_s)
-    return np.einsum("nij,nj->ni", np.nan_to_num(m), b_itrf)
+    return itrf_to_gcrf(t, b_itrf, dut1_s)
 
 
 def field_along_orbit(orbit_spec, time_utc: np.ndarray, *, grid_step_s: float = GRID_STEP_s,
@@ -187,6 +186,22 @@ def field_along_orbit(orbit_spec, time_utc: np.ndarray, *, grid_step_s: float = 
     t = np.atleast_1d(np.asarray(time_utc, dtype="datetime64[ns]"))
     _check_span(t, source)
     orb = orbit_at(orbit_spec, t, dut1_s=dut1_s, source=source)
+    return field_for_orbit(orbit_spec, orb, grid_step_s=grid_step_s, dut1_s=dut1_s, source=source)
+
+
+def field_for_orbit(orbit_spec, orb, *, grid_step_s: float = GRID_STEP_s, dut1_s: float = 0.0,
+                    source: str | Path | None = None) -> ReferenceField:
+    """The field step of :func:`field_along_orbit` for an orbit already evaluated at the samples.
+
+    Parameters
+    ----------
+    orbit_spec : recon.config.OrbitSpec
+        The same orbit, evaluated again on the coarse grid.
+    orb : recon.orbit.OrbitState
+        The orbit at the samples.
+    """
+    t = orb.time_utc
+    _check_span(t, source)
     b = np.full((len(t), 3), np.nan)
     valid = orb.valid
     ns = t.astype(np.int64)

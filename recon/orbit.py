@@ -38,7 +38,7 @@ from .oem import hermite_interpolate, lagrange_interpolate, read_oem, write_oem
 __all__ = [
     "OrbitState", "orbit_at", "orbit_from_tle", "orbit_from_positions", "orbit_from_oem", "parse_tle",
     "tle_checksum", "tle_teme", "state_from_teme", "read_positions", "itrf_to_gcrf_matrix_fast",
-    "write_oem", "MAX_GAP_s",
+    "itrf_to_gcrf", "gcrf_to_itrf", "write_oem", "MAX_GAP_s",
 ]
 
 # Longest gap a position log may have and still be interpolated across. A cubic's error over a step h
@@ -113,11 +113,20 @@ def itrf_to_gcrf_matrix_fast(time_utc: np.ndarray, dut1_s: float = 0.0,
     ----------
     IERS Conventions (2010), IERS Technical Note 36, ch. 5 (eq. 5.1: GCRS = Q(t) R(t) W(t) ITRS).
     """
+    q, angle = _earth_orientation(time_utc, dut1_s, node_step_s)
+    return np.swapaxes(frames._r3(angle) @ q, -1, -2)
+
+
+def _earth_orientation(time_utc: np.ndarray, dut1_s: float = 0.0,
+                       node_step_s: float = CIO_NODE_STEP_s) -> tuple[np.ndarray, np.ndarray]:
+    """c2i06a interpolated from nodes, (N, 3, 3), and ERA + s' (N,) rad: c2t06a = R3(ERA + s') c2i06a
+    (pom00(0, 0, s') = R3(s') when xp = yp = 0). NaT instants give NaN."""
     t = np.atleast_1d(np.asarray(time_utc, dtype="datetime64[ns]"))
-    out = np.full(t.shape + (3, 3), np.nan)
+    q = np.full(t.shape + (3, 3), np.nan)
+    angle = np.full(t.shape, np.nan)
     ok = ~np.isnat(t)
     if not np.any(ok):
-        return out
+        return q, angle
     ns = t[ok].astype(np.int64)
     t0, t1 = ns.min(), ns.max()
     step_ns = int(node_step_s * 1e9)
@@ -126,20 +135,39 @@ def itrf_to_gcrf_matrix_fast(time_utc: np.ndarray, dut1_s: float = 0.0,
     tt_nodes = frames.jd_tt(nodes_ns.astype("datetime64[ns]"))
     rc2i = erfa.c2i06a(*tt_nodes)  # (n_nodes, 3, 3)
     sp = erfa.sp00(*tt_nodes)  # TIO locator s', the only part of pom00 left when xp = yp = 0
-    x = (ns - t0) / 1e9
-    xn = (nodes_ns - t0) / 1e9
-    q = np.empty((len(ns), 3, 3))
-    for i in range(3):
-        for j in range(3):
-            q[:, i, j] = np.interp(x, xn, rc2i[:, i, j])
-    era = erfa.era00(*frames.jd_ut1(t[ok], dut1_s)) + np.interp(x, xn, sp)
-    c2t = frames._r3(era) @ q  # c2t06a = pom00(0, 0, s') R3(ERA) c2i06a = R3(ERA + s') c2i06a
-    out[ok] = np.swapaxes(c2t, -1, -2)
-    return out
+    k = np.minimum((ns - t0) // step_ns, n_nodes - 2)
+    w = ((ns - t0) - k * step_ns) / step_ns
+    q[ok] = rc2i[k] + w[:, None, None] * (rc2i[k + 1] - rc2i[k])
+    angle[ok] = erfa.era00(*frames.jd_ut1(t[ok], dut1_s)) + sp[k] + w * (sp[k + 1] - sp[k])
+    return q, angle
+
+
+def _spin(angle: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """R3(angle) @ v for each row: (N,) rad, (N, 3) -> (N, 3) (frame rotation about z)."""
+    c, s = np.cos(angle), np.sin(angle)
+    return np.stack([c * v[:, 0] + s * v[:, 1], -s * v[:, 0] + c * v[:, 1], v[:, 2]], axis=-1)
 
 
 def _apply(m: np.ndarray, v: np.ndarray) -> np.ndarray:
     return np.einsum("nij,nj->ni", m, v)
+
+
+def _apply_t(m: np.ndarray, v: np.ndarray) -> np.ndarray:
+    return np.einsum("nji,nj->ni", m, v)
+
+
+def itrf_to_gcrf(time_utc: np.ndarray, v_itrf: np.ndarray, dut1_s: float = 0.0) -> np.ndarray:
+    """GCRF components (N, 3) of vectors given in ITRF components (N, 3) at each instant (no Earth-rate
+    term: for positions and field vectors, not velocities). Same rotation as
+    :func:`itrf_to_gcrf_matrix_fast`, applied without forming the matrices."""
+    q, angle = _earth_orientation(time_utc, dut1_s)
+    return _apply_t(q, _spin(-angle, np.asarray(v_itrf, dtype=float)))
+
+
+def gcrf_to_itrf(time_utc: np.ndarray, v_gcrf: np.ndarray, dut1_s: float = 0.0) -> np.ndarray:
+    """ITRF components (N, 3) of vectors given in GCRF components (N, 3); inverse of :func:`itrf_to_gcrf`."""
+    q, angle = _earth_orientation(time_utc, dut1_s)
+    return _spin(angle, _apply(q, np.asarray(v_gcrf, dtype=float)))
 
 
 def _state(time_utc, r_gcrf, v_gcrf, r_itrf, reason, source) -> OrbitState:
@@ -157,21 +185,23 @@ def _times(time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     t = np.atleast_1d(np.asarray(time_utc, dtype="datetime64[ns]"))
     if t.ndim != 1:
         raise ValueError(f"Expected time_utc of shape (N,), got {t.shape}")
-    reason = np.where(np.isnat(t), "time is NaT", "").astype(object)
+    reason = np.full(t.shape, "", dtype=object)
+    reason[np.isnat(t)] = "time is NaT"
     return t, reason
 
 
 def _from_gcrf_nodes(t, reason, r_gcrf, v_gcrf, dut1_s, source) -> OrbitState:
-    m = itrf_to_gcrf_matrix_fast(t, dut1_s)
-    r_itrf = _apply(np.swapaxes(m, -1, -2), np.where(np.isfinite(r_gcrf), r_gcrf, 0.0))
+    q, angle = _earth_orientation(t, dut1_s)
+    r_itrf = _spin(angle, _apply(q, np.where(np.isfinite(r_gcrf), r_gcrf, 0.0)))
     return _state(t, r_gcrf, v_gcrf, r_itrf, reason, source)
 
 
 def _itrf_to_gcrf_state(t, r_itrf_km, v_itrf_km_s, dut1_s):
     """GCRF position and velocity of ITRF states: v_gcrf = M (v_itrf + w x r_itrf)."""
-    m = itrf_to_gcrf_matrix_fast(t, dut1_s)
+    q, angle = _earth_orientation(t, dut1_s)
     w = np.array([0.0, 0.0, OMEGA_EARTH_rad_s])
-    return _apply(m, r_itrf_km), _apply(m, v_itrf_km_s + np.cross(w, r_itrf_km))
+    return (_apply_t(q, _spin(-angle, r_itrf_km)),
+            _apply_t(q, _spin(-angle, v_itrf_km_s + np.cross(w, r_itrf_km))))
 
 
 # ---------------------------------------------------------------------------------------- TLE
@@ -286,11 +316,12 @@ def state_from_teme(time_utc: np.ndarray, r_teme_km: np.ndarray, v_teme_km_s: np
     v_teme = np.atleast_2d(np.asarray(v_teme_km_s, dtype=float))
     reason[(reason == "") & ~(np.all(np.isfinite(r_teme), axis=1) & np.all(np.isfinite(v_teme), axis=1))] = \
         "no TEME state"
-    teme_to_itrf = frames.teme_to_itrf_matrix(np.where(np.isnat(t), np.datetime64(0, "ns"), t), dut1_s)
-    m = itrf_to_gcrf_matrix_fast(t, dut1_s)
-    r_itrf = _apply(teme_to_itrf, np.nan_to_num(r_teme))
-    r_gcrf = _apply(m, r_itrf)
-    v_gcrf = _apply(m, _apply(teme_to_itrf, np.nan_to_num(v_teme)))
+    gmst = frames.gmst82_rad(np.where(np.isnat(t), np.datetime64(0, "ns"), t), dut1_s)
+    q, angle = _earth_orientation(t, dut1_s)
+    r_itrf = _spin(gmst, np.nan_to_num(r_teme))
+    # GCRF = c2i^T R3(-(ERA + s')) R3(GMST) TEME: one turn by GMST - ERA - s', then c2i^T
+    r_gcrf = _apply_t(q, _spin(gmst - angle, np.nan_to_num(r_teme)))
+    v_gcrf = _apply_t(q, _spin(gmst - angle, np.nan_to_num(v_teme)))
     return _state(t, r_gcrf, v_gcrf, r_itrf, reason.astype(object), source)
 
 
@@ -385,7 +416,8 @@ def orbit_from_positions(spec: PositionsSpec, time_utc: np.ndarray, *, dut1_s: f
     t_log, p_log = read_positions(spec)
     _coverage_error(Path(spec.file), t, t_log[0], t_log[-1], "position log")
     if spec.frame == "itrf":
-        p_log = _apply(itrf_to_gcrf_matrix_fast(t_log, dut1_s), p_log)
+        q, angle = _earth_orientation(t_log, dut1_s)
+        p_log = _apply_t(q, _spin(-angle, p_log))
     r = np.full((len(t), 3), np.nan)
     v = np.full((len(t), 3), np.nan)
     x_log = (t_log - t_log[0]).astype(np.int64) / 1e9

@@ -157,6 +157,10 @@ def test_fast_itrf_to_gcrf_matches_direct_evaluation():
     m_fast = orbit.itrf_to_gcrf_matrix_fast(t, 0.2)
     m_ref = frames.itrf_to_gcrf_matrix(t, 0.2)
     assert np.abs(m_fast - m_ref).max() < 1e-11
+    v = np.random.default_rng(5).normal(size=(len(t), 3)) * 7000.0
+    v_gcrf = orbit.itrf_to_gcrf(t, v, 0.2)
+    np.testing.assert_allclose(v_gcrf, np.einsum("nij,nj->ni", m_ref, v), rtol=0, atol=1e-7)
+    np.testing.assert_allclose(orbit.gcrf_to_itrf(t, v_gcrf, 0.2), v, rtol=0, atol=1e-9)
 
 
 # --------------------------------------------------------------------------------- OEM round trip
