@@ -17,11 +17,9 @@ GCRF grid values (tesla, metres).
 References
 ----------
 Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
-Control. Springer. Sec. 3.3 (kinematics), 3.3.5 (Euler's equations), 3.3.6.3 (gravity gradient).
-Griffiths, D. J. (2017). Introduction to Electrodynamics, 4th ed., sec. 6.1.2: torque on a
-magnetic dipole, N = m x B.
-Wertz, J. R. (ed.) (1978). Spacecraft Attitude Determination and Control. Sec. 17.2 (gravity
-gradient torque).
+Control. Springer. Ch. 3 (quaternion kinematics, Euler's equations, gravity-gradient torque).
+Griffiths, D. J. (2017). Introduction to Electrodynamics, 4th ed., sec. 6.1 (torque on a magnetic
+dipole, N = m x B).
 """
 
 from __future__ import annotations
