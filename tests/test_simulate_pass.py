@@ -249,6 +249,15 @@ def test_dead_gyro_outputs_zero_from_the_fault_on():
     assert sim.faults[0]["kind"] == "gyro_dead" and sim.faults[0]["start_utc"].endswith("09:13:36.000Z")
 
 
+def test_stuck_gyro_repeats_its_last_good_output():
+    sim = simulate_pass("gyro_dead", seed=5, duration_s=60.0,
+                        faults=[{"kind": "gyro_dead", "start_s": 30.0, "value": None}])
+    k = int(np.searchsorted(sim.gyro_time_utc, sim.gyro_time_utc[0] + np.timedelta64(30, "s")))
+    w = sim.w_gyro_meas_sensor_rad_s
+    np.testing.assert_array_equal(w[k:], np.tile(w[k - 1], (len(w) - k, 1)))
+    assert np.all(np.abs(np.diff(w[:k], axis=0)).max(axis=0) > 0)
+
+
 def test_gyro_bias_jump_steps_the_bias():
     sim = simulate_pass("gyro_bias_jump", seed=6, duration_s=SHORT_S)
     k = int(np.searchsorted(sim.gyro_time_utc, sim.gyro_time_utc[0] + np.timedelta64(120, "s")))
@@ -337,5 +346,7 @@ def test_bad_requests_raise_input_error():
         simulate_pass("nominal", duration_s=10.0, colour="red")
     with pytest.raises(InputError, match="whole multiples"):
         simulate_pass("nominal", duration_s=10.0, period_s=0.25)
+    with pytest.raises(InputError, match="needs the rate"):
+        simulate_pass("momentum", duration_s=10.0, gyro=False)
     with pytest.raises(InputError, match="fault kind"):
         simulate_pass("nominal", duration_s=10.0, faults=[{"kind": "coil_on_fire"}])

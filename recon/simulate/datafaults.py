@@ -20,6 +20,7 @@ from collections.abc import Callable
 
 import numpy as np
 
+from ..errors import InputError
 from .scenarios import DATA_FAULT_KINDS
 
 __all__ = ["inject"]
@@ -34,7 +35,8 @@ def _positions(n_rows: int, n_faults: int, rng: np.random.Generator, keep_out: l
     if n_faults == 0:
         return np.zeros(0, int)
     if hi - lo < 30 * n_faults:
-        raise ValueError(f"a log of {n_rows} rows is too short for {n_faults} data faults")
+        raise InputError(f"expected a log long enough for {n_faults} data faults (30 rows each), "
+                         f"got {n_rows} rows", key="data_faults")
     edges = np.linspace(lo, hi, n_faults + 1).astype(int)
     out = []
     for a, b in zip(edges[:-1], edges[1:], strict=True):
@@ -73,7 +75,8 @@ def inject(file_name: str, header: str, times: list[str], values: np.ndarray, fm
     """
     unknown = set(plan) - set(DATA_FAULT_KINDS)
     if unknown:
-        raise ValueError(f"expected data fault kinds among {DATA_FAULT_KINDS}, got {sorted(unknown)}")
+        raise InputError(f"expected data fault kinds among {list(DATA_FAULT_KINDS)}, got {sorted(unknown)}",
+                         key="data_faults")
     kinds = [k for k in DATA_FAULT_KINDS for _ in range(int(plan.get(k, 0)))]
     order = rng.permutation(len(kinds))
     kinds = [kinds[i] for i in order]

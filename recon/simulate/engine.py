@@ -110,6 +110,9 @@ def run_simulation(cfg, seed: int) -> dict:
         raise InputError(f"expected period_s and first_tick_offset_s to be whole multiples of the "
                          f"magnetometer step {mag_step / NS} s, got {cfg.period_s} and {cfg.first_tick_offset_s}",
                          key="period_s")
+    if cfg.law == "cross_product" and not cfg.gyro:
+        raise InputError("expected gyro = True with law = \"cross_product\" (the law needs the rate), "
+                         "got gyro = False", key="gyro")
     t_mag = np.arange(0, dur_ns, mag_step, dtype=np.int64)
     t_gyro = np.arange(0, dur_ns, gyro_step, dtype=np.int64) if cfg.gyro else np.zeros(0, np.int64)
     ticks = np.arange(first, dur_ns, period, dtype=np.int64)

@@ -116,7 +116,7 @@ class SimConfig:
     unmodelled_rms_nT: float = 100.0
     # faults
     faults: tuple = ()
-    data_faults: dict = field(default_factory=dict)
+    data_faults: dict = field(default_factory=dict)  # file -> {kind: count}; True: ALL_DATA_FAULTS
     # numerics and output
     max_step_s: float = 0.02
     truth_stride: int = 1
@@ -165,6 +165,8 @@ def list_scenarios() -> dict[str, str]:
 
 
 def _coerce(name: str, value: Any, default: Any) -> Any:
+    if name == "data_faults" and isinstance(value, bool):
+        return ALL_DATA_FAULTS if value else {}
     if name == "faults":
         out = []
         for f in value:
