@@ -1,0 +1,199 @@
+"""Time bases of onboard logs, converted to UTC as ``datetime64[ns]``.
+
+Four bases are understood: ISO 8601 UTC text, UNIX seconds, GPS seconds (continuous atomic scale,
+origin 1980-01-06T00:00:00 UTC) and an onboard tick counter that may wrap. Leap seconds come from
+pyerfa's table (``erfa.dat``), never from a constant.
+
+Conventions
+-----------
+GPS time runs 19 s behind TAI (TAI - GPS = 19 s, fixed when GPS time began on 1980-01-06 with
+TAI - UTC = 19 s; ICD-GPS-200), so GPS - UTC = (TAI - UTC) - 19 s, which is 18 s since 2017-01-01
+(IERS Bulletin C 52).
+
+``datetime64`` has no 23:59:60: an instant inside a positive leap second is labelled with the UTC
+second that follows it (so two GPS seconds map to the same UTC second there).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import erfa
+import numpy as np
+
+from .constants import GPS_EPOCH_UTC
+
+__all__ = [
+    "TAI_MINUS_GPS_s", "EARLIEST_UTC", "LATEST_UTC",
+    "iso_to_utc", "unix_seconds_to_utc", "gps_seconds_to_utc", "unwrap_ticks", "ticks_to_utc",
+]
+
+# TAI - GPS, fixed by the definition of GPS time (ICD-GPS-200: GPS = UTC at 1980-01-06, when
+# TAI - UTC was 19 s)
+TAI_MINUS_GPS_s = 19
+
+# Telemetry times outside this range are treated as unreadable: before 1970 no such log exists,
+# and datetime64[ns] stops at 2262 (the 2200 bound leaves margin). Common practice, no source.
+EARLIEST_UTC = np.datetime64("1970-01-01T00:00:00", "ns")
+LATEST_UTC = np.datetime64("2200-01-01T00:00:00", "ns")
+
+_NAT = np.datetime64("NaT", "ns")
+_NS = 1_000_000_000
+_GPS_EPOCH_NS = np.datetime64(GPS_EPOCH_UTC, "ns").astype(np.int64)
+
+
+def _seconds_to_ns(origin_ns: int, seconds: np.ndarray) -> np.ndarray:
+    """``origin + seconds`` as datetime64[ns]; NaT where ``seconds`` is not finite or out of range.
+
+    The whole and fractional seconds are converted apart so that float rounding of a large count
+    of seconds does not leak into the nanoseconds (float64 still limits the input to ~0.2 us at
+    2e9 s).
+    """
+    s = np.asarray(seconds, dtype=float)
+    out = np.full(s.shape, _NAT)
+    lo = (EARLIEST_UTC.astype(np.int64) - origin_ns) / _NS
+    hi = (LATEST_UTC.astype(np.int64) - origin_ns) / _NS
+    ok = np.isfinite(s) & (s >= lo) & (s < hi)
+    whole = np.floor(s[ok])
+    frac_ns = np.rint((s[ok] - whole) * _NS).astype(np.int64)
+    out[ok] = (origin_ns + whole.astype(np.int64) * _NS + frac_ns).astype("datetime64[ns]")
+    return out
+
+
+def iso_to_utc(text) -> np.ndarray:
+    """Parse ISO 8601 UTC strings ("2026-07-14T09:12:00.25Z", with or without "Z", or with an
+    explicit offset) to datetime64[ns]; unreadable entries give NaT.
+
+    Parameters
+    ----------
+    text : (N,) array-like of str
+
+    Returns
+    -------
+    (N,) datetime64[ns], UTC
+    """
+    import pandas as pd
+
+    s = pd.Series(np.asarray(text, dtype=object), dtype=object)
+    dt = pd.to_datetime(s, format="ISO8601", utc=True, errors="coerce")
+    naive = dt.dt.tz_localize(None).to_numpy()  # resolution chosen by pandas (s ... ns)
+    lo = EARLIEST_UTC.astype(naive.dtype)
+    hi = LATEST_UTC.astype(naive.dtype)
+    ok = ~np.isnat(naive) & (naive >= lo) & (naive < hi)
+    out = np.full(naive.shape, _NAT)
+    out[ok] = naive[ok].astype("datetime64[ns]")
+    return out
+
+
+def unix_seconds_to_utc(unix_s: np.ndarray) -> np.ndarray:
+    """UNIX seconds (UTC, leap seconds not counted) to datetime64[ns]; NaT where unreadable.
+
+    Parameters
+    ----------
+    unix_s : (N,) float array, s since 1970-01-01T00:00:00 UTC
+    """
+    return _seconds_to_ns(0, unix_s)
+
+
+def _tai_minus_utc_s(utc_ns: np.ndarray) -> np.ndarray:
+    """TAI - UTC in whole seconds on the UTC dates of ``utc_ns`` (int64 ns), from ``erfa.dat``."""
+    day = np.floor_divide(utc_ns, 86_400 * _NS)
+    uniq, inv = np.unique(day, return_inverse=True)
+    d = uniq.astype("datetime64[D]")
+    year = d.astype("datetime64[Y]").astype(np.int64) + 1970
+    month = d.astype("datetime64[M]").astype(np.int64) % 12 + 1
+    mday = (d - d.astype("datetime64[M]")).astype(np.int64) + 1
+    with warnings.catch_warnings():
+        # erfa calls dates beyond its table's horizon "dubious" and then uses the last known count
+        warnings.simplefilter("ignore", erfa.ErfaWarning)
+        dat = erfa.dat(year.astype(np.int32), month.astype(np.int32), mday.astype(np.int32), 0.0)
+    return np.rint(np.asarray(dat)).astype(np.int64)[inv.ravel()]
+
+
+def gps_seconds_to_utc(gps_s: np.ndarray) -> np.ndarray:
+    """GPS seconds (since 1980-01-06T00:00:00 on the GPS scale) to UTC datetime64[ns].
+
+    UTC = TAI - (TAI - UTC), TAI = GPS + 19 s, with TAI - UTC from pyerfa's leap-second table
+    (``erfa.dat``) on the UTC date. Because TAI - UTC depends on the UTC date it is looked up twice:
+    first on the date of ``TAI - (TAI - UTC on the date of TAI)``, which lands on the right side of a
+    leap second. NaT where the input is not finite, negative or out of range.
+
+    Parameters
+    ----------
+    gps_s : (N,) float array, s on the GPS scale
+
+    Returns
+    -------
+    (N,) datetime64[ns], UTC
+
+    References
+    ----------
+    IERS Bulletin C (leap seconds); ICD-GPS-200 (GPS time origin and TAI - GPS = 19 s).
+    """
+    g = np.asarray(gps_s, dtype=float)
+    ok = np.isfinite(g) & (g >= 0)
+    # TAI instant written as if it were a UTC label: ahead of UTC by TAI - UTC (about 19-37 s)
+    tai = _seconds_to_ns(int(_GPS_EPOCH_NS) + TAI_MINUS_GPS_s * _NS, np.where(ok, g, np.nan))
+    out = np.full(g.shape, _NAT)
+    good = ~np.isnat(tai)
+    if not good.any():
+        return out
+    tai_ns = tai[good].astype(np.int64)
+    first = tai_ns - _tai_minus_utc_s(tai_ns) * _NS
+    utc_ns = tai_ns - _tai_minus_utc_s(first) * _NS
+    out[good] = utc_ns.astype("datetime64[ns]")
+    return out
+
+
+def unwrap_ticks(count: np.ndarray, rollover_bits: int | None) -> tuple[np.ndarray, np.ndarray]:
+    """Undo the wraps of an onboard counter that rolls over at ``2**rollover_bits``.
+
+    A wrap is a step down of more than half the counter's range between consecutive rows in file
+    order; a step up of more than half the range (a row written out of order across a wrap) undoes
+    one. Every wrap is counted.
+
+    Parameters
+    ----------
+    count : (N,) float array, counter values in file order (0 <= count < 2**rollover_bits)
+    rollover_bits : int or None
+        Counter width; None means the counter never wraps.
+
+    Returns
+    -------
+    unwrapped : (N,) float array, ticks
+    wrap_index : (W,) int array, index of the first row after each forward wrap
+    """
+    c = np.asarray(count, dtype=float)
+    if rollover_bits is None or c.size < 2:
+        return c.copy(), np.zeros(0, dtype=np.int64)
+    modulus = float(2 ** int(rollover_bits))
+    step = np.diff(c)
+    k = np.zeros(c.shape, dtype=np.int64)
+    k[1:] = np.cumsum((step < -modulus / 2).astype(np.int64) - (step > modulus / 2).astype(np.int64))
+    wrap_index = np.flatnonzero(step < -modulus / 2) + 1
+    return c + k * modulus, wrap_index
+
+
+def ticks_to_utc(count: np.ndarray, epoch_utc: np.datetime64, rate_hz: float,
+                 rollover_bits: int | None) -> tuple[np.ndarray, np.ndarray]:
+    """Counter ticks to UTC: ``epoch + unwrapped_count / rate_hz``.
+
+    Parameters
+    ----------
+    count : (N,) float array, raw counter values in file order
+    epoch_utc : datetime64, UTC of count 0
+    rate_hz : float, ticks per second
+    rollover_bits : int or None
+
+    Returns
+    -------
+    time_utc : (N,) datetime64[ns], UTC
+    wrap_index : (W,) int array, see :func:`unwrap_ticks`
+    """
+    ticks, wraps = unwrap_ticks(count, rollover_bits)
+    whole_s = np.floor(ticks / rate_hz)
+    rem_ticks = ticks - whole_s * rate_hz  # exact when rate_hz is a whole number
+    seconds = whole_s + rem_ticks / rate_hz
+    origin = int(np.datetime64(epoch_utc, "ns").astype(np.int64))
+    out = _seconds_to_ns(origin, seconds)
+    return out, wraps
