@@ -37,7 +37,8 @@ class SimulatedPass:
     b_igrf_gcrf_nT, b_unmodelled_gcrf_nT : (N, 3) GCRF; b_body_nT : (N, 3) true total field, body
     b_meas_sensor_nT : (N, 3) what the magnetometer reported (sensor frame, quantised, clipped)
     i_true_A, i_logged_A : (N, 3) current flowing / latest logged command
-    b_coil_sensor_nT : (N, 3) coil field at the magnetometer, sensor frame; m_body_Am2 : (N, 3)
+    b_coil_sensor_nT : (N, 3) coil field in the magnetometer reading (K i_true, zero when the
+        coils are gated at every sample, "coils_off"), sensor frame; m_body_Am2 : (N, 3)
     tau_dist_body_Nm : (N, 3); r_gcrf_km : (N, 3)
     gyro_time_utc : (G,) ; w_gyro_true_body_rad_s : (G, 3); w_gyro_meas_sensor_rad_s : (G, 3) before
         file rounding; gyro_beta_sensor_rad_s : (G + 1, 3) the bias path beta_0..beta_G

@@ -264,7 +264,7 @@ def run_simulation(cfg, seed: int) -> dict:
         q0=states[0, :4].copy(), w0=w0, t_mag_ns=t_mag, t_gyro_ns=t_gyro, ticks_ns=ticks,
         latency_ns=latency, q=states[ev_mag, :4], w=states[ev_mag, 4:], w_gyro_true=states[ev_gyro, 4:],
         b_body_nT=b_body, b_meas_nT=b_meas, i_true_A=i_true, i_logged_A=i_logged, i_cmd_A=cmd,
-        b_coil_sensor_nT=i_true @ mag.K_nT_per_A.T, m_body_Am2=i_true @ C_hw.T, tau_dist_Nm=tau_mag,
+        b_coil_sensor_nT=seen_factor * (i_true @ mag.K_nT_per_A.T), m_body_Am2=i_true @ C_hw.T, tau_dist_Nm=tau_mag,
         b_igrf_gcrf_nT=b_igrf, b_unmodelled_gcrf_nT=b_unm, r_gcrf_km=r_gcrf_km_mag,
         w_meas_rad_s=w_meas, gyro_beta=beta, gyro_bias_body_rad_s=bias_body, positions=positions,
         rng_data=rng_data, t_events_ns=ev, states_events=states,

@@ -25,7 +25,8 @@ magnetometer instants (every ``truth_stride``-th):
 ``b_body_{x,y,z}_nT``                 true total field (IGRF + unmodelled) in body axes
 ``i_true_{x,y,z}_A``                  current actually flowing in each coil
 ``i_logged_{x,y,z}_A``                latest logged command
-``b_coil_sensor_{x,y,z}_nT``          coil field at the magnetometer (K i_true), sensor frame
+``b_coil_sensor_{x,y,z}_nT``          coil field in the magnetometer reading (K i_true; zero
+                                      with mag_sampling = "coils_off"), sensor frame
 ``m_body_{x,y,z}_Am2``                coil dipole, body frame
 ``tau_dist_body_{x,y,z}_Nm``          random disturbance torque, body frame
 ``r_gcrf_{x,y,z}_km``                 position, GCRF
