@@ -78,11 +78,13 @@ def _cmd_crosstalk(a) -> int:
 def _cmd_demo(a) -> int:
     from .simulate import list_scenarios, simulate_pass
 
+    scenarios = list_scenarios()
     if a.list:
-        print("\n".join(list_scenarios()))
+        width = max(map(len, scenarios))
+        print("\n".join(f"{name:<{width}}  {what}" for name, what in scenarios.items()))
         return EXIT_OK
-    if a.scenario not in list_scenarios():
-        raise InputError(f"expected a scenario in {list_scenarios()}, got {a.scenario!r}", key="--scenario")
+    if a.scenario not in scenarios:
+        raise InputError(f"expected one of {', '.join(scenarios)}, got {a.scenario!r}", key="--scenario")
     out = a.out if a.out is not None else Path(f"demo-{a.scenario}-{a.seed}")
     kwargs = {} if a.duration is None else {"duration_s": a.duration}
     simulate_pass(a.scenario, seed=a.seed, out_dir=out, **kwargs)
