@@ -138,12 +138,14 @@ def stage_anomalies(logs, ledger: pd.DataFrame, mission, loaded) -> list[Anomaly
     """All anomalies of the load and clean stages, log by log."""
     out: list[Anomaly] = []
     for g in logs:
-        for row in g.gaps.itertuples(index=False):
+        starts = g.gaps["start_utc"].to_numpy(dtype="datetime64[ns]")
+        stops = g.gaps["stop_utc"].to_numpy(dtype="datetime64[ns]")
+        for t0, t1, dur in zip(starts, stops, g.gaps["duration_s"].to_numpy(dtype=float), strict=True):
             out.append(Anomaly(
                 "telemetry_gap", "warning",
-                f"no {g.name} samples for {row.duration_s:.6g} s in {g.label} (gap threshold 3 x the "
+                f"no {g.name} samples for {dur:.6g} s in {g.label} (gap threshold 3 x the "
                 f"median spacing {g.median_period_s:.6g} s)",
-                start_utc=row.start_utc, stop_utc=row.stop_utc, value=float(row.duration_s)))
+                start_utc=t0, stop_utc=t1, value=float(dur)))
         mine = ledger[(ledger["sensor"] == g.name) & (ledger["action"] == "dropped")]
         frac = len(mine) / g.rows_read if g.rows_read else 0.0
         if frac > ROWS_DROPPED_WARN_FRACTION:

@@ -136,6 +136,10 @@ def scan_bytes(data: bytes, path: Path | str) -> Scan:
                          path, line=1) from None
     if not head_text.strip():
         raise InputError("expected a header line of column names, found a blank line", path, line=1)
+    bad_char = next((ch for ch in head_text if (ord(ch) < 32 and ch != "\t") or ord(ch) == 127), None)
+    if bad_char is not None:
+        raise InputError(f"expected a header line of column names, found the control byte "
+                         f"0x{ord(bad_char):02x}", path, line=1)
     header = [h.strip() for h in head_text.split(",")]
     n_fields = len(header)
     starts, ends = starts[1:], ends[1:]
@@ -150,7 +154,7 @@ def scan_bytes(data: bytes, path: Path | str) -> Scan:
     odd |= buf == 127
     odd &= (buf != _TAB) & (buf != _LF)
     odd_pos = np.flatnonzero(odd)
-    if odd_pos.size:
+    if odd_pos.size and starts.size:
         # a CR dropped as line ending is not odd
         odd_pos = odd_pos[~np.isin(odd_pos, ends[has_cr[1:]])]
         owner = np.searchsorted(starts, odd_pos, side="right") - 1

@@ -46,16 +46,20 @@ def _seconds_to_ns(origin_ns: int, seconds: np.ndarray) -> np.ndarray:
     """``origin + seconds`` as datetime64[ns]; NaT where ``seconds`` is not finite or out of range.
 
     The whole and fractional seconds are converted apart so that float rounding of a large count
-    of seconds does not leak into the nanoseconds (float64 still limits the input to ~0.2 us at
-    2e9 s).
+    of seconds does not leak into the nanoseconds. A float64 near 1.7e9 s resolves only 0.24 us, so
+    the fraction is rounded to the decimal step just coarser than that resolution (1 us there,
+    1 ns for counts below ~8e6 s): "1784020329.9" reads back as .900000, not .900000095.
     """
     s = np.asarray(seconds, dtype=float)
     out = np.full(s.shape, _NAT)
     lo = (EARLIEST_UTC.astype(np.int64) - origin_ns) / _NS
     hi = (LATEST_UTC.astype(np.int64) - origin_ns) / _NS
     ok = np.isfinite(s) & (s >= lo) & (s < hi)
-    whole = np.floor(s[ok])
-    frac_ns = np.rint((s[ok] - whole) * _NS).astype(np.int64)
+    v = s[ok]
+    whole = np.floor(v)
+    ulp_ns = np.spacing(np.abs(v)) * _NS
+    step_ns = 10.0 ** np.ceil(np.log10(np.maximum(ulp_ns, 1.0)))
+    frac_ns = (np.rint((v - whole) * _NS / step_ns) * step_ns).astype(np.int64)
     out[ok] = (origin_ns + whole.astype(np.int64) * _NS + frac_ns).astype("datetime64[ns]")
     return out
 
