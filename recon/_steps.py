@@ -1,0 +1,272 @@
+"""Coil crosstalk from the magnetometer's response to current steps: no reference field needed.
+
+Between two consecutive magnetometer samples ``k`` and ``k+1`` (sensor axes, interval ``dt_k``) the
+satellite turns by the gyro's rate ``w`` and the true field's components turn with it. With
+``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon._twostep`) and ``R_k = exp(-[w x] dt_k)`` (the change
+of the components of a fixed vector seen from a frame turning at ``w``;
+``Rotation.from_rotvec(-w dt)``), the rotation-compensated difference is
+
+    d_k = m_{k+1} - R_k m_k
+        = K i_{k+1} - R_k K i_k                      (the step, ~ K (i_{k+1} - i_k))
+        + (I - R_k) b0                               (bias turned with the frame)
+        + (S - I) R_k b_k - R_k (S - I) b_k          (soft iron does not commute with the turn)
+        + A_{k+1} g_dot dt_k                         (the field's own change along the orbit)
+        - R_k [m_k x] beta dt_k                      (gyro bias beta: R_k is built from w + beta)
+        + n_{k+1} - R_k n_k,
+
+exactly linear in ``K`` and, to first order in the small quantities, in the nuisances ``b0``,
+``S - I`` (with the measured ``m_k`` standing in for ``b_k``), the gyro bias ``beta`` (sensor axes,
+constant over the pass) and ``g_dot``: the rate of the field
+in a frame fixed in inertial space (the sensor frame at the start of a block, carried by the
+integrated gyro ``A``), one constant vector per block of ``block_s`` seconds. Intervals across which
+a coil current steps carry the information on ``K``; the others pin the nuisances. The nuisances
+matter: under B-dot control the current follows ``w x b``, and so does the soft-iron term, which
+would otherwise bias ``K`` by several percent.
+
+Noise: ``d_k`` and ``d_{k+1}`` share ``n_{k+1}``, so the differences are correlated (moving average
+of order one). The estimate is ordinary least squares (all rows have the same variance ``2 sigma^2``
+for isotropic noise, so it is also the weighted solution), and its covariance is the exact sandwich
+``(X^T X)^-1 X^T Sigma_d X (X^T X)^-1`` with ``Sigma_d = sigma^2 D D^T``, ``D`` the difference
+operator, and ``sigma^2`` estimated without bias from the residual sum of squares
+(``E[RSS] = sigma^2 (tr(D D^T) - tr((X^T X)^-1 X^T D D^T X))``; Seber & Lee 2003, Linear Regression
+Analysis, sec. 3.3, generalised to a known correlation shape). Rows whose residual lies more than 5
+robust sigma from zero (a glitch) are dropped and the fit repeated once.
+
+Closed loop: a controller computes the next command from the samples it reads at a tick (B-dot from
+their difference), so the noise of such a sample drives the current step that follows it. A pair
+that ends on that sample before the step and on the next sample after it then has a regressor
+correlated with its own noise, and least squares is biased (the errors-in-variables problem of
+closed-loop identification; Ljung 1999, System Identification, 2nd ed., sec. 13.4). On a simulated
+B-dot pass this bias exceeded 50 %. The caller therefore marks the samples the controller reads
+(``skip``: the samples inside the off windows, or the last sample before each change of the logged
+current), and the pairs bridge them: ``(k - 1, k + 1)`` with the gyro turn over both intervals, whose
+noise is independent of the command.
+
+References
+----------
+Seber, G. A. F. and Lee, A. J. (2003). Linear Regression Analysis, 2nd ed. Wiley, sections 3.3, 3.10.
+Ljung, L. (1999). System Identification: Theory for the User, 2nd ed. Prentice Hall, chapter 13.
+Rousseeuw, P. J. and Croux, C. (1993). Alternatives to the median absolute deviation. JASA 88,
+1273-1283 (the 1.4826 MAD scale).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.spatial.transform import Rotation
+
+from ._twostep import SYM_INDEX
+
+__all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
+
+# A current change counts as a step for coil l when |di_l| >= this fraction of its maximum current
+# (common practice, no source).
+MIN_STEP_FRACTION = 0.05
+# Fewer steps than this on a coil leave its crosstalk column undetermined (common practice, no source).
+MIN_STEPS = 5
+# A log interval longer than this multiple of the median interval is a gap: no pair spans it.
+GAP_FACTOR = 1.5
+OUTLIER_FENCE = 5.0
+
+
+@dataclass(frozen=True)
+class StepFit:
+    """Crosstalk from current steps.
+
+    Attributes
+    ----------
+    crosstalk_nT_per_A : (3, 3) array, nT per A, sensor axes x coils; NaN where undetermined
+    sigma_nT_per_A : (3, 3) array, 1 sigma; NaN where undetermined
+    covariance : (9, 9) array, row-major order of K; NaN rows/columns where undetermined
+    undetermined : dict
+        ``crosstalk_<axis>_coil_<coil>`` -> reason.
+    n_steps : (3,) int array
+        Steps per coil used.
+    noise_nT : float
+        Magnetometer noise per axis (1 sigma) estimated from the differences.
+    n_pairs, n_rejected : int
+    """
+
+    crosstalk_nT_per_A: np.ndarray
+    sigma_nT_per_A: np.ndarray
+    covariance: np.ndarray
+    undetermined: dict[str, str]
+    n_steps: np.ndarray
+    noise_nT: float
+    n_pairs: int
+    n_rejected: int
+
+
+_AX = ("x", "y", "z")
+
+
+def _interp_rate(t_query, t_gyro, w_gyro):
+    return np.column_stack([np.interp(t_query, t_gyro, w_gyro[:, a]) for a in range(3)])
+
+
+def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.ndarray,
+                        gyro_t_s: np.ndarray, w_sensor_rad_s: np.ndarray, max_current_A: np.ndarray,
+                        *, skip: np.ndarray | None = None, block_s: float = 30.0,
+                        min_step_fraction: float = MIN_STEP_FRACTION, min_steps: int = MIN_STEPS) -> StepFit:
+    """Estimate the crosstalk K from the magnetometer's steps when coil currents change.
+
+    Parameters
+    ----------
+    t_s : (N,) array, s
+        Magnetometer sample times (increasing, any origin shared with ``gyro_t_s``).
+    m_sensor_nT : (N, 3) array, nT, sensor axes
+        Measured field; rows with NaN are skipped.
+    i_coil_A : (N, 3) array, A
+        Effective coil current each sample saw; NaN rows are skipped.
+    gyro_t_s : (G,) array, s
+        Gyro sample times (increasing).
+    w_sensor_rad_s : (G, 3) array, rad/s, magnetometer sensor axes
+        Body rate expressed in the magnetometer's axes (``M^T w_body``).
+    max_current_A : (3,) array, A
+    skip : (N,) bool array, optional
+        Samples the onboard controller read to compute the next command (see the module notes);
+        pairs are formed across them, from the sample before to the sample after.
+    block_s : float
+        Length of the blocks over which the field's inertial rate is taken constant, s.
+    min_step_fraction, min_steps : float, int
+        What counts as a step, and how many steps a coil needs.
+
+    Returns
+    -------
+    StepFit
+    """
+    t = np.asarray(t_s, dtype=float)
+    m = np.asarray(m_sensor_nT, dtype=float)
+    i = np.asarray(i_coil_A, dtype=float)
+    tg = np.asarray(gyro_t_s, dtype=float)
+    wg = np.asarray(w_sensor_rad_s, dtype=float)
+    imax = np.asarray(max_current_A, dtype=float)
+
+    ok = np.all(np.isfinite(m), axis=1) & np.all(np.isfinite(i), axis=1)
+    gyro_ok = np.all(np.isfinite(wg), axis=1)
+    tg, wg = tg[gyro_ok], wg[gyro_ok]
+    dt_all = np.diff(t)
+    nominal_dt = np.median(dt_all[dt_all > 0]) if np.any(dt_all > 0) else np.nan
+    gap_count = np.r_[0, np.cumsum(dt_all > GAP_FACTOR * nominal_dt)]
+    if skip is not None:
+        ok &= ~np.asarray(skip, dtype=bool)
+    idx = np.flatnonzero(ok)
+    t, m, i = t[idx], m[idx], i[idx]
+    dt = np.diff(t)
+    # consecutive kept samples form a pair unless the log has a gap between them
+    pair = (dt > 0) & (gap_count[idx[1:]] == gap_count[idx[:-1]])
+    if len(tg) >= 2:
+        tm = 0.5 * (t[1:] + t[:-1])
+        pair &= (tm >= tg[0]) & (tm <= tg[-1])
+    else:
+        pair[:] = False
+    undetermined: dict[str, str] = {}
+    k0 = np.flatnonzero(pair)  # pairs (k0, k0+1)
+    di = i[k0 + 1] - i[k0] if len(k0) else np.zeros((0, 3))
+    n_steps = np.sum(np.abs(di) >= min_step_fraction * imax, axis=0)
+    coils = n_steps >= min_steps
+    for c in np.flatnonzero(~coils):
+        why = (f"coil {_AX[c]} current steps by at least {100 * min_step_fraction:g} % of its range "
+               f"{n_steps[c]} times between consecutive samples with a gyro rate (at least {min_steps} needed)")
+        for j in range(3):
+            undetermined[f"crosstalk_{_AX[j]}_coil_{_AX[c]}"] = why
+    nan33 = np.full((3, 3), np.nan)
+    if not np.any(coils):
+        return StepFit(nan33, nan33.copy(), np.full((9, 9), np.nan), undetermined, n_steps, np.nan,
+                       len(k0), 0)
+
+    w = _interp_rate(0.5 * (t[k0] + t[k0 + 1]), tg, wg)
+    rot = Rotation.from_rotvec(-w * dt[k0][:, None])
+    r_mat = rot.as_matrix()  # (P, 3, 3)
+
+    # Attitude of the sensor frame relative to a frame fixed in inertial space, restarted at gaps
+    # and at block starts: A_{k+1} = R_k A_k.
+    block = np.floor((t[k0] - t[0]) / block_s).astype(int)
+    seg = np.cumsum(np.r_[0, (np.diff(k0) != 1) | (np.diff(block) != 0)])  # new segment at gaps/blocks
+    a_next = np.empty_like(r_mat)
+    acc = np.eye(3)
+    for p in range(len(k0)):
+        if p == 0 or seg[p] != seg[p - 1]:
+            acc = np.eye(3)
+        acc = r_mat[p] @ acc
+        a_next[p] = acc
+    n_seg = int(seg[-1]) + 1
+
+    cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
+    n_k, n_nuis = len(cols_k), 3 + 6 + 3
+    n_par = n_k + n_nuis + 3 * n_seg
+    n_p = len(k0)
+    x = np.zeros((n_p, 3, n_par))
+    eye = np.eye(3)
+    for col, (j, c) in enumerate(cols_k):
+        x[:, :, col] = i[k0 + 1, c][:, None] * eye[j] - i[k0, c][:, None] * r_mat[:, :, j]
+    x[:, :, n_k:n_k + 3] = eye - r_mat
+    mk = m[k0]
+    rm = np.einsum("pab,pb->pa", r_mat, mk)
+    for n, (a, b) in enumerate(SYM_INDEX):
+        xi = np.zeros((3, 3))
+        xi[a, b] = xi[b, a] = 1.0
+        x[:, :, n_k + 3 + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
+    # gyro bias: -R_k [m_k x] dt_k, column e of [m x] is m x e_e
+    for e in range(3):
+        x[:, :, n_k + 9 + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[k0][:, None]
+    for p in range(n_p):
+        base = n_k + n_nuis + 3 * seg[p]
+        x[p, :, base:base + 3] = a_next[p] * dt[k0[p]]
+    y = m[k0 + 1] - rm
+
+    use = np.ones(n_p, bool)
+    for _ in range(2):
+        theta, res = _ols(x[use], y[use])
+        r_norm = np.linalg.norm(y - x @ theta, axis=1)
+        scale = 1.4826 * np.median(np.abs(r_norm[use] - np.median(r_norm[use])))
+        new_use = r_norm <= np.median(r_norm[use]) + OUTLIER_FENCE * max(scale, 1e-9)
+        if np.array_equal(new_use, use):
+            break
+        use = new_use
+    theta, rss = _ols(x[use], y[use])
+
+    # Sandwich covariance with the MA(1) noise of the differences: Z = D^T X.
+    xu, ru, ku = x[use], r_mat[use], k0[use]
+    n_samples = len(t)
+    z = np.zeros((n_samples, 3, n_par))
+    np.add.at(z, ku + 1, xu)
+    np.add.at(z, ku, -np.einsum("pba,pbi->pai", ru, xu))
+    xf, zf = xu.reshape(-1, n_par), z.reshape(-1, n_par)
+    xx = xf.T @ xf
+    zz = zf.T @ zf
+    xx_inv = np.linalg.pinv(xx)
+    trace_h = float(np.trace(xx_inv @ zz))
+    dof = 6.0 * len(ku) - trace_h
+    sigma2 = rss / max(dof, 1.0)
+    cov_all = sigma2 * xx_inv @ zz @ xx_inv
+
+    k_est = np.full((3, 3), np.nan)
+    cov = np.full((9, 9), np.nan)
+    flat = [3 * j + c for j, c in cols_k]
+    for col, (j, c) in enumerate(cols_k):
+        k_est[j, c] = theta[col]
+    cov[np.ix_(flat, flat)] = cov_all[:n_k, :n_k]
+    sig = np.full((3, 3), np.nan)
+    sig.ravel()[flat] = np.sqrt(np.diag(cov_all)[:n_k])
+    return StepFit(k_est, sig, cov, undetermined, n_steps, float(np.sqrt(sigma2)), n_p,
+                   int((~use).sum()))
+
+
+def _ols(x3: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, float]:
+    """Least squares over stacked (P, 3, p) design and (P, 3) data; returns (theta, RSS).
+
+    Solved through the normal equations of the column-normalised design (p is under a hundred and
+    the normalised design well conditioned, so squaring its condition number costs no accuracy that
+    matters), with a pseudo-inverse for any column the data leave empty."""
+    a = x3.reshape(-1, x3.shape[-1])
+    b = y.reshape(-1)
+    scale = np.linalg.norm(a, axis=0)
+    scale[scale == 0] = 1.0
+    an = a / scale
+    theta = np.linalg.pinv(an.T @ an, rcond=1e-13, hermitian=True) @ (an.T @ b)
+    theta = theta / scale
+    r = b - a @ theta
+    return theta, float(r @ r)
