@@ -1,0 +1,239 @@
+"""Attitude with no prior: Wahba's problem over an opening window, one magnetometer plus the gyro.
+
+A single field vector fixes only two of the three attitude angles at one instant. Over a window the
+gyro carries every body-frame sample back to the window's first instant (``A(t_i) = Delta_i A0``,
+so ``A0 b_ref(t_i) = Delta_i^T b_i``), and because the field direction turns in the inertial frame
+as the satellite moves along its orbit, the pairs ``(Delta_i^T b_i, b_ref(t_i))`` fix A0 completely.
+Davenport's q-method solves the weighted Wahba problem; a small least-squares refinement then
+estimates A0 and a constant gyro bias together, since a bias of 0.2 deg/s integrates to tens of
+degrees over such a window.
+
+References
+----------
+Wahba, G. (1965). A least squares estimate of satellite attitude. SIAM Review 7(3), 409.
+Davenport, P. B. (1968). A vector approach to the algebra of rotations with applications.
+NASA TN D-4696 (the q-method).
+Keat, J. (1977). Analysis of least-squares attitude determination routine DOAOP. Computer Sciences
+Corp. CSC/TM-77/6034 (the q-method in its usual published form).
+Shuster, M. D. and Oh, S. D. (1981). Three-axis attitude determination from vector observations.
+J. Guidance 4(1), 70-77 (QUEST; the attitude covariance of the Wahba solution).
+Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
+Control. Springer. Sec. 5.3 (q-method), 5.5 (covariance of the Wahba solution).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import least_squares
+from scipy.spatial.transform import Rotation
+
+from . import _mekf_core as core
+
+__all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion", "InitialState",
+           "initial_state_with_gyro"]
+
+
+def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
+    """The one place where another quaternion convention is converted into recon's (and back).
+
+    Shuster's convention, used by Markley & Crassidis (2014, eq. 2.125) and by CCSDS 504.0-B-2
+    (annex F2, the ADM quaternion "from frame A to frame B"), writes the attitude matrix of a
+    scalar-last quaternion as ``A = (q4^2 - |q|^2) I + 2 q q^T - 2 q4 [q x]``; scipy (recon's
+    convention, :mod:`recon.frames`) has ``+ 2 w [v x]``. The same attitude matrix therefore has
+    conjugate quaternions in the two conventions, and this conversion is its own inverse.
+
+    Parameters
+    ----------
+    q_shuster : (..., 4) scalar-last quaternion in Shuster's convention (or scipy's, to go back)
+
+    Returns
+    -------
+    (..., 4) scalar-last quaternion in the other convention, scalar part >= 0
+
+    References
+    ----------
+    Shuster, M. D. (1993). A survey of attitude representations. J. Astronaut. Sci. 41(4), 439-517.
+    """
+    q = np.array(q_shuster, dtype=float, copy=True)
+    q[..., :3] *= -1.0
+    return np.where(q[..., 3:4] < 0, -q, q)
+
+
+@dataclass(frozen=True)
+class WahbaSolution:
+    """Result of :func:`davenport_q_method`.
+
+    Attributes
+    ----------
+    q_body_from_gcrf : (4,) scalar-last, scipy convention
+    loss : float
+        Wahba's loss ``1/2 sum a_i |b_i - A r_i|^2`` at the solution (unit vectors).
+    covariance_rad2 : (3, 3)
+        Attitude-error covariance in body axes, ``[sum a_i (I - b_i b_i^T)]^-1`` (Markley &
+        Crassidis 2014 eq. 5.96), with a_i = 1 / sigma_i^2 (rad^-2); infinite when the vectors are
+        all parallel.
+    """
+
+    q_body_from_gcrf: np.ndarray
+    loss: float
+    covariance_rad2: np.ndarray
+
+
+def davenport_q_method(b_body: np.ndarray, r_ref: np.ndarray, sigma_rad: np.ndarray | float) -> WahbaSolution:
+    """Davenport's q-method for Wahba's problem ``min sum a_i |b_i - A r_i|^2``.
+
+    Parameters
+    ----------
+    b_body : (N, 3) observed directions, body frame (normalised here)
+    r_ref : (N, 3) reference directions, GCRF (normalised here)
+    sigma_rad : float or (N,) angular 1-sigma of each observation, rad (weights a_i = 1/sigma_i^2)
+
+    Returns
+    -------
+    WahbaSolution
+
+    References
+    ----------
+    Davenport (1968); Keat (1977); Markley & Crassidis (2014) sec. 5.3 (K matrix, eq. 5.17).
+    """
+    b = np.asarray(b_body, float)
+    r = np.asarray(r_ref, float)
+    b = b / np.linalg.norm(b, axis=1, keepdims=True)
+    r = r / np.linalg.norm(r, axis=1, keepdims=True)
+    a = np.broadcast_to(1.0 / np.asarray(sigma_rad, float) ** 2, (len(b),))
+    bm = np.einsum("i,ij,ik->jk", a, b, r)  # B = sum a_i b_i r_i^T
+    s = bm + bm.T
+    sigma = np.trace(bm)
+    z = np.array([bm[1, 2] - bm[2, 1], bm[2, 0] - bm[0, 2], bm[0, 1] - bm[1, 0]])
+    k = np.empty((4, 4))
+    k[:3, :3] = s - sigma * np.eye(3)
+    k[:3, 3] = z
+    k[3, :3] = z
+    k[3, 3] = sigma
+    vals, vecs = np.linalg.eigh(k)
+    q = scipy_from_shuster_quaternion(vecs[:, -1])
+    loss = float(a.sum() - vals[-1])
+    info = np.einsum("i,jk->jk", a, np.eye(3)) - np.einsum("i,ij,ik->jk", a, b, b)
+    try:
+        cov = np.linalg.inv(info)
+        if not np.all(np.isfinite(cov)) or np.linalg.cond(info) > 1e12:
+            raise np.linalg.LinAlgError
+    except np.linalg.LinAlgError:
+        cov = np.full((3, 3), np.inf)
+    return WahbaSolution(q, loss, cov)
+
+
+@dataclass(frozen=True)
+class InitialState:
+    """Starting point of the filter at ``t_s`` (seconds on the filter's time axis).
+
+    Attributes
+    ----------
+    q_body_from_gcrf : (4,)
+    v : (3,) gyro bias (rad/s, gyro mode) or body rate (rad/s, dynamics mode)
+    sigma_att_rad : (3,) 1-sigma attitude error per body axis used for P0
+    sigma_v : (3,) 1-sigma of v used for P0
+    method : str
+    window_s : float
+    detail : dict
+    """
+
+    q_body_from_gcrf: np.ndarray
+    v: np.ndarray
+    sigma_att_rad: np.ndarray
+    sigma_v: np.ndarray
+    method: str
+    window_s: float
+    detail: dict
+
+
+def _window(t_mag: np.ndarray, b_ref: np.ndarray, t0: float, min_window_s: float, max_window_s: float,
+            min_turn_rad: float) -> float:
+    """Shortest window from t0 (>= min_window_s) over which the reference field turns min_turn_rad."""
+    r = b_ref / np.linalg.norm(b_ref, axis=1, keepdims=True)
+    ang = np.arccos(np.clip(r @ r[0], -1.0, 1.0))
+    later = np.nonzero((ang >= min_turn_rad) & (t_mag - t0 >= min_window_s))[0]
+    if len(later):
+        return float(min(max(t_mag[later[0]] - t0, min_window_s), max_window_s))
+    return float(min(t_mag[-1] - t0, max_window_s))
+
+
+def _subsample(n: int, n_max: int) -> np.ndarray:
+    return np.unique(np.linspace(0, n - 1, min(n, n_max)).round().astype(int))
+
+
+def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray,
+                            t_gyro: np.ndarray, w_gyro: np.ndarray, *, sigma_vec_nT: float,
+                            sigma_bias0_rad_s: float, window_s: float = 120.0,
+                            max_window_s: float = 600.0, min_turn_deg: float = 15.0,
+                            floor_att_rad: float = np.deg2rad(3.0),
+                            floor_bias_rad_s: float = np.deg2rad(0.05)) -> InitialState:
+    """Attitude and gyro bias at t_mag[0] from the opening window, no prior needed.
+
+    The window is at least ``window_s`` long and is stretched (up to ``max_window_s``) until the
+    reference field has turned ``min_turn_deg`` in GCRF, so that the rotation about the field is
+    fixed. Steps: (1) gyro integration with zero bias and Davenport's q-method on the de-rotated
+    pairs; (2) least squares on A0 and a constant bias over the first 30 s, then (3) over the whole
+    window. The starting covariance is the least-squares covariance scaled up by the number of
+    vectors (the field-model error is correlated over the whole window, so the vectors are not
+    independent), floored at ``floor_att_rad`` and ``floor_bias_rad_s`` (common practice, no source:
+    a start a few degrees off is well inside the filter's linear range).
+
+    Parameters
+    ----------
+    t_mag : (N,) s; b_body_nT : (N, 3) nT body; b_ref_nT : (N, 3) nT GCRF
+    t_gyro : (G,) s; w_gyro : (G, 3) rad/s body
+    sigma_vec_nT : float, 1-sigma per axis of one field vector (sensor plus field model), nT
+    sigma_bias0_rad_s : float, prior 1-sigma of the gyro bias (weights the bias in the fit)
+    """
+    t0 = float(t_mag[0])
+    w = _window(t_mag, b_ref_nT, t0, window_s, max_window_s, np.deg2rad(min_turn_deg))
+    inwin = np.nonzero(t_mag <= t0 + w)[0]
+    idx = inwin[_subsample(len(inwin), 400)]
+    if idx[0] != 0:
+        idx = np.r_[0, idx]
+    tq, bq, rq = t_mag[idx], b_body_nT[idx], b_ref_nT[idx]
+    bmag = float(np.median(np.linalg.norm(bq, axis=1)))
+    sig_ang = sigma_vec_nT / bmag
+
+    def delta(bias):
+        return core.integrate_gyro(t_gyro, w_gyro, np.asarray(bias, float), tq)
+
+    d0 = Rotation.from_quat(delta(np.zeros(3)))
+    sol = davenport_q_method(d0.inv().apply(bq), rq, sig_ang)
+    a0 = Rotation.from_quat(sol.q_body_from_gcrf)
+
+    def residuals(p, sel):
+        a = Rotation.from_rotvec(-p[:3]) * a0
+        dq = Rotation.from_quat(core.integrate_gyro(t_gyro, w_gyro, p[3:], tq[sel]))
+        pred = (dq * a).apply(rq[sel])
+        res = ((pred - bq[sel]) / sigma_vec_nT).ravel()
+        return np.r_[res, p[3:] / sigma_bias0_rad_s]
+
+    p = np.zeros(6)
+    short = np.nonzero(tq <= t0 + min(30.0, w))[0]
+    for sel in (short, np.arange(len(tq))):
+        if len(sel) < 4:
+            continue
+        fit = least_squares(residuals, p, args=(sel,), method="lm", x_scale=np.r_[np.full(3, 0.05),
+                                                                                   np.full(3, 1e-3)])
+        p = fit.x
+    jac = fit.jac
+    try:
+        cov = np.linalg.inv(jac.T @ jac)
+    except np.linalg.LinAlgError:
+        cov = np.diag(np.r_[np.full(3, np.inf), np.full(3, sigma_bias0_rad_s ** 2)])
+    scale = len(tq)  # vectors are correlated through the field-model error: count them as one
+    s_att = np.sqrt(np.clip(np.diag(cov)[:3] * scale, 0.0, None))
+    s_b = np.sqrt(np.clip(np.diag(cov)[3:] * scale, 0.0, None))
+    s_att = np.maximum(np.nan_to_num(s_att, nan=np.pi, posinf=np.pi), floor_att_rad)
+    s_b = np.minimum(np.maximum(np.nan_to_num(s_b, nan=sigma_bias0_rad_s, posinf=sigma_bias0_rad_s),
+                                floor_bias_rad_s), sigma_bias0_rad_s)
+    q0 = (Rotation.from_rotvec(-p[:3]) * a0).as_quat()
+    rms = float(np.sqrt(np.mean(residuals(p, np.arange(len(tq)))[:-3] ** 2)) * sigma_vec_nT)
+    return InitialState(q0 if q0[3] >= 0 else -q0, p[3:].copy(), s_att, s_b, "q-method+gyro-bias-lsq", w,
+                        {"vectors": int(len(tq)), "residual_rms_nT": rms,
+                         "field_turn_deg": float(np.rad2deg(np.arccos(np.clip(
+                             rq[0] @ rq[-1] / np.linalg.norm(rq[0]) / np.linalg.norm(rq[-1]), -1, 1))))})

@@ -1,0 +1,134 @@
+"""Overlapping Allan deviation of gyro rate data and the noise terms read from it.
+
+The overlapping Allan variance of rate samples ``w_k`` taken every ``tau0`` seconds, with the angle
+``theta_k = tau0 * sum_{j<k} w_j`` (theta_0 = 0, N angles), at ``tau = m tau0`` is
+
+    sigma^2(tau) = 1 / (2 tau^2 (N - 2m)) * sum_{k=0}^{N-2m-1} (theta_{k+2m} - 2 theta_{k+m} + theta_k)^2
+
+(IEEE Std 952-1997 annex C; Riley 2008, NIST SP 1065, eq. 11). On a log-log plot of sigma(tau),
+slope -1/2 is angle random walk with ``N = sigma(1 s)``, slope 0 is bias instability with
+``B = sigma_min / 0.664`` (0.664 = sqrt(2 ln 2 / pi), IEEE Std 952-1997 annex C (memory)), slope +1/2
+is rate random walk with ``K = sigma(3 s)``.
+
+Units: rate in rad/s (or deg/s; the result is in the same unit); N in unit*sqrt(s) (= unit/sqrt(Hz)),
+B in unit, K in unit/sqrt(s).
+
+References
+----------
+IEEE Std 952-1997 (R2008), revised as IEEE Std 952-2020. IEEE Standard Specification Format Guide and
+Test Procedure for Single-Axis Interferometric Fiber Optic Gyros. Annex C (Allan variance).
+Riley, W. J. (2008). Handbook of Frequency Stability Analysis. NIST Special Publication 1065.
+El-Sheimy, N., Hou, H. and Niu, X. (2008). Analysis and modeling of inertial sensors using Allan
+variance. IEEE Trans. Instrum. Meas. 57(1), 140-149.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["overlapping_adev", "GyroNoiseFigures", "gyro_noise_from_adev", "white_noise_from_differences"]
+
+FLICKER_FLOOR_FACTOR = 0.664  # sigma_min = 0.664 B for bias instability, sqrt(2 ln2 / pi) (memory)
+
+
+def overlapping_adev(rate: np.ndarray, fs_hz: float, m: np.ndarray | None = None
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Overlapping Allan deviation of rate samples.
+
+    Parameters
+    ----------
+    rate : (N,) or (N, k) rate samples, equally spaced (any unit; each column separately)
+    fs_hz : float, sampling rate, Hz
+    m : (M,) int averaging factors, optional
+        Default: octaves 1, 2, 4, ... while at least one difference remains.
+
+    Returns
+    -------
+    taus : (M,) s
+    adev : (M,) or (M, k), same unit as ``rate``
+    n_terms : (M,) int, number of second differences averaged
+    """
+    x = np.asarray(rate, dtype=float)
+    one = x.ndim == 1
+    x = x.reshape(len(x), -1)
+    x = x - x.mean(axis=0)  # the mean rate does not change the result; removing it keeps precision
+    tau0 = 1.0 / float(fs_hz)
+    theta = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(x, axis=0) * tau0])
+    n = len(theta)
+    if m is None:
+        m = 2 ** np.arange(int(np.floor(np.log2(n))) + 1)
+    m = np.asarray(m, dtype=np.int64)
+    m = m[(m >= 1) & (n - 2 * m >= 1)]
+    adev = np.empty((len(m), x.shape[1]))
+    terms = n - 2 * m
+    for i, mi in enumerate(m):
+        d = theta[2 * mi:] - 2.0 * theta[mi:n - mi] + theta[:n - 2 * mi]
+        tau = mi * tau0
+        adev[i] = np.sqrt(np.sum(d * d, axis=0) / (2.0 * tau * tau * (n - 2 * mi)))
+    return m * tau0, (adev[:, 0] if one else adev), terms
+
+
+@dataclass(frozen=True)
+class GyroNoiseFigures:
+    """Noise terms read from an Allan deviation curve (one axis).
+
+    Attributes
+    ----------
+    arw : float or None, N, unit*sqrt(s) (angle random walk; sigma(1 s) on the -1/2 line)
+    bias_instability : float, B = sigma_min / 0.664, unit
+    rrw : float or None, K, unit/sqrt(s) (rate random walk; sigma(3 s) on the +1/2 line)
+    tau_min_s : float, where sigma is smallest
+    """
+
+    arw: float | None
+    bias_instability: float
+    rrw: float | None
+    tau_min_s: float
+
+
+def gyro_noise_from_adev(taus: np.ndarray, adev: np.ndarray, slope_tolerance: float = 0.2) -> GyroNoiseFigures:
+    """Angle random walk, bias instability and rate random walk from one Allan deviation curve.
+
+    The -1/2 and +1/2 lines are fitted (in log-log, slope fixed) through the points whose local slope
+    is within ``slope_tolerance`` of -1/2 or +1/2; a line with no such points is reported as None,
+    except that the ARW falls back to the shortest tau (where white noise dominates any real gyro).
+
+    Parameters
+    ----------
+    taus : (M,) s, increasing; adev : (M,) same unit as the rate
+    """
+    t = np.asarray(taus, float)
+    a = np.asarray(adev, float)
+    lt, la = np.log(t), np.log(a)
+    slope = np.gradient(la, lt) if len(t) > 2 else np.full(len(t), -0.5)
+    arw_pts = np.abs(slope + 0.5) <= slope_tolerance
+    rrw_pts = np.abs(slope - 0.5) <= slope_tolerance
+    if arw_pts.any():
+        arw = float(np.exp(np.mean(la[arw_pts] + 0.5 * lt[arw_pts])))
+    else:
+        arw = float(a[0] * np.sqrt(t[0]))
+    rrw = float(np.exp(np.mean(la[rrw_pts] - 0.5 * (lt[rrw_pts] - np.log(3.0))))) if rrw_pts.any() else None
+    k = int(np.argmin(a))
+    return GyroNoiseFigures(arw, float(a[k] / FLICKER_FLOOR_FACTOR), rrw, float(t[k]))
+
+
+def white_noise_from_differences(x: np.ndarray) -> float:
+    """Per-sample white-noise sigma of a smooth signal plus white noise, from second differences.
+
+    For white noise the second difference has variance 6 sigma^2; a smooth signal sampled fast
+    contributes almost nothing. The spread is the median absolute deviation scaled by 1.4826 (the
+    normal-distribution consistency factor), so spikes and steps do not inflate it. With several
+    columns the result is the rms over columns.
+
+    Parameters
+    ----------
+    x : (N,) or (N, k) samples (finite)
+    """
+    a = np.asarray(x, dtype=float)
+    a = a.reshape(len(a), -1)
+    d2 = a[2:] - 2.0 * a[1:-1] + a[:-2]
+    mad = np.median(np.abs(d2 - np.median(d2, axis=0)), axis=0)
+    s = 1.4826 * mad / np.sqrt(6.0)
+    return float(np.sqrt(np.mean(s ** 2)))
