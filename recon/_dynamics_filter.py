@@ -1,0 +1,508 @@
+"""When the gyro cannot be trusted, and the filter that does without it.
+
+Gyro checks use the kinematics of the measured field: in body axes ``db/dt = -(w x b) + A db_ref/dt``,
+so with a gyro reading ``w_g = w + beta`` the residual ``db/dt + w_g x b - A db_ref/dt = beta x b``
+must be explained by a small, nearly constant bias. A gyro stuck at one value, or at zero, or whose
+output does not follow the field's motion is declared dead (anomaly ``gyro_dead``) and the pass is
+reconstructed in dynamics mode: attitude and body rate propagated with Euler's equations under the
+logged coil dipole and the gravity-gradient torque, corrected by the magnetometer only, as in Psiaki,
+Martel & Pal (1990). A step in the kinematic bias between windows is a ``gyro_bias_jump``.
+
+References
+----------
+Psiaki, M. L., Martel, F. and Pal, P. K. (1990). Three-axis attitude determination via Kalman
+filtering of magnetometer data. J. Guidance 13(3), 506-514.
+Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
+Control. Springer. Sec. 3.3 (kinematics and Euler's equations), 3.3.6.3 (gravity gradient).
+Savitzky, A. and Golay, M. J. E. (1964). Smoothing and differentiation of data by simplified least
+squares procedures. Anal. Chem. 36(8), 1627-1639 (the local-slope derivative).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import least_squares
+from scipy.spatial.transform import Rotation
+
+from . import _mekf_core as core
+from ._wahba import InitialState, davenport_q_method, initial_state_with_gyro
+from .allan import white_noise_from_differences
+from .anomaly import Anomaly
+
+__all__ = ["GyroCheck", "check_gyro", "BiasStep", "find_bias_step", "step_mean_dipole", "coil_log_with_off_windows",
+           "local_slope", "estimate_dynamics", "initial_state_dynamics"]
+
+_NS = 1_000_000_000
+_DEG = np.pi / 180.0
+
+
+def _at(t_epoch_ns: int, t_s: float) -> np.datetime64:
+    return np.datetime64(int(t_epoch_ns + round(t_s * _NS)), "ns")
+
+
+def local_slope(t: np.ndarray, x: np.ndarray, half_width_s: float) -> np.ndarray:
+    """Least-squares slope of x over [t - h, t + h] at every sample (first-order Savitzky-Golay).
+
+    Parameters
+    ----------
+    t : (N,) s increasing; x : (N, k); half_width_s : h, s
+    """
+    x = np.asarray(x, float).reshape(len(t), -1)
+    lo = np.searchsorted(t, t - half_width_s, side="left")
+    hi = np.searchsorted(t, t + half_width_s, side="right")
+    c1 = np.r_[0.0, np.cumsum(t)]
+    c2 = np.r_[0.0, np.cumsum(t * t)]
+    cx = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(x, axis=0)])
+    ctx = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(t[:, None] * x, axis=0)])
+    n = (hi - lo).astype(float)
+    st = c1[hi] - c1[lo]
+    stt = c2[hi] - c2[lo]
+    sx = cx[hi] - cx[lo]
+    stx = ctx[hi] - ctx[lo]
+    den = n * stt - st * st
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = (n[:, None] * stx - st[:, None] * sx) / den[:, None]
+    return np.where((den > 0)[:, None], slope, np.nan)
+
+
+def _gyro_at(t_gyro: np.ndarray, w_gyro: np.ndarray, t: np.ndarray, half_width_s: float) -> np.ndarray:
+    """Mean gyro reading over [t - h, t + h] (samples inside; nearest sample if none)."""
+    lo = np.searchsorted(t_gyro, t - half_width_s, side="left")
+    hi = np.searchsorted(t_gyro, t + half_width_s, side="right")
+    c = np.vstack([np.zeros((1, 3)), np.cumsum(w_gyro, axis=0)])
+    n = hi - lo
+    near = np.clip(np.searchsorted(t_gyro, t), 0, len(t_gyro) - 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = (c[hi] - c[lo]) / n[:, None]
+    return np.where((n > 0)[:, None], mean, w_gyro[near])
+
+
+def _longest_constant_run(t: np.ndarray, x: np.ndarray) -> tuple[float, float, int]:
+    """Longest time span over which column values do not change: (start_s, stop_s, axis)."""
+    best = (0.0, 0.0, -1)
+    for ax in range(x.shape[1]):
+        same = np.diff(x[:, ax]) == 0.0
+        if not same.any():
+            continue
+        edges = np.diff(np.r_[0, same.astype(np.int8), 0])
+        starts = np.nonzero(edges == 1)[0]
+        stops = np.nonzero(edges == -1)[0]  # run covers samples starts..stops (inclusive)
+        span = t[stops] - t[starts]
+        k = int(np.argmax(span))
+        if span[k] > best[1] - best[0]:
+            best = (float(t[starts[k]]), float(t[stops[k]]), ax)
+    return best
+
+
+@dataclass(frozen=True)
+class GyroCheck:
+    """Verdict on the gyro log.
+
+    Attributes
+    ----------
+    usable : bool
+    reason : str, one sentence with the numbers
+    dead_start_s, dead_stop_s : float or None, window where the gyro is dead (s since the epoch)
+    axis : int or None
+    explained_fraction : float or None
+        Fraction of the field's body-frame rate of change explained by the gyro (1 for a perfect
+        gyro, about 0 for a dead one); None when the satellite barely turns.
+    """
+
+    usable: bool
+    reason: str
+    dead_start_s: float | None = None
+    dead_stop_s: float | None = None
+    axis: int | None = None
+    explained_fraction: float | None = None
+
+    def anomaly(self, t_epoch_ns: int) -> Anomaly:
+        start = None if self.dead_start_s is None else _at(t_epoch_ns, self.dead_start_s)
+        stop = None if self.dead_stop_s is None else _at(t_epoch_ns, self.dead_stop_s)
+        return Anomaly("gyro_dead", "critical", self.reason + " Attitude reconstructed without the gyro "
+                       "(dynamics mode).", start, stop, axis=None if self.axis is None else "xyz"[self.axis],
+                       value=self.explained_fraction)
+
+
+def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body_nT: np.ndarray,
+               arw_rad_sqrt_s: float | None, *, stuck_min_s: float = 30.0, stuck_min_fraction: float = 0.1,
+               window_s: float = 60.0, max_bias_rad_s: float = 2.0 * _DEG,
+               min_explained: float = 0.5, noise_factor: float = 20.0) -> GyroCheck:
+    """Is the gyro alive? Three tests, any one failing makes it dead.
+
+    1. Stuck: one axis repeats exactly the same value for at least ``stuck_min_s`` and
+       ``stuck_min_fraction`` of the log (a live gyro's noise never repeats that long).
+    2. Kinematics: over ``window_s`` windows where the body field turns faster than the orbit alone
+       can turn it (|db/dt| > 3 x 0.0025 rad/s x |b|, i.e. three times twice the orbital rate), the
+       gyro, less a constant bias of at most ``max_bias_rad_s``, must explain at least
+       ``min_explained`` of the variance of db/dt.
+    3. Noise: the per-sample white noise exceeds ``noise_factor`` times the stated ARW (output is
+       noise), tested only when test 2 has no informative window.
+
+    Thresholds are engineering choices (common practice, no source) with wide margins: a healthy
+    gyro explains more than 90 % of db/dt when the satellite turns faster than 0.5 deg/s.
+
+    Parameters
+    ----------
+    t_gyro : (G,) s; w_gyro : (G, 3) rad/s body; t_mag : (N,) s; b_body_nT : (N, 3) nT body
+    arw_rad_sqrt_s : float or None, stated angle random walk
+    """
+    span = float(t_gyro[-1] - t_gyro[0])
+    s0, s1, ax = _longest_constant_run(t_gyro, w_gyro)
+    if ax >= 0 and (s1 - s0) >= max(stuck_min_s, stuck_min_fraction * span):
+        value = float(w_gyro[np.searchsorted(t_gyro, s0), ax])
+        return GyroCheck(False, f"gyro axis {'xyz'[ax]} repeats the same output {np.rad2deg(value):.4g} deg/s "
+                                f"for {s1 - s0:.0f} s ({100 * (s1 - s0) / span:.0f} % of the log): stuck or dead.",
+                         s0, float(t_gyro[-1]) if s1 >= t_gyro[-1] - 1.0 else s1, ax, None)
+    # kinematic test
+    bdot = local_slope(t_mag, b_body_nT, 1.0)
+    wg = _gyro_at(t_gyro, w_gyro, t_mag, 1.0)
+    ok = np.all(np.isfinite(bdot), axis=1)
+    bmag = np.linalg.norm(b_body_nT, axis=1)
+    floor = 3.0 * 0.0025 * bmag  # three times the field's own turning rate in a polar LEO
+    fast = ok & (np.linalg.norm(bdot, axis=1) > floor)
+    explained = None
+    if fast.sum() >= 50:
+        e = bdot[fast] + np.cross(wg[fast], b_body_nT[fast])
+        # e = beta x b = -[b x] beta: least squares for a constant bias
+        bx = np.zeros((fast.sum(), 3, 3))
+        b = b_body_nT[fast]
+        bx[:, 0, 1], bx[:, 0, 2], bx[:, 1, 2] = -b[:, 2], b[:, 1], -b[:, 0]
+        bx[:, 1, 0], bx[:, 2, 0], bx[:, 2, 1] = b[:, 2], -b[:, 1], b[:, 0]
+        beta, *_ = np.linalg.lstsq(-bx.reshape(-1, 3), e.ravel(), rcond=None)
+        res = e + np.einsum("nij,j->ni", bx, beta)
+        explained = float(1.0 - np.sum(res ** 2) / np.sum(bdot[fast] ** 2))
+        bad_bias = np.linalg.norm(beta) > max_bias_rad_s
+        if explained < min_explained or bad_bias:
+            tf = t_mag[fast]
+            frac_res = np.linalg.norm(res, axis=1) / np.linalg.norm(bdot[fast], axis=1)
+            badw = tf[frac_res > 0.7]
+            start = float(badw[0]) if len(badw) else float(tf[0])
+            stop = float(badw[-1]) if len(badw) else float(tf[-1])
+            why = (f"a bias of {np.rad2deg(np.linalg.norm(beta)):.2f} deg/s would be needed" if bad_bias else
+                   f"the gyro explains only {100 * max(explained, 0.0):.0f} % of the field's body-frame rate "
+                   f"of change (expected > {100 * min_explained:.0f} %)")
+            return GyroCheck(False, f"gyro output does not follow the measured field's motion: {why}, over "
+                                    f"{fast.sum()} samples where the satellite turns.", start, stop, None,
+                             explained)
+        return GyroCheck(True, f"gyro consistent with the magnetometer: explains {100 * explained:.1f} % of "
+                               f"the field's body-frame rate of change.", explained_fraction=explained)
+    if arw_rad_sqrt_s:
+        dt = float(np.median(np.diff(t_gyro)))
+        white = white_noise_from_differences(w_gyro)
+        expected = arw_rad_sqrt_s / np.sqrt(dt)
+        if white > noise_factor * expected:
+            return GyroCheck(False, f"gyro white noise {np.rad2deg(white):.3g} deg/s per sample is "
+                                    f"{white / expected:.0f} times the stated angle random walk allows, and the "
+                                    f"satellite turns too slowly to test the output against the field.",
+                             float(t_gyro[0]), float(t_gyro[-1]))
+    return GyroCheck(True, "gyro not stuck; the satellite turns too slowly for a kinematic test.")
+
+
+@dataclass(frozen=True)
+class BiasStep:
+    """A step in the gyro bias found from the kinematic bias of successive windows.
+
+    Attributes
+    ----------
+    t_s : float, time of the step (s since the epoch)
+    delta_rad_s : (3,) change of bias, body frame
+    z : (3,) significance per axis (change over its 1-sigma)
+    before_rad_s, after_rad_s : (3,) mean kinematic bias on each side
+    window_s : float
+    """
+
+    t_s: float
+    delta_rad_s: np.ndarray
+    z: np.ndarray
+    before_rad_s: np.ndarray
+    after_rad_s: np.ndarray
+    window_s: float
+
+    def anomaly(self, t_epoch_ns: int) -> Anomaly:
+        ax = int(np.argmax(np.abs(self.z)))
+        d = np.rad2deg(self.delta_rad_s)
+        t = _at(t_epoch_ns, self.t_s)
+        half = np.timedelta64(int(self.window_s * _NS), "ns")
+        return Anomaly("gyro_bias_jump", "warning",
+                       f"gyro bias stepped by ({d[0]:+.3f}, {d[1]:+.3f}, {d[2]:+.3f}) deg/s (body x, y, z) "
+                       f"near {np.datetime_as_string(t, unit='s')}Z: kinematic bias from gyro versus field motion "
+                       f"{np.rad2deg(self.before_rad_s[ax]):+.3f} deg/s before and "
+                       f"{np.rad2deg(self.after_rad_s[ax]):+.3f} deg/s after on axis {'xyz'[ax]} "
+                       f"({abs(self.z[ax]):.0f} sigma, {self.window_s:.0f} s windows). The filter was rerun with "
+                       f"the bias free to move at that instant.",
+                       t - half, t + half, axis="xyz"[ax], value=float(d[ax]))
+
+
+def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, q_body_from_gcrf: np.ndarray,
+                   t_gyro: np.ndarray, w_gyro: np.ndarray, bias_walk_rad_s_sqrt_s: float, *,
+                   window_s: float = 30.0, z_min: float = 8.0, min_step_rad_s: float = 0.02 * _DEG,
+                   min_windows: int = 4) -> BiasStep | None:
+    """Look for one step in the gyro bias.
+
+    In each ``window_s`` window, ``beta`` solves ``db/dt - A db_ref/dt + w_g x b = -[b x] beta`` in
+    least squares (A from the smoothed attitude). The best single split of the window series is the
+    one with the largest change of mean bias over its standard error (inflated by the bias random
+    walk over the pass); it is reported when that exceeds ``z_min`` on some axis and the change is
+    larger than ``min_step_rad_s`` and than five times the random walk's spread over the pass.
+
+    Returns
+    -------
+    BiasStep or None
+    """
+    bdot = local_slope(t_mag, b_body_nT, 1.0)
+    rdot = local_slope(t_mag, b_ref_nT, 1.0)
+    a_rdot = Rotation.from_quat(q_body_from_gcrf).apply(np.nan_to_num(rdot))
+    wg = _gyro_at(t_gyro, w_gyro, t_mag, 1.0)
+    e = bdot - a_rdot + np.cross(wg, b_body_nT)
+    ok = np.all(np.isfinite(e), axis=1)
+    edges = np.arange(t_mag[0], t_mag[-1] + window_s, window_s)
+    est, var, tc = [], [], []
+    # slopes of neighbouring samples share data: use every tenth sample as roughly independent
+    for a, b in zip(edges[:-1], edges[1:], strict=False):
+        sel = np.nonzero(ok & (t_mag >= a) & (t_mag < b))[0][::10]
+        if len(sel) < 6:
+            continue
+        bb = b_body_nT[sel]
+        m = np.zeros((len(sel), 3, 3))
+        m[:, 0, 1], m[:, 0, 2], m[:, 1, 2] = bb[:, 2], -bb[:, 1], bb[:, 0]
+        m[:, 1, 0], m[:, 2, 0], m[:, 2, 1] = -bb[:, 2], bb[:, 1], -bb[:, 0]  # -[b x]
+        mm = m.reshape(-1, 3)
+        y = e[sel].ravel()
+        ntn = mm.T @ mm
+        if np.linalg.cond(ntn) > 1e8:
+            continue
+        beta = np.linalg.solve(ntn, mm.T @ y)
+        res = y - mm @ beta
+        s2 = float(res @ res) / max(len(y) - 3, 1)
+        est.append(beta)
+        var.append(np.diag(np.linalg.inv(ntn)) * s2)
+        tc.append(0.5 * (a + b))
+    if len(est) < 2 * min_windows:
+        return None
+    est, var, tc = np.array(est), np.array(var), np.array(tc)
+    wgt = 1.0 / var
+    span = tc[-1] - tc[0]
+    rw = bias_walk_rad_s_sqrt_s ** 2 * span / 3.0
+    best = None
+    for k in range(min_windows, len(est) - min_windows + 1):
+        w0, w1 = wgt[:k], wgt[k:]
+        m0 = (w0 * est[:k]).sum(0) / w0.sum(0)
+        m1 = (w1 * est[k:]).sum(0) / w1.sum(0)
+        # robust spread: the scatter of the windows about their side's mean, not only the formal one
+        v0 = np.maximum(1.0 / w0.sum(0), np.var(est[:k], axis=0) / k)
+        v1 = np.maximum(1.0 / w1.sum(0), np.var(est[k:], axis=0) / (len(est) - k))
+        z = (m1 - m0) / np.sqrt(v0 + v1 + rw)
+        score = np.max(np.abs(z))
+        if best is None or score > best[0]:
+            best = (score, k, m1 - m0, z, m0, m1)
+    score, k, delta, z, m0, m1 = best
+    big = np.abs(delta) > max(min_step_rad_s, 5.0 * np.sqrt(bias_walk_rad_s_sqrt_s ** 2 * span))
+    if score < z_min or not np.any(big & (np.abs(z) >= z_min)):
+        return None
+    t_step = 0.5 * (tc[k - 1] + tc[k])
+    return BiasStep(float(t_step), delta, z, m0, m1, window_s)
+
+
+def step_mean_dipole(t_steps: np.ndarray, t_coil: np.ndarray | None, i_coil_A: np.ndarray | None,
+                     dipole_per_amp: np.ndarray | None) -> np.ndarray:
+    """Mean coil dipole over each step [t_k, t_k+1], body frame, A m^2, (K, 3).
+
+    Each logged current is held until the next log row (zero before the first); the dipole is
+    ``m = C i``. The last step repeats the one before it.
+    """
+    k = len(t_steps)
+    if t_coil is None or i_coil_A is None or dipole_per_amp is None or len(t_coil) == 0:
+        return np.zeros((k, 3))
+    i = np.nan_to_num(np.asarray(i_coil_A, float))
+    m = i @ np.asarray(dipole_per_amp, float).T
+    dt = np.diff(t_coil)
+    cum = np.vstack([np.zeros(3), np.cumsum(m[:-1] * dt[:, None], axis=0)])
+
+    def integral(x):
+        j = np.searchsorted(t_coil, x, side="right") - 1
+        jj = np.clip(j, 0, len(t_coil) - 1)
+        val = cum[jj] + m[jj] * (x - t_coil[jj])[:, None]
+        return np.where((j >= 0)[:, None], val, 0.0)
+
+    ints = integral(np.asarray(t_steps, float))
+    out = np.zeros((k, 3))
+    h = np.diff(t_steps)
+    out[:-1] = (ints[1:] - ints[:-1]) / h[:, None]
+    out[-1] = out[-2] if k > 1 else 0.0
+    return out
+
+
+def coil_log_with_off_windows(tick_utc: np.ndarray, i_cmd_A: np.ndarray, before_s: float,
+                              after_s: float) -> tuple[np.ndarray, np.ndarray]:
+    """Coil current as a held-value log when the coils are off around every control tick.
+
+    With windowed magnetometer sampling the command of tick k flows from ``tick_k + after`` to
+    ``tick_k+1 - before`` and nothing flows inside ``[tick - before, tick + after]``. The result
+    lists (time, current) rows whose held values reproduce that profile, for :func:`step_mean_dipole`.
+
+    Parameters
+    ----------
+    tick_utc : (K,) datetime64[ns]; i_cmd_A : (K, 3) A; before_s, after_s : s
+
+    Returns
+    -------
+    t_utc : (2K,) datetime64[ns]; i_A : (2K, 3) A
+    """
+    ticks = np.asarray(tick_utc).astype("datetime64[ns]").astype(np.int64)
+    i = np.asarray(i_cmd_A, float)
+    t = np.empty(2 * len(ticks), np.int64)
+    t[0::2] = ticks - int(round(before_s * _NS))
+    t[1::2] = ticks + int(round(after_s * _NS))
+    out = np.zeros((2 * len(ticks), 3))
+    out[1::2] = i
+    return t.astype("datetime64[ns]"), out
+
+
+def _dyn_inputs(t: np.ndarray, m_steps: np.ndarray, r_km: np.ndarray) -> np.ndarray:
+    u = np.zeros((len(t), 9))
+    u[:, 0:3] = m_steps
+    u[:, 3:6] = r_km
+    u[:-1, 6:9] = r_km[1:]
+    u[-1, 6:9] = r_km[-1]
+    return u
+
+
+def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, m_steps: np.ndarray,
+                           r_km: np.ndarray, prm: np.ndarray, sigma_vec_nT: float, *,
+                           window_s: float = 120.0, n_starts: int = 12,
+                           floor_att_rad: float = 5.0 * _DEG, floor_rate_rad_s: float = 0.05 * _DEG
+                           ) -> InitialState:
+    """Attitude and body rate at t[0] from the magnetometer alone (no gyro).
+
+    1. Rate guess: least squares of ``db/dt = [b x] w`` over the first 6 s (the field's own turning,
+       about twice the orbital rate, is neglected here).
+    2. Attitude guess: q-method on the samples of the first 10 s carried back with that rate.
+    3. Because one field direction leaves the rotation about it undetermined until the field turns
+       in GCRF, ``n_starts`` guesses spread about the field axis are each refined by least squares
+       on (attitude, rate) with Euler's equations over ``window_s``; the smallest residual wins.
+
+    The covariance of the winner, scaled by the number of vectors (correlated field-model error),
+    floored at ``floor_att_rad`` and ``floor_rate_rad_s`` (common practice, no source), gives P0.
+    """
+    t0 = t[0]
+    first = np.nonzero(t - t0 <= 6.0)[0]
+    bdot = local_slope(t[first], b_body_nT[first], 1.0)
+    ok = np.all(np.isfinite(bdot), axis=1)
+    b = b_body_nT[first][ok]
+    bx = np.zeros((len(b), 3, 3))
+    bx[:, 0, 1], bx[:, 0, 2], bx[:, 1, 2] = -b[:, 2], b[:, 1], -b[:, 0]
+    bx[:, 1, 0], bx[:, 2, 0], bx[:, 2, 1] = b[:, 2], -b[:, 1], b[:, 0]
+    w_guess, *_ = np.linalg.lstsq(bx.reshape(-1, 3), bdot[ok].ravel(), rcond=None)
+    sel10 = np.nonzero(t - t0 <= 10.0)[0]
+    dq = Rotation.from_rotvec(-np.outer(t[sel10] - t0, w_guess))
+    sol = davenport_q_method(dq.inv().apply(b_body_nT[sel10]), b_ref_nT[sel10], sigma_vec_nT / 3e4)
+    a_guess = Rotation.from_quat(sol.q_body_from_gcrf)
+    # a coarse grid (0.5 s) for the least squares: RK4 at 0.5 s is exact to ~(w dt)^5 at these rates
+    win = np.nonzero(t - t0 <= window_s)[0]
+    step = max(1, int(round(0.5 / max(float(np.median(np.diff(t[win]))), 1e-3))))
+    grid = win[::step]
+    tw, bw, rw_, rkm = t[grid], b_body_nT[grid], b_ref_nT[grid], r_km[grid]
+    dtf = np.diff(t[win[0]:grid[-1] + 1])
+    mw = np.zeros((len(grid), 3))
+    for j in range(len(grid) - 1):  # mean dipole over each coarse interval
+        a, b = grid[j] - win[0], grid[j + 1] - win[0]
+        mw[j] = (m_steps[win[0] + a:win[0] + b] * dtf[a:b, None]).sum(0) / dtf[a:b].sum()
+    mw[-1] = mw[-2] if len(grid) > 1 else 0.0
+
+    def residuals(p, a_start, n=None):
+        # attitude as a small body-axis error about a_start: A = (I - [p x]) A_start, the filter's convention
+        n = len(grid) if n is None else n
+        q0 = (Rotation.from_rotvec(-p[:3]) * a_start).as_quat()
+        qs, _ = core.propagate_rigid_body(q0, p[3:].copy(), tw[:n], mw[:n], rw_[:n], rkm[:n], prm, 1)
+        pred = Rotation.from_quat(qs).apply(rw_[:n])
+        return ((pred - bw[:n]) / sigma_vec_nT).ravel()
+
+    axis = b_body_nT[0] / np.linalg.norm(b_body_nT[0])
+    # every start on the first half of the window, then the best two on all of it
+    half = max(int(np.searchsorted(tw, t0 + window_s / 2)), 8)
+    xs = np.r_[np.full(3, 0.1), np.full(3, 0.01)]
+    fits = []
+    for j in range(n_starts):
+        start = Rotation.from_rotvec(axis * 2.0 * np.pi * j / n_starts) * a_guess
+        fit = least_squares(residuals, np.r_[np.zeros(3), w_guess], args=(start, half), method="lm", x_scale=xs)
+        fits.append((fit.cost, Rotation.from_rotvec(-fit.x[:3]) * start, fit.x[3:]))
+    fits.sort(key=lambda f: f[0])
+    best = None
+    for _, start, w0 in fits[:2]:
+        fit = least_squares(residuals, np.r_[np.zeros(3), w0], args=(start,), method="lm", x_scale=xs)
+        if best is None or fit.cost < best[0].cost:
+            best = (fit, start)
+    best, a_best = best
+    sub = grid
+    try:
+        cov = np.linalg.inv(best.jac.T @ best.jac) * len(sub)
+    except np.linalg.LinAlgError:
+        cov = np.diag(np.r_[np.full(3, np.pi ** 2), np.full(3, (1.0 * _DEG) ** 2)])
+    q0 = (Rotation.from_rotvec(-best.x[:3]) * a_best).as_quat()
+    d = np.nan_to_num(np.sqrt(np.clip(np.diag(cov), 0.0, None)), nan=np.pi, posinf=np.pi)
+    s_att = np.maximum(d[:3], floor_att_rad)
+    s_w = np.maximum(d[3:], floor_rate_rad_s)
+    rms = float(np.sqrt(np.mean(best.fun ** 2)) * sigma_vec_nT)
+    return InitialState(q0 if q0[3] >= 0 else -q0, best.x[3:].copy(), s_att, s_w, "multi-start-dynamics-lsq",
+                        float(tw[-1] - t0), {"vectors": int(len(sub)), "residual_rms_nT": rms,
+                                             "starts": n_starts})
+
+
+def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
+                      init_window_s, report, gyro=None):
+    """Dynamics-mode reconstruction on the magnetometer time stamps; returns an AttitudeHistory.
+
+    When a gyro log exists whose early part is alive (dead only later in the pass), that part seeds
+    the initial attitude and rate; otherwise the start is found from the magnetometer alone.
+    """
+    from . import estimate as est  # one-way at run time: estimate owns the result types
+
+    t_epoch = tm[0]
+    t = (tm - t_epoch) / _NS
+    noise, src = est._resolve_noise(noise, bb[ok_rows], None, None)
+    prm = est._params(noise, 0.0, inertia)
+    r = br.copy()
+    if not ok_rows.all():  # fill rows without a usable reference by interpolation (propagation only)
+        for ax in range(3):
+            r[:, ax] = np.interp(t, t[ok_rows], br[ok_rows, ax])
+    z = np.nan_to_num(bb)
+    ct = None if coil_t_utc is None else (np.asarray(coil_t_utc).astype("datetime64[ns]").astype(np.int64)
+                                          - t_epoch) / _NS
+    m_steps = step_mean_dipole(t, ct, i_coil_A, dipole_per_amp)
+    r_km = np.zeros((len(t), 3)) if r_gcrf_km is None else np.nan_to_num(np.asarray(r_gcrf_km, float))
+    u = _dyn_inputs(t, m_steps, r_km)
+    sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
+    report("initialisation", 0.05)
+    init = None
+    if gyro is not None:
+        tg, wg, check = gyro
+        tgs = (tg - t_epoch) / _NS
+        dead0 = check.dead_start_s if check is not None and check.dead_start_s is not None else None
+        if dead0 is not None and dead0 - tgs[0] > init_window_s + 60.0 and tgs[0] <= t[0] + 1.0:
+            alive = tgs < dead0
+            okm = ok_rows & (t < dead0)
+            gi = initial_state_with_gyro(t[okm], bb[okm], br[okm], tgs[alive], wg[alive], sigma_vec_nT=sig_vec,
+                                         sigma_bias0_rad_s=noise.gyro_bias0_rad_s, window_s=init_window_s,
+                                         max_window_s=min(600.0, dead0 - tgs[0]))
+            w0 = wg[alive][tgs[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
+            s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * _DEG) ** 2)
+            init = InitialState(gi.q_body_from_gcrf, w0, gi.sigma_att_rad, s_w,
+                                "gyro-seeded (gyro alive before it died)", gi.window_s, gi.detail)
+    if init is None:
+        init = initial_state_dynamics(t[ok_rows], bb[ok_rows], br[ok_rows], m_steps[ok_rows], r_km[ok_rows],
+                                      prm, sig_vec, window_s=init_window_s)
+    report("forward filter and smoother", 0.2)
+    out_idx = np.arange(len(t), dtype=np.int64)
+    run = est.run_filter(core.MODE_DYNAMICS, t, u, ok_rows.copy(), z, r, prm, init, out_idx, len(t))
+    sel = np.arange(len(t))
+    sm = est._track(run, True, sel, core.MODE_DYNAMICS, prm, None, 0.0)
+    fw = est._track(run, False, sel, core.MODE_DYNAMICS, prm, None, 0.0)
+    return est.AttitudeHistory(tm.astype("datetime64[ns]"), sm, fw, run.nis[ok_rows],
+                               tm[ok_rows].astype("datetime64[ns]"), "dynamics", "", (), noise, src,
+                               {"method": init.method, "window_s": init.window_s,
+                                "rate0_dps": np.rad2deg(init.v).tolist(),
+                                "sigma_att0_deg": np.rad2deg(init.sigma_att_rad).tolist(),
+                                "smoother_steps_not_pd": run.smoother_bad, **init.detail})
