@@ -1,0 +1,105 @@
+"""estimate_attitude on passes from recon.simulate (IGRF-14 field plus ~100 nT unmodelled, SGP4 orbit,
+B-dot detumble from 4 deg/s, 10 Hz magnetometer with 100 nT noise, 20 Hz gyro, coil gain errors).
+
+The magnetometer is calibrated here with the simulator's own hardware truth (bias, soft iron and coil
+field removed exactly), so these tests judge the estimator alone. Thresholds as in test_estimate.py
+(common practice, no source).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from test_estimate_truth import attitude_error_rad
+
+from recon._dynamics_filter import coil_log_with_off_windows
+from recon.estimate import NoiseModel, estimate_attitude
+from recon.simulate.api import simulate_pass
+
+DEG = np.pi / 180.0
+DURATION_S = 1800.0
+
+
+def _inputs(sp):
+    mag = sp.magnetometer
+    b_sensor = np.linalg.solve(mag.S, (sp.b_meas_sensor_nT - mag.bias_nT - sp.b_coil_sensor_nT).T).T
+    b_body = b_sensor @ mag.sensor_to_body.T
+    w_body = sp.w_gyro_meas_sensor_rad_s @ sp.gyro.sensor_to_body.T
+    cfg = sp.config
+    tc, ic = coil_log_with_off_windows(sp.tick_time_utc, sp.i_cmd_A, *cfg.off_window_s)
+    noise = NoiseModel(mag_nT=mag.noise_nT, gyro_arw_rad_sqrt_s=sp.gyro.arw_rad_sqrt_s,
+                       gyro_bias_walk_rad_s_sqrt_s=sp.gyro.rrw_rad_s_sqrt_s)
+    return dict(b_body_nT=b_body, b_ref_gcrf_nT=sp.b_igrf_gcrf_nT, gyro_t_utc=sp.gyro_time_utc,
+                w_gyro_body_rad_s=w_body, noise=noise, inertia_kg_m2=sp.inertia_kg_m2, coil_t_utc=tc,
+                i_coil_A=ic, dipole_per_amp=sp.C_nominal, r_gcrf_km=sp.r_gcrf_km)
+
+
+def _errors(track, sp, sel):
+    ang = np.rad2deg(np.linalg.norm(attitude_error_rad(track.q_body_from_gcrf[sel], sp.q_body_from_gcrf[sel]), axis=1))
+    rate = np.rad2deg(np.linalg.norm(track.w_body_rad_s[sel] - sp.w_body_rad_s[sel], axis=1))
+    return float(np.sqrt(np.mean(ang ** 2))), float(np.sqrt(np.mean(rate ** 2)))
+
+
+@pytest.fixture(scope="module", params=[1, 2])
+def nominal(request):
+    sp = simulate_pass("nominal", request.param, None, duration_s=DURATION_S)
+    kw = _inputs(sp)
+    return sp, estimate_attitude(sp.time_utc, **kw)
+
+
+def test_nominal_pass_accuracy_and_consistency(nominal):
+    """Measured: seed 1 forward 0.22, smoothed 0.22 deg RMS, rate 0.010 deg/s; seed 2 forward 0.30,
+    smoothed 0.22 deg, rate 0.010 deg/s; NIS fraction inside the 95 % interval 0.95 (mean 3.0-3.1)."""
+    sp, h = nominal
+    assert h.mode == "gyro"
+    after = sp.t_s > 600.0
+    att_f, _ = _errors(h.forward, sp, after)
+    att_s, rate_s = _errors(h.smoothed, sp, after)
+    assert att_f <= 1.0 and att_s <= 0.6 and rate_s <= 0.02, (att_f, att_s, rate_s)
+    assert 0.90 <= h.nis_fraction_inside() <= 0.99
+    assert h.anomalies == ()
+    # gyro bias estimated to a few thousandths of a deg/s
+    berr = np.rad2deg(h.gyro_bias_rad_s[after] - sp.gyro_bias_body_rad_s[after])
+    assert np.sqrt(np.mean(berr ** 2)) < 0.005
+
+
+def test_dead_gyro_pass_uses_dynamics_mode():
+    """Scenario gyro_dead: the output drops to zero 40 % into the pass. Measured (seed 1): smoothed
+    0.15 deg and 0.0015 deg/s RMS after 20 minutes (forward 0.19 deg, 0.003 deg/s)."""
+    sp = simulate_pass("gyro_dead", 1, None, duration_s=DURATION_S)
+    h = estimate_attitude(sp.time_utc, **_inputs(sp))
+    assert h.mode == "dynamics"
+    dead = [a for a in h.anomalies if a.code == "gyro_dead"]
+    assert len(dead) == 1
+    assert abs((dead[0].start_utc - sp.time_utc[0]) / np.timedelta64(1, "s") - 0.4 * DURATION_S) < 1.0
+    after = sp.t_s > 1200.0
+    att, rate = _errors(h.smoothed, sp, after)
+    assert att <= 3.0 and rate <= 0.1, (att, rate)
+
+
+def test_bias_jump_pass():
+    """Scenario gyro_bias_jump: +0.5 deg/s on the gyro x axis (body x here) half-way. Measured (seed 1):
+    found as +0.497 deg/s at 09:27:00; smoothed 0.23 deg RMS after 10 minutes."""
+    sp = simulate_pass("gyro_bias_jump", 1, None, duration_s=DURATION_S)
+    h = estimate_attitude(sp.time_utc, **_inputs(sp))
+    jumps = [a for a in h.anomalies if a.code == "gyro_bias_jump"]
+    assert len(jumps) == 1 and jumps[0].axis == "x"
+    assert jumps[0].value == pytest.approx(0.5, abs=0.05)
+    t_mid = (jumps[0].start_utc - sp.time_utc[0]) / np.timedelta64(1, "s") + 30.0
+    assert abs(t_mid - 0.5 * DURATION_S) <= 30.0
+    att, _ = _errors(h.smoothed, sp, sp.t_s > 600.0)
+    assert att <= 0.6
+
+
+def test_no_gyro_cold_start_on_a_detumbling_pass():
+    """The same B-dot pass without any gyro: magnetometer-only start and dynamics mode with the logged,
+    gated coil currents. Measured (seed 3): smoothed 0.51 deg, 0.002 deg/s RMS after 20 minutes
+    (forward 0.54 deg, 0.004 deg/s)."""
+    sp = simulate_pass("nominal", 3, None, duration_s=DURATION_S)
+    kw = _inputs(sp)
+    kw.pop("gyro_t_utc")
+    kw.pop("w_gyro_body_rad_s")
+    h = estimate_attitude(sp.time_utc, **kw)
+    assert h.mode == "dynamics" and h.mode_reason == "gyro absent"
+    att, rate = _errors(h.smoothed, sp, sp.t_s > 1200.0)
+    assert att <= 3.0 and rate <= 0.1, (att, rate)
