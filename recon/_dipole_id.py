@@ -1,0 +1,562 @@
+"""Identify each coil's effective dipole per amp from the satellite's motion.
+
+Euler's equation ``J dw/dt + w x (J w) = (C i) x B + tau_gg + m_r x B + d`` integrated over an
+interval ``[t1, t2]`` is linear in the nine entries of C::
+
+    J (w(t2) - w(t1)) + int (w x J w) dt - int tau_gg dt = -int [B x] C i dt - int [B x] dt m_r + d (t2 - t1)
+
+with ``[B x] C i = (i^T (x) [B x]) vec(C)`` (column-major vec, Kronecker product). The residual dipole
+m_r (A m^2) and a constant disturbance torque d (N m) are optional extra unknowns.
+
+Intervals. The evaluation instants (the control ticks) are grouped into short segments of about 30
+instants. Within a segment starting at s, every instant t_j gives the equation over [s, t_j] with
+J w(s) treated as one more unknown per segment, eliminated by demeaning within the segment
+(Frisch-Waugh-Lovell). Every pair of instants in a segment is then an interval [t1, t2] of the
+integrated equation, while each rate sample enters once; with white rate errors this is the
+efficient use of the data, and segments keep slow model errors (disturbances, inertia) from
+accumulating.
+
+Integrals. The applied current is piecewise constant: the logged command held from its log
+instant (shifted by the actuation latency), switched off inside the coil-off windows of windowed
+sampling. Between consecutive switching instants ``int [B x] C i dt = [(F(b) - F(a)) x] C i`` with F
+the antiderivative of a cubic spline through the body-frame field, so the duty cycle and any latency
+enter exactly; ``w x J w`` and the gravity-gradient torque are integrated through their own splines.
+
+Uncertainty. Weights come from the rate covariance when it is given (``J P J^T`` per instant); the
+covariance of the solution is scaled by the residual variance (chi-square per degree of freedom)
+and, when consecutive residuals are positively correlated, by the AR(1) variance inflation
+(1 + rho) / (1 - rho); each variance is then replaced by the delete-one-block jackknife variance
+where that is larger. Instants whose whitened residual exceeds the chi-square(3) 1 - 1e-4 quantile
+are dropped once and the fit repeated.
+
+References
+----------
+Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
+Control. Springer, sec. 3.3.5 (Euler's equations), 3.3.6 (gravity-gradient torque).
+Magnus, J. R. and Neudecker, H. (2019). Matrix Differential Calculus, 3rd ed., ch. 2
+(vec(ABC) = (C^T (x) A) vec(B)).
+Kunsch, H. R. (1989). The jackknife and the bootstrap for general stationary observations. Ann.
+Statist. 17(3), 1217-1241 (block jackknife for dependent data).
+Bayley, G. V. and Hammersley, J. M. (1946). The "effective" number of independent observations in
+an autocorrelated time series. J. R. Stat. Soc. Suppl. 8(2), 184-197 (AR(1) variance inflation).
+Frisch, R. and Waugh, F. V. (1933). Partial time regressions as compared with individual trends.
+Econometrica 1(4), 387-401.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+from scipy.stats import chi2
+
+from .constants import MU_EARTH_m3_s2
+
+__all__ = ["DipoleFit", "identify_dipole", "applied_current_A", "scan_actuation_latency", "classify_coil",
+           "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY"]
+
+# Systematic floor on each estimated dipole, as a fraction of the nominal diagonal: an attitude
+# error of ~3 deg turns the modelled torque by sin(3 deg) = 0.05 of itself, and the reference field
+# leaves out ~100 nT of 20,000-50,000 nT (IGRF-14, Alken et al. 2025); the floor keeps such
+# model errors from passing for a sign or a dead coil (common practice, no source).
+MODEL_FLOOR_FRACTION = 0.05
+# Intervals whose whitened residual has chi-square(3) tail probability below this are dropped once.
+OUTLIER_PROBABILITY = 1e-4
+
+
+@dataclass(frozen=True)
+class DipoleFit:
+    """Effective dipole per amp identified from the motion.
+
+    Attributes
+    ----------
+    C : (3, 3) A m^2 per A, m_body = C i
+    C_sigma : (3, 3) statistical 1-sigma of each entry (the larger of the least-squares and the block
+        jackknife one; infinite for a coil that never carried current), A m^2 per A
+    cov : (p, p) least-squares covariance of all unknowns (vec(C) column-major, then m_r, then d)
+    residual_dipole_Am2 : (3,) or None
+    torque_bias_Nm : (3,) or None
+    n_intervals : int, evaluation instants used
+    n_dropped : int, instants dropped as outliers
+    chi2_per_dof : float, weighted residual sum of squares per degree of freedom (with no rate
+        covariance given: the residual variance, (N m s)^2)
+    ar1 : float, lag-1 autocorrelation of the whitened residuals
+    wrss : float, weighted residual sum of squares (before scaling)
+    latency_s : float, actuation latency assumed for the applied current
+    """
+
+    C: np.ndarray
+    C_sigma: np.ndarray
+    cov: np.ndarray
+    residual_dipole_Am2: np.ndarray | None
+    torque_bias_Nm: np.ndarray | None
+    n_intervals: int
+    n_dropped: int
+    chi2_per_dof: float
+    ar1: float
+    wrss: float
+    latency_s: float
+
+
+def _cross_matrices(v: np.ndarray) -> np.ndarray:
+    """[v x] for each row of v: (N, 3) -> (N, 3, 3)."""
+    z = np.zeros(len(v))
+    return np.stack([np.stack([z, -v[:, 2], v[:, 1]], -1),
+                     np.stack([v[:, 2], z, -v[:, 0]], -1),
+                     np.stack([-v[:, 1], v[:, 0], z], -1)], axis=1)
+
+
+@dataclass(frozen=True)
+class _Motion:
+    """Splines of the motion history, built once per pass and shared by all latency trials."""
+
+    w: CubicSpline
+    F_B: CubicSpline       # antiderivative of B (T s)
+    F_gyro: CubicSpline    # antiderivative of w x J w (N m s)
+    F_gg: CubicSpline | None
+    t_s: np.ndarray
+    P: np.ndarray | None
+
+
+def _motion(t_s, w_body_rad_s, b_body_nT, inertia, r_body_km, w_cov) -> _Motion:
+    t = np.asarray(t_s, float)
+    w = np.asarray(w_body_rad_s, float)
+    b_T = np.asarray(b_body_nT, float) * 1e-9
+    gyro = np.cross(w, w @ inertia.T)
+    F_gg = None
+    if r_body_km is not None:
+        r = np.asarray(r_body_km, float) * 1e3
+        rn = np.linalg.norm(r, axis=1, keepdims=True)
+        tau_gg = 3.0 * MU_EARTH_m3_s2 / rn ** 5 * np.cross(r, r @ inertia.T)
+        F_gg = CubicSpline(t, tau_gg).antiderivative()
+    return _Motion(CubicSpline(t, w), CubicSpline(t, b_T).antiderivative(),
+                   CubicSpline(t, gyro).antiderivative(), F_gg, t, w_cov)
+
+
+def _gated(t: np.ndarray, ticks: np.ndarray, before: float, after: float) -> np.ndarray:
+    """True inside a coil-off window [tick - before, tick + after]."""
+    if len(ticks) == 0:
+        return np.zeros(t.shape, bool)
+    k = np.clip(np.searchsorted(ticks, t - after, side="left"), 0, len(ticks) - 1)
+    return (t >= ticks[k] - before) & (t <= ticks[k] + after)
+
+
+def applied_current_A(t_s: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray, *, latency_s: float = 0.0,
+                      gate: tuple[np.ndarray, float, float] | None = None, max_hold_s: float = 2.5) -> np.ndarray:
+    """The current flowing at instants ``t_s``: the logged command held from ``t_log + latency``,
+    zero inside coil-off windows, NaN where the log has no value younger than ``max_hold_s``.
+
+    Returns
+    -------
+    (N, 3) array, A
+    """
+    t = np.asarray(t_s, float)
+    t_on = np.asarray(t_coil_s, float) + latency_s
+    k = np.searchsorted(t_on, t + 1e-9, side="right") - 1
+    kc = np.clip(k, 0, max(len(t_on) - 1, 0))
+    out = np.asarray(i_coil_A, float)[kc].copy() if len(t_on) else np.full((len(t), 3), np.nan)
+    if len(t_on):
+        out[(k < 0) | (t - t_on[kc] > max_hold_s)] = np.nan
+    if gate is not None:
+        out[_gated(t, *gate)] = 0.0
+    return out
+
+
+def _regressors(mot: _Motion, bounds_s: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
+                latency_s: float, gate: tuple[np.ndarray, float, float] | None, max_hold_s: float):
+    """Per interval: the current-dipole regressor (n, 3, 9), the residual-dipole one (n, 3, 3) and
+    a validity flag (current known over the whole interval)."""
+    t_on = np.asarray(t_coil_s, float) + latency_s
+    t0, t1 = bounds_s[0], bounds_s[-1]
+    inside = t_on[(t_on > t0) & (t_on < t1)]
+    parts = [bounds_s, inside]
+    if gate is not None:
+        ticks, before, after = gate
+        sel = ticks[(ticks > t0 - before - after - 1) & (ticks < t1 + before + after + 1)]
+        parts += [sel - before, sel + after]
+    ev = np.unique(np.concatenate(parts))
+    ev = ev[(ev >= t0) & (ev <= t1)]
+    a, b = ev[:-1], ev[1:]
+    mid = 0.5 * (a + b)
+    k = np.searchsorted(t_on, mid, side="right") - 1
+    cur = np.asarray(i_coil_A, float)[np.clip(k, 0, len(t_on) - 1)].copy()
+    unknown = (k < 0) | (mid - t_on[np.clip(k, 0, len(t_on) - 1)] > max_hold_s) | ~np.all(np.isfinite(cur), 1)
+    cur[unknown] = 0.0
+    if gate is not None:
+        cur[_gated(mid, *gate)] = 0.0
+    dF = mot.F_B(b) - mot.F_B(a)                       # (cells, 3) T s
+    cell_int = np.searchsorted(bounds_s, mid, side="right") - 1
+    n = len(bounds_s) - 1
+    X = _cross_matrices(dF)                            # int [B x] dt over the cell
+    # -int [B x] C i dt = -(i^T (x) int[B x] dt) vec(C)
+    rows = -(cur[:, :, None, None] * X[:, None, :, :])  # (cells, 3 coils, 3, 3)
+    rows = np.transpose(rows, (0, 2, 1, 3)).reshape(len(mid), 3, 9)
+    # rows[:, r, 3 j + l] = -i_j [X]_{r l}: the coefficient of C[l, j], i.e. vec(C) column-major
+    A_C = np.zeros((n, 3, 9))
+    np.add.at(A_C, cell_int, rows)
+    A_m = np.zeros((n, 3, 3))
+    np.add.at(A_m, cell_int, -X)
+    bad = np.zeros(n, bool)
+    np.logical_or.at(bad, cell_int, unknown)
+    return A_C, A_m, ~bad
+
+
+def _interval_left_side(mot: _Motion, t_eval: np.ndarray) -> np.ndarray:
+    """Per interval between consecutive evaluation instants: int (w x J w) dt - int tau_gg dt."""
+    y = mot.F_gyro(t_eval[1:]) - mot.F_gyro(t_eval[:-1])
+    if mot.F_gg is not None:
+        y -= mot.F_gg(t_eval[1:]) - mot.F_gg(t_eval[:-1])
+    return y
+
+
+def _segments(valid_interval: np.ndarray, segment_points: int) -> np.ndarray:
+    """Segment label of each evaluation instant (-1: in no segment). A segment is a run of at most
+    ``segment_points`` instants joined by valid intervals."""
+    n = len(valid_interval) + 1
+    label = np.full(n, -1)
+    seg, count = -1, 0
+    for k in range(n):
+        joined = k > 0 and valid_interval[k - 1] and count < segment_points
+        if joined:
+            count += 1
+        else:
+            seg, count = seg + 1, 1
+        label[k] = seg
+    sizes = np.bincount(label)
+    label[sizes[label] < 2] = -1
+    _, label[label >= 0] = np.unique(label[label >= 0], return_inverse=True)
+    return label
+
+
+def _design(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s, i_coil_A, latency_s, gate,
+            max_hold_s, residual_dipole, torque_bias, segment_points):
+    """Levels form of the integrated equation within each segment (start instant s)::
+
+        J w(t_j) + int_s^t_j (w x J w - tau_gg) dt = J w(s) + A_j theta + e_j
+
+    Returns y (n, 3), A (n, 3, p), segment label (n,) (-1: unused instant)."""
+    A_C, A_m, ok = _regressors(mot, t_eval, t_coil_s, i_coil_A, latency_s, gate, max_hold_s)
+    blocks = [A_C]
+    if residual_dipole:
+        blocks.append(A_m)
+    if torque_bias:
+        blocks.append(np.broadcast_to(np.eye(3) * np.diff(t_eval)[:, None, None], (len(t_eval) - 1, 3, 3)))
+    A_int = np.concatenate(blocks, axis=2)
+    g_int = _interval_left_side(mot, t_eval)
+    ok &= np.all(np.isfinite(g_int), axis=1) & np.all(np.isfinite(A_int), axis=(1, 2))
+    A_int = np.where(ok[:, None, None], A_int, 0.0)
+    g_int = np.where(ok[:, None], g_int, 0.0)
+    label = _segments(ok, segment_points)
+    A_cum = np.concatenate([np.zeros((1,) + A_int.shape[1:]), np.cumsum(A_int, axis=0)])
+    g_cum = np.concatenate([np.zeros((1, 3)), np.cumsum(g_int, axis=0)])
+    first = np.zeros(len(t_eval), int)
+    used = label >= 0
+    starts = np.nonzero(used & np.r_[True, label[1:] != label[:-1]])[0]
+    first[used] = starts[label[used]]
+    A = A_cum - A_cum[first]
+    y = mot.w(t_eval) @ inertia.T + g_cum - g_cum[first]
+    return y, A, label
+
+
+def _whiteners(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray) -> np.ndarray | None:
+    """Inverse Cholesky factors (n, 3, 3) of J P J^T at each instant, or None (ordinary LS)."""
+    if mot.P is None:
+        return None
+    idx = np.clip(np.searchsorted(mot.t_s, t_eval), 0, len(mot.t_s) - 1)
+    S = inertia @ mot.P[idx] @ inertia.T
+    S = 0.5 * (S + np.swapaxes(S, 1, 2))
+    return np.linalg.inv(np.linalg.cholesky(S + 1e-30 * np.eye(3)))
+
+
+def _solve(y: np.ndarray, A: np.ndarray, label: np.ndarray, Winv: np.ndarray | None, keep: np.ndarray):
+    """Least squares with one unknown initial momentum per segment, eliminated by (weighted)
+    demeaning within the segment (Frisch-Waugh-Lovell). Returns theta, whitened residuals (n_kept, 3),
+    the scaled normal matrix and the column scales."""
+    lab = label[keep]
+    y, A = y[keep], A[keep]
+    nseg = int(lab.max()) + 1 if len(lab) else 0
+    if Winv is None:
+        cnt = np.bincount(lab, minlength=nseg)[:, None]
+        ym = np.zeros((nseg, 3))
+        np.add.at(ym, lab, y)
+        Am = np.zeros((nseg,) + A.shape[1:])
+        np.add.at(Am, lab, A)
+        yt = y - (ym / cnt)[lab]
+        At = A - (Am / cnt[:, :, None])[lab]
+    else:
+        Wk = Winv[keep]
+        Sinv = np.swapaxes(Wk, 1, 2) @ Wk
+        M = np.zeros((nseg, 3, 3))
+        np.add.at(M, lab, Sinv)
+        sy = np.zeros((nseg, 3))
+        np.add.at(sy, lab, np.einsum("nij,nj->ni", Sinv, y))
+        sA = np.zeros((nseg,) + A.shape[1:])
+        np.add.at(sA, lab, Sinv @ A)
+        Minv = np.linalg.inv(M)
+        yt = np.einsum("nij,nj->ni", Wk, y - np.einsum("nij,nj->ni", Minv, sy)[lab])
+        At = Wk @ (A - (Minv @ sA)[lab])
+    p = A.shape[2]
+    X = At.reshape(-1, p)
+    scale = np.sqrt(np.sum(X * X, axis=0))
+    # a column with no excitation (a coil that never carried current) has no information: its
+    # unknown is left at zero with infinite variance (see identify_dipole)
+    scale[scale == 0] = np.inf
+    Xs = X / scale
+    N = Xs.T @ Xs
+    # normal equations on unit-norm columns: p is small (9 to 15) and the columns are scaled, so
+    # this is as accurate as an orthogonal factorisation here and much faster on a busy machine
+    theta_s = np.linalg.pinv(N, rcond=1e-12, hermitian=True) @ (Xs.T @ yt.ravel())
+    theta = np.where(np.isfinite(scale), theta_s / np.where(np.isfinite(scale), scale, 1.0), 0.0)
+    r = yt - np.einsum("nij,j->ni", At, theta)
+    return theta, r, N, scale, nseg
+
+
+def _jackknife_variance(y, A, label, Winv, keep, nseg: int, blocks: int) -> np.ndarray | None:
+    """Delete-one-block jackknife variance of all unknowns, blocks of consecutive segments
+    (Kunsch 1989). None when there are too few segments for ``blocks`` blocks."""
+    if blocks < 2 or nseg < blocks:
+        return None
+    group = np.where(keep, (np.maximum(label, 0) * blocks) // nseg, -1)
+    thetas = []
+    for g in range(blocks):
+        k2 = keep & (group != g)
+        lab = np.where(k2, label, -1)
+        _, lab[k2] = np.unique(lab[k2], return_inverse=True)
+        th, *_ = _solve(y, A, lab, Winv, k2)
+        thetas.append(th)
+    th = np.array(thetas)
+    return (blocks - 1) / blocks * np.sum((th - th.mean(axis=0)) ** 2, axis=0)
+
+
+def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.ndarray,
+                    inertia_kg_m2: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
+                    t_eval_s: np.ndarray, *, r_body_km: np.ndarray | None = None,
+                    w_cov_rad2_s2: np.ndarray | None = None, latency_s: float = 0.0,
+                    gate: tuple[np.ndarray, float, float] | None = None, max_hold_s: float = 2.5,
+                    residual_dipole: bool = True, torque_bias: bool = True, segment_points: int = 31,
+                    reject_outliers: bool = True, jackknife_blocks: int = 10,
+                    _motion_cache: _Motion | None = None) -> DipoleFit | None:
+    """Least-squares estimate of the coils' dipole-per-amp matrix C from the motion.
+
+    The evaluation instants are grouped into short segments of up to ``segment_points`` instants
+    (cut wherever the coil log or the motion history has a gap). Within a segment starting at s, each
+    instant t_j gives the integrated equation over [s, t_j]; the unknown J w(s) of each segment is
+    eliminated, which makes every pair of instants in the segment an interval [t1, t2] of the
+    integrated equation while counting each rate sample once.
+
+    Parameters
+    ----------
+    t_s : (N,) sorted times of the motion history, s
+    w_body_rad_s : (N, 3) body rate relative to GCRF, rad/s, body frame
+    b_body_nT : (N, 3) Earth's field in body axes, nT (attitude x reference field, or the calibrated
+        magnetometer)
+    inertia_kg_m2 : (3, 3)
+    t_coil_s : (M,) sorted times of the coil log, s
+    i_coil_A : (M, 3) logged coil currents, A (held until the next sample)
+    t_eval_s : (n,) sorted instants at which the equation is evaluated, s (for example the control
+        ticks)
+    r_body_km : (N, 3), optional
+        Position from the Earth's centre in body axes, km, for the gravity-gradient torque.
+    w_cov_rad2_s2 : (N, 3, 3), optional
+        Covariance of the rate, (rad/s)^2, for the weights.
+    latency_s : float
+        Actuation latency: the logged current flows from ``t_log + latency``.
+    gate : (ticks_s, before_s, after_s), optional
+        Coil-off windows of windowed sampling: no current flows inside ``[tick - before, tick + after]``.
+    max_hold_s : float
+        A logged current older than this is unknown (a gap in the coil log); segments are cut there.
+    residual_dipole, torque_bias : bool
+        Also estimate a constant residual dipole m_r (A m^2) and a constant torque d (N m).
+    segment_points : int
+        Most instants per segment.
+    reject_outliers : bool
+        Drop, once, the instants whose whitened residual exceeds the chi-square(3) quantile of
+        ``1 - OUTLIER_PROBABILITY``, and fit again.
+    jackknife_blocks : int
+        The variance of each unknown is the larger of the least-squares one and the delete-one-block
+        jackknife one over this many blocks of consecutive segments (0: least squares only). The
+        jackknife catches what the least-squares variance cannot: estimates carried by a few
+        instants (coils switching in lock-step) and model errors that vary along the pass.
+
+    Returns
+    -------
+    DipoleFit, or None when too few instants survive.
+
+    References
+    ----------
+    Markley and Crassidis (2014), sec. 3.3.5; Bayley and Hammersley (1946); Frisch, R. and Waugh,
+    F. V. (1933), Partial time regressions as compared with individual trends, Econometrica 1(4),
+    387-401 (eliminating the per-segment constants by demeaning).
+    """
+    J = np.asarray(inertia_kg_m2, float)
+    mot = _motion_cache or _motion(t_s, w_body_rad_s, b_body_nT, J, r_body_km, w_cov_rad2_s2)
+    te = np.asarray(t_eval_s, float)
+    te = te[(te >= mot.t_s[0]) & (te <= mot.t_s[-1])]
+    if len(te) < 3:
+        return None
+    y, A, label = _design(mot, te, J, t_coil_s, i_coil_A, latency_s, gate, max_hold_s, residual_dipole,
+                          torque_bias, segment_points)
+    Winv = _whiteners(mot, te, J)
+    p = A.shape[2]
+    keep = label >= 0
+
+    def dof_of(keep_, nseg_):
+        return 3 * int(keep_.sum()) - p - 3 * nseg_
+
+    if keep.sum() < 3:
+        return None
+    lab_used = label
+    theta, r, N, scale, nseg = _solve(y, A, label, Winv, keep)
+    if dof_of(keep, nseg) < 3:
+        return None
+    s2 = float(np.sum(r * r) / dof_of(keep, nseg))
+    # one pass of outlier rejection on whole instants
+    d2 = np.sum(r * r, axis=1) / max(s2, 1e-300)
+    out = d2 > chi2.ppf(1.0 - OUTLIER_PROBABILITY, 3)
+    n_drop = int(out.sum()) if reject_outliers else 0
+    if n_drop:
+        keep2 = keep.copy()
+        keep2[np.nonzero(keep)[0][out]] = False
+        # relabel so that segments left with fewer than two instants drop out
+        lab2 = np.where(keep2, label, -1)
+        sizes = np.bincount(lab2[lab2 >= 0], minlength=int(label.max()) + 1)
+        keep2 &= (lab2 >= 0) & (sizes[np.maximum(lab2, 0)] >= 2)
+        lab2 = np.where(keep2, lab2, -1)
+        _, lab2[keep2] = np.unique(lab2[keep2], return_inverse=True)
+        if keep2.sum() < 3:
+            return None
+        theta, r, N, scale, nseg = _solve(y, A, lab2, Winv, keep2)
+        keep, lab_used = keep2, lab2
+        if dof_of(keep, nseg) < 3:
+            return None
+        s2 = float(np.sum(r * r) / dof_of(keep, nseg))
+    wrss = float(np.sum(r * r))
+    # AR(1) inflation from the lag-1 autocorrelation of the residual sequence (time order)
+    rr = r - r.mean(axis=0)
+    den = np.sum(rr * rr)
+    rho = float(np.sum(rr[1:] * rr[:-1]) / den) if den > 0 and len(rr) > 2 else 0.0
+    infl = (1.0 + rho) / (1.0 - rho) if 0.0 < rho < 0.99 else (199.0 if rho >= 0.99 else 1.0)
+    dead = ~np.isfinite(scale)
+    live = ~dead
+    Ninv = np.zeros_like(N)
+    try:
+        Ninv[np.ix_(live, live)] = np.linalg.inv(N[np.ix_(live, live)])
+    except np.linalg.LinAlgError:
+        Ninv[np.ix_(live, live)] = np.linalg.pinv(N[np.ix_(live, live)])
+    sc = np.where(live, scale, 1.0)
+    cov = s2 * infl * Ninv / np.outer(sc, sc)
+    cov[dead, :] = 0.0
+    cov[:, dead] = 0.0
+    cov[dead, dead] = np.inf
+    var = np.diag(cov).copy()
+    var_jk = _jackknife_variance(y, A, lab_used, Winv, keep, nseg, jackknife_blocks)
+    if var_jk is not None:
+        var = np.maximum(var, var_jk)
+    C = theta[:9].reshape(3, 3, order="F")
+    C_sigma = np.sqrt(np.clip(var[:9], 0, None)).reshape(3, 3, order="F")
+    k = 9
+    m_r = d = None
+    if residual_dipole:
+        m_r = theta[k:k + 3]
+        k += 3
+    if torque_bias:
+        d = theta[k:k + 3]
+    return DipoleFit(C, C_sigma, cov, m_r, d, int(keep.sum()), n_drop, s2, rho, wrss, float(latency_s))
+
+
+def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s, i_coil_A, t_eval_s,
+                           period_s: float, *, max_latency_periods: int = 5, r_body_km=None,
+                           w_cov_rad2_s2=None, gate=None, max_hold_s: float = 2.5
+                           ) -> tuple[DipoleFit | None, np.ndarray, np.ndarray]:
+    """Find the actuation latency that best explains the motion (profile least squares).
+
+    The fit of :func:`identify_dipole` is repeated with the applied current delayed by trial
+    latencies: whole control periods from -1 to ``max_latency_periods``, then quarter periods
+    within one period of the best, then tenths within a fifth of a period of the best. All trials
+    use the same instants (those valid for every trial) and no outlier rejection, so their weighted
+    residual sums of squares compare directly.
+
+    Returns
+    -------
+    best : DipoleFit or None
+    latencies_s : (L,) trial latencies, s
+    wrss : (L,) weighted residual sum of squares of each trial (NaN where the fit failed)
+    """
+    J = np.asarray(inertia_kg_m2, float)
+    mot = _motion(t_s, w_body_rad_s, b_body_nT, J, r_body_km, w_cov_rad2_s2)
+    bounds = np.asarray(t_eval_s, float)
+    lo = -period_s
+    hi = max_latency_periods * period_s
+    # keep only intervals whose current is known under every trial latency
+    t_coil = np.asarray(t_coil_s, float)
+    if len(t_coil) == 0 or len(bounds) < 3:
+        return None, np.zeros(0), np.zeros(0)
+    first_ok = t_coil[0] + hi
+    last_ok = t_coil[-1] + lo + max_hold_s
+    sel = (bounds >= first_ok) & (bounds <= last_ok)
+    b2 = bounds[sel]
+    if len(b2) < 3:
+        return None, np.zeros(0), np.zeros(0)
+
+    def fit(L: float) -> DipoleFit | None:
+        return identify_dipole(t_s, w_body_rad_s, b_body_nT, J, t_coil_s, i_coil_A, b2, latency_s=L,
+                               gate=gate, max_hold_s=max_hold_s, reject_outliers=False, jackknife_blocks=0,
+                               _motion_cache=mot)
+
+    trials: dict[float, DipoleFit | None] = {}
+    for L in period_s * np.arange(-1, max_latency_periods + 1):
+        trials[round(float(L), 9)] = fit(round(float(L), 9))
+
+    def score(f: DipoleFit | None) -> float:
+        return np.inf if f is None else f.wrss
+
+    def refine(center: float, half_width: float, step: float) -> None:
+        for L in center + period_s * np.arange(-half_width, half_width + 1e-9, step):
+            L = round(float(np.clip(L, lo, hi)), 9)
+            if not any(abs(L - x) < 1e-9 for x in trials):
+                trials[L] = fit(L)
+
+    # the profile can be shallow and bumpy between whole periods: search the two periods around the
+    # best whole-period trial in quarter periods, then the best of those in tenths
+    refine(min(trials, key=lambda L: score(trials[L])), 1.0, 0.25)
+    refine(min(trials, key=lambda L: score(trials[L])), 0.2, 0.1)
+    lat = np.array(sorted(trials))
+    wr = np.array([score(trials[L]) if trials[L] is not None else np.nan for L in lat])
+    wr[~np.isfinite(wr)] = np.nan
+    if np.all(np.isnan(wr)):
+        return None, lat, wr
+    best = float(lat[int(np.nanargmin(wr))])
+    return trials[best], lat, wr
+
+
+def classify_coil(c_est: float, c_sigma: float, c_nominal: float) -> tuple[str, float, float, float]:
+    """Polarity of one coil from its estimated diagonal dipole per amp.
+
+    With the ratio r = c_est / c_nominal and its total 1-sigma s (statistical, with the model floor
+    ``MODEL_FLOOR_FRACTION`` added in quadrature), and the 3-sigma interval [r - 3 s, r + 3 s]:
+
+    - "nominal" when the interval lies above 0 (a response of the nominal sign, at > 3 sigma);
+    - "inverted" when it lies below 0;
+    - "no_response" when it contains 0 and lies below 0.5 (consistent with no dipole and
+      inconsistent, at > 3 sigma, with even half the nominal one);
+    - "undetermined" otherwise (too uncertain to tell, typically a coil that hardly switched).
+
+    Returns
+    -------
+    polarity : str
+    confidence : float, in sigmas: from zero for nominal/inverted, from nominal for no_response, and
+        |r| / s for undetermined
+    ratio : float, r
+    ratio_sigma : float, s
+    """
+    r = c_est / c_nominal
+    s = float(np.hypot(c_sigma / abs(c_nominal), MODEL_FLOOR_FRACTION))
+    lo, hi = r - 3.0 * s, r + 3.0 * s
+    if lo > 0:
+        return "nominal", abs(r) / s, r, s
+    if hi < 0:
+        return "inverted", abs(r) / s, r, s
+    if hi < 0.5:
+        return "no_response", (1.0 - r) / s, r, s
+    return "undetermined", abs(r) / s, r, s

@@ -1,0 +1,440 @@
+"""Replay the onboard magnetic control law from telemetry and compare it with the logged commands.
+
+The replay recomputes, tick by tick, what the onboard computer should have commanded from the data
+it had: its raw magnetometer readings turned into body axes with the nominal mounting (bias, soft
+iron and coil crosstalk still in them), its raw gyro for the cross-product law, the configured gain,
+the nominal dipole-per-amp matrix and the per-axis current limit. Comparing that with the logged
+commands tells a software or configuration error (wrong gain, sign, latency) apart from a hardware
+one (which the dipole identification in :mod:`recon._dipole_id` sees).
+
+All times here are float seconds since one epoch chosen by the caller (``t_s``); all currents A;
+fields nT in body axes.
+
+References
+----------
+Stickler, A. C. and Alfriend, K. T. (1974). An elementary magnetic attitude control system.
+AIAA paper 74-923 (B-dot, m = -k dB/dt).
+Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
+Control. Springer, sec. 7.5 (B-dot detumbling and cross-product momentum management).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = [
+    "SATURATION_LEVEL", "NEAR_LIMIT_LEVEL", "INFORMATIVE_LEVEL",
+    "control_ticks_s", "hold_values", "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
+    "CommandComparison", "compare_commands", "chatter_fraction", "crosstalk_loop_gain",
+    "assess_crosstalk_feedback",
+]
+
+# A logged current counts as "at the limit" from 99 % of max_current_A: the drive rounds commands to
+# its resolution (micro-amps) and the log to its unit, so an exact-equality test would miss samples
+# (common practice, no source).
+SATURATION_LEVEL = 0.99
+# A flip between consecutive commands counts as limit-to-limit chatter when both ends are at 90 % of
+# the limit or more (common practice, no source): a linear controller crossing zero passes through
+# small currents; a feedback oscillation jumps from one rail to the other.
+NEAR_LIMIT_LEVEL = 0.90
+# A replayed command counts towards the gain ratio from 1 % of the limit: a thousand times the
+# drive's micro-amp resolution, so rounding cannot move the ratio by more than 0.1 %.
+INFORMATIVE_LEVEL = 0.01
+
+
+def control_ticks_s(t_start_s: float, t_stop_s: float, period_s: float, first_tick_s: float) -> np.ndarray:
+    """Control tick instants ``first_tick + k period`` inside ``[t_start, t_stop]``, s (K,)."""
+    k0 = int(np.ceil((t_start_s - first_tick_s) / period_s - 1e-9))
+    k1 = int(np.floor((t_stop_s - first_tick_s) / period_s + 1e-9))
+    if k1 < k0:
+        return np.zeros(0)
+    return first_tick_s + period_s * np.arange(k0, k1 + 1, dtype=float)
+
+
+def hold_values(t_log_s: np.ndarray, values: np.ndarray, t_query_s: np.ndarray,
+                max_age_s: float | None = None) -> np.ndarray:
+    """Zero-order hold: the last logged value at or before each query time.
+
+    Parameters
+    ----------
+    t_log_s : (M,) sorted sample times, s
+    values : (M, ...) logged values
+    t_query_s : (Q,) query times, s
+    max_age_s : float, optional
+        NaN where the last sample is older than this (a gap in the log).
+
+    Returns
+    -------
+    (Q, ...) array, NaN before the first sample
+    """
+    t_log_s = np.asarray(t_log_s, float)
+    values = np.asarray(values, float)
+    idx = np.searchsorted(t_log_s, np.asarray(t_query_s, float) + 1e-9, side="right") - 1
+    out = values[np.clip(idx, 0, len(values) - 1)].copy()
+    bad = idx < 0
+    if max_age_s is not None:
+        bad |= (np.asarray(t_query_s, float) - t_log_s[np.clip(idx, 0, len(values) - 1)]) > max_age_s
+    out[bad] = np.nan
+    return out
+
+
+def tick_samples_nT(t_mag_s: np.ndarray, b_mag_body_nT: np.ndarray, ticks_s: np.ndarray, *,
+                    sampling: str, off_window_s: tuple[float, float] | None = None,
+                    tolerance_s: float | None = None) -> np.ndarray:
+    """The magnetometer reading the onboard controller uses at each tick: the sample at the tick.
+
+    The sample nearest to the tick is taken if it lies within ``tolerance_s`` of it (default: half
+    the median sample spacing); with ``sampling = "windowed"`` it must also lie inside the coil-off
+    window ``[tick - before, tick + after]``.
+
+    Parameters
+    ----------
+    t_mag_s : (N,) sorted sample times, s
+    b_mag_body_nT : (N, 3) raw readings in body axes (nominal mounting only), nT
+    ticks_s : (K,) tick times, s
+    sampling : "coils_off" | "coils_on" | "windowed"
+    off_window_s : (before, after), s, for "windowed"
+
+    Returns
+    -------
+    (K, 3) array, nT, body axes; NaN where no usable sample exists
+    """
+    t = np.asarray(t_mag_s, float)
+    b = np.asarray(b_mag_body_nT, float)
+    ticks = np.asarray(ticks_s, float)
+    out = np.full((len(ticks), 3), np.nan)
+    if len(t) == 0 or len(ticks) == 0:
+        return out
+    if tolerance_s is None:
+        tolerance_s = 0.5 * float(np.median(np.diff(t))) if len(t) > 1 else 0.5
+    j = np.clip(np.searchsorted(t, ticks), 1, max(len(t) - 1, 1))
+    j = np.where(np.abs(t[j - 1] - ticks) <= np.abs(t[np.minimum(j, len(t) - 1)] - ticks), j - 1, j)
+    j = np.clip(j, 0, len(t) - 1)
+    dt = t[j] - ticks
+    ok = np.abs(dt) <= tolerance_s + 1e-9
+    if sampling == "windowed" and off_window_s is not None:
+        ok &= (dt >= -off_window_s[0] - 1e-9) & (dt <= off_window_s[1] + 1e-9)
+    out[ok] = b[j[ok]]
+    return out
+
+
+def _clip_currents(m_body_Am2: np.ndarray, C_nominal: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
+    i = np.linalg.solve(C_nominal, m_body_Am2.T).T
+    return np.clip(i, -max_current_A, max_current_A)
+
+
+def replay_bdot_A(ticks_s: np.ndarray, b_tick_body_nT: np.ndarray, gain_Am2_s_per_T: float,
+                  C_nominal: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
+    """Commanded currents of B-dot, ``i = clip(C^-1 (-k dB/dt))``, from consecutive tick samples.
+
+    Parameters
+    ----------
+    ticks_s : (K,) tick times, s
+    b_tick_body_nT : (K, 3) tick samples, nT, body axes (NaN where missing)
+    gain_Am2_s_per_T : float, k
+    C_nominal : (3, 3) A m^2 per A
+    max_current_A : (3,) A
+
+    Returns
+    -------
+    (K, 3) array, A; the first tick and ticks after a missing sample are NaN (no derivative)
+
+    References
+    ----------
+    Stickler and Alfriend (1974), AIAA 74-923.
+    """
+    ticks = np.asarray(ticks_s, float)
+    b = np.asarray(b_tick_body_nT, float)
+    out = np.full((len(ticks), 3), np.nan)
+    if len(ticks) < 2:
+        return out
+    bdot_T_s = np.diff(b, axis=0) * 1e-9 / np.diff(ticks)[:, None]
+    m = -gain_Am2_s_per_T * bdot_T_s
+    ok = np.all(np.isfinite(m), axis=1)
+    out[1:][ok] = _clip_currents(m[ok], C_nominal, max_current_A)
+    return out
+
+
+def replay_cross_product_A(b_tick_body_nT: np.ndarray, w_tick_body_rad_s: np.ndarray,
+                           inertia_kg_m2: np.ndarray, target_momentum_Nms: np.ndarray, gain_per_s: float,
+                           C_nominal: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
+    """Commanded currents of cross-product momentum management, ``m = k (h_err x B) / |B|^2``.
+
+    Parameters
+    ----------
+    b_tick_body_nT : (K, 3) nT, body axes
+    w_tick_body_rad_s : (K, 3) the rate the onboard computer used, rad/s, body axes
+    inertia_kg_m2 : (3, 3)
+    target_momentum_Nms : (3,) N m s, body axes
+    gain_per_s : float, k, 1/s
+    C_nominal : (3, 3); max_current_A : (3,)
+
+    Returns
+    -------
+    (K, 3) array, A (NaN where an input is missing)
+
+    References
+    ----------
+    Markley and Crassidis (2014), sec. 7.5: the torque is -k (h_err - (h_err . b) b).
+    """
+    b_T = np.asarray(b_tick_body_nT, float) * 1e-9
+    h_err = np.asarray(w_tick_body_rad_s, float) @ np.asarray(inertia_kg_m2, float).T - target_momentum_Nms
+    b2 = np.einsum("ij,ij->i", b_T, b_T)
+    out = np.full(b_T.shape, np.nan)
+    ok = np.all(np.isfinite(b_T), axis=1) & np.all(np.isfinite(h_err), axis=1) & (b2 > 0)
+    m = gain_per_s * np.cross(h_err[ok], b_T[ok]) / b2[ok, None]
+    out[ok] = _clip_currents(m, C_nominal, max_current_A)
+    return out
+
+
+@dataclass(frozen=True)
+class CommandComparison:
+    """Logged commands against the replayed law.
+
+    Attributes
+    ----------
+    lag_s : float or None
+        Delay from the control tick to the logged command, s (None: no informative command).
+    gain_ratio : (3,) least-squares slope of logged on replayed currents, unsaturated ticks, per axis
+    correlation : (3,) Pearson correlation of logged and replayed commands at ``lag_s``, per axis
+    n_informative : (3,) ticks with an unsaturated command above ``INFORMATIVE_LEVEL`` of the limit
+    saturation_fraction : (3,) fraction of ticks at the limit in the log, per axis
+    logged_A : (K, 3) the logged command belonging to each tick (NaN where none)
+    """
+
+    lag_s: float | None
+    gain_ratio: np.ndarray
+    correlation: np.ndarray
+    n_informative: np.ndarray
+    saturation_fraction: np.ndarray
+    logged_A: np.ndarray
+
+
+def _score(pred: np.ndarray, logged: np.ndarray, scale: np.ndarray) -> float:
+    """Correlation of the stacked, per-axis-normalised commands (NaN-safe)."""
+    ok = np.all(np.isfinite(pred), axis=1) & np.all(np.isfinite(logged), axis=1)
+    if ok.sum() < 3:
+        return -np.inf
+    x = (pred[ok] / scale).ravel()
+    y = (logged[ok] / scale).ravel()
+    x = x - x.mean()
+    y = y - y.mean()
+    d = np.sqrt((x @ x) * (y @ y))
+    return float(x @ y / d) if d > 0 else -np.inf
+
+
+def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
+                     max_current_A: np.ndarray, period_s: float, *, max_lag_periods: int = 5,
+                     lag_step_fraction: float = 0.05) -> CommandComparison:
+    """Compare logged coil commands with the replay: lag, gain ratio, correlation, saturation.
+
+    The lag is found by maximising the correlation between the log and the replayed command sequence
+    delayed by L, held from ``tick + L`` to the next ``tick + L``: first over whole control periods
+    from -1 to ``max_lag_periods``, then in steps of ``lag_step_fraction`` of a period within half a
+    period of the best whole-period lag. Ties (a log sampled once per period cannot tell lags inside
+    one period apart) go to the smallest |L|. Per-axis figures use the logged value in the middle of
+    each hold interval.
+
+    Parameters
+    ----------
+    ticks_s : (K,) tick times, s
+    i_replay_A : (K, 3) replayed commands, A (NaN where unknown)
+    t_coil_s : (M,) sorted times of the coil log, s
+    i_coil_A : (M, 3) logged commands, A
+    max_current_A : (3,) A
+    period_s : float, control period, s
+
+    Returns
+    -------
+    CommandComparison
+    """
+    ticks = np.asarray(ticks_s, float)
+    rep = np.asarray(i_replay_A, float)
+    t_log = np.asarray(t_coil_s, float)
+    i_log = np.asarray(i_coil_A, float)
+    imax = np.asarray(max_current_A, float)
+    nan3 = np.full(3, np.nan)
+    if len(ticks) < 3 or len(t_log) < 3:
+        return CommandComparison(None, nan3, nan3, np.zeros(3, int), nan3, np.full((len(ticks), 3), np.nan))
+    # the log's own sampling decides how finely a lag can be seen; gaps longer than two periods
+    # leave holes rather than stale values
+    max_age = 2.0 * period_s + float(np.median(np.diff(t_log)))
+
+    def predicted(lag: float) -> np.ndarray:
+        k = np.searchsorted(ticks, t_log - lag + 1e-9, side="right") - 1
+        p = rep[np.clip(k, 0, len(ticks) - 1)].copy()
+        p[(k < 0) | (t_log - lag - ticks[np.clip(k, 0, len(ticks) - 1)] > period_s * 1.5)] = np.nan
+        return p
+
+    finite = np.isfinite(rep).all(axis=1)
+    informative = finite & (np.max(np.abs(np.where(finite[:, None], rep, 0.0)) / imax, axis=1) > 1e-3)
+    if informative.sum() < 3:
+        lag = None
+    else:
+        coarse = period_s * np.arange(-1, max_lag_periods + 1)
+        sc = np.array([_score(predicted(L), i_log, imax) for L in coarse])
+        best = coarse[int(np.argmax(sc))]
+        fine = best + period_s * np.arange(-0.5, 0.5 + 1e-9, lag_step_fraction)
+        fine = fine[fine >= -period_s]
+        sf = np.array([_score(predicted(L), i_log, imax) for L in fine])
+        top = sf >= sf.max() - 1e-9
+        lag = round(float(fine[top][np.argmin(np.abs(fine[top]))]), 9)
+
+    # the logged command belonging to each tick: the log in the middle of its hold interval
+    L = 0.0 if lag is None else lag
+    t_q = ticks + L + 0.5 * period_s
+    logged = hold_values(t_log, i_log, t_q, max_age_s=max_age)
+    logged[t_q > t_log[-1] + float(np.median(np.diff(t_log)))] = np.nan  # past the end of the log
+    both = np.isfinite(rep) & np.isfinite(logged)
+    sat = (np.abs(logged) >= SATURATION_LEVEL * imax) | (np.abs(rep) >= SATURATION_LEVEL * imax)
+    use = both & ~sat
+    informative_ax = use & (np.abs(rep) > INFORMATIVE_LEVEL * imax)
+    gain = np.full(3, np.nan)
+    corr = np.full(3, np.nan)
+    for a in range(3):
+        x, y = rep[use[:, a], a], logged[use[:, a], a]
+        if informative_ax[:, a].sum() >= 3 and x @ x > 0:
+            gain[a] = float(x @ y / (x @ x))
+        xb, yb = rep[both[:, a], a], logged[both[:, a], a]
+        if len(xb) >= 3 and np.std(xb) > 0 and np.std(yb) > 0:
+            corr[a] = float(np.corrcoef(xb, yb)[0, 1])
+    logged_ok = np.isfinite(logged)
+    satfrac = np.array([np.mean(np.abs(logged[logged_ok[:, a], a]) >= SATURATION_LEVEL * imax[a])
+                        if logged_ok[:, a].any() else np.nan for a in range(3)])
+    return CommandComparison(lag, gain, corr, informative_ax.sum(axis=0), satfrac, logged)
+
+
+def chatter_fraction(i_tick_A: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
+    """Fraction of consecutive tick pairs whose command flips sign from near one limit to the other.
+
+    Parameters
+    ----------
+    i_tick_A : (K, 3) command per tick, A (NaN where unknown)
+    max_current_A : (3,) A
+
+    Returns
+    -------
+    (3,) fraction per axis (NaN with fewer than two valid consecutive ticks)
+    """
+    i = np.asarray(i_tick_A, float)
+    imax = np.asarray(max_current_A, float)
+    if len(i) < 2:
+        return np.full(3, np.nan)
+    a, b = i[:-1], i[1:]
+    valid = np.isfinite(a) & np.isfinite(b)
+    near = (np.abs(a) >= NEAR_LIMIT_LEVEL * imax) & (np.abs(b) >= NEAR_LIMIT_LEVEL * imax)
+    flip = valid & near & (np.sign(a) * np.sign(b) < 0)
+    n = valid.sum(axis=0)
+    return np.where(n > 0, flip.sum(axis=0) / np.maximum(n, 1), np.nan)
+
+
+def _companion(G: np.ndarray, delay_ticks: int) -> np.ndarray:
+    """State matrix of i_k = -G i_{k-1-d} + G i_{k-2-d} with state (i_{k-1}, ..., i_{k-2-d})."""
+    n = 3 * (delay_ticks + 2)
+    A = np.zeros((n, n))
+    A[0:3, 3 * delay_ticks:3 * delay_ticks + 3] = -G
+    A[0:3, 3 * (delay_ticks + 1):3 * (delay_ticks + 2)] = G
+    A[3:, :-3] = np.eye(n - 3)
+    return A
+
+
+def crosstalk_loop_gain(K_body_nT_per_A: np.ndarray, C_nominal: np.ndarray, gain_Am2_s_per_T: float,
+                        period_s: float, *, delay_ticks: int = 0) -> tuple[float, float]:
+    """Loop gain of the feedback from the coils' own field into B-dot's derivative.
+
+    Derivation. With the magnetometer seeing the coils, the tick sample is
+    ``b_k = B_k + K_body i_{k-1-d}`` (the current flowing at the sample is the command of the
+    previous tick, or of ``d`` ticks earlier with an actuation delay of d whole periods). B-dot
+    commands, below saturation, ``i_k = -C^-1 k (b_k - b_{k-1}) / T * 1e-9`` (nT -> T). Leaving out
+    the external field's own change, the coil currents obey the linear recurrence::
+
+        i_k = -G (i_{k-1-d} - i_{k-2-d}),      G = (k / T) 1e-9 C_nominal^-1 K_body
+
+    whose open-loop transfer is ``L(z) = -G (z^-1 - z^-2) z^-d``. At the period-two frequency
+    (z = -1, currents flipping sign every tick) ``L(-1) = 2 G`` for d = 0: a flip of amplitude a
+    changes the sampled coil field by ``2 K a`` per tick, which commands ``2 G a``. The loop is
+    unstable when the recurrence's state matrix has spectral radius >= 1; for one axis with a
+    positive coupling g that happens at g = 1/2 (roots of z^2 + g z - g = 0 reach z = -1), for a
+    negative one at |g| = 1 (a slower, complex pair). Saturation then turns the growing
+    oscillation into limit-to-limit chatter.
+
+    The loop gain returned is the reciprocal of the gain margin: the factor by which G would have
+    to be divided to bring the loop to the edge of stability, so that a loop gain >= 1 means the
+    coil-field loop oscillates. For one axis with g > 0 and d = 0 it equals 2 g.
+
+    Parameters
+    ----------
+    K_body_nT_per_A : (3, 3) crosstalk in body axes: nT of sensed field (body axes) per A of coil
+        current, ``K_body = sensor_to_body @ K_sensor``
+    C_nominal : (3, 3) A m^2 per A
+    gain_Am2_s_per_T : float, B-dot gain k
+    period_s : float, control period T
+    delay_ticks : int, whole control periods of actuation delay
+
+    Returns
+    -------
+    loop_gain : float (0 when the loop cannot be destabilised by any scaling up to 1000)
+    coupling : float, spectral radius of G (the single-step coil-field coupling)
+
+    References
+    ----------
+    Franklin, G. F., Powell, J. D. and Workman, M. L. (1998). Digital Control of Dynamic Systems,
+    3rd ed., ch. 7 (stability of difference equations; gain margin).
+    """
+    K = np.asarray(K_body_nT_per_A, float)
+    G = gain_Am2_s_per_T / period_s * 1e-9 * np.linalg.solve(np.asarray(C_nominal, float), K)
+    coupling = float(np.max(np.abs(np.linalg.eigvals(G))))
+    if coupling == 0.0:
+        return 0.0, 0.0
+
+    def rho(s: float) -> float:
+        return float(np.max(np.abs(np.linalg.eigvals(_companion(s * G, delay_ticks)))))
+
+    s_grid = np.logspace(-3, 3, 241) / coupling
+    r = np.array([rho(s) for s in s_grid])
+    above = np.nonzero(r >= 1.0)[0]
+    if len(above) == 0:
+        return 0.0, coupling
+    j = above[0]
+    if j == 0:
+        return float(1.0 / s_grid[0]), coupling
+    lo, hi = s_grid[j - 1], s_grid[j]
+    for _ in range(60):
+        mid = np.sqrt(lo * hi)
+        if rho(mid) >= 1.0:
+            hi = mid
+        else:
+            lo = mid
+    return float(1.0 / hi), coupling
+
+
+def assess_crosstalk_feedback(K_sensor_nT_per_A: np.ndarray, mag_sensor_to_body: np.ndarray,
+                              C_nominal: np.ndarray, gain_Am2_s_per_T: float, period_s: float, *,
+                              ticks_s: np.ndarray, b_tick_body_nT: np.ndarray, i_seen_at_tick_A: np.ndarray,
+                              max_current_A: np.ndarray, delay_ticks: int = 0) -> dict:
+    """Loop gain of the coil-field feedback and a B-dot replay with the coils' field taken out.
+
+    Parameters
+    ----------
+    K_sensor_nT_per_A : (3, 3) crosstalk, nT (sensor axes) per A of coil current
+    mag_sensor_to_body : (3, 3) M, v_body = M v_sensor; the crosstalk in body axes is ``M K``
+    C_nominal : (3, 3); gain_Am2_s_per_T : float; period_s : float
+    ticks_s : (K,) s; b_tick_body_nT : (K, 3) the tick samples, nT body axes
+    i_seen_at_tick_A : (K, 3) the coil current flowing when each tick sample was taken (zero when the
+        magnetometer is shielded from the coils), A
+    max_current_A : (3,)
+    delay_ticks : int, whole periods of actuation delay
+
+    Returns
+    -------
+    dict: ``loop_gain``, ``coupling`` (see :func:`crosstalk_loop_gain`), ``K_body_nT_per_A`` (3, 3),
+    ``chatter_without`` (3,) chatter fraction of the replay with ``K_body i`` removed from the samples
+    """
+    K_body = np.asarray(mag_sensor_to_body, float) @ np.asarray(K_sensor_nT_per_A, float)
+    lg, coupling = crosstalk_loop_gain(K_body, C_nominal, gain_Am2_s_per_T, period_s, delay_ticks=delay_ticks)
+    clean = np.asarray(b_tick_body_nT, float) - np.nan_to_num(np.asarray(i_seen_at_tick_A, float)) @ K_body.T
+    i_clean = replay_bdot_A(ticks_s, clean, gain_Am2_s_per_T, C_nominal, max_current_A)
+    return {"loop_gain": lg, "coupling": coupling, "K_body_nT_per_A": K_body,
+            "chatter_without": chatter_fraction(i_clean, max_current_A)}
