@@ -1,0 +1,650 @@
+"""Judge the magnetic controller of one pass: did the coils and the control law do what was designed?
+
+Four independent lines of evidence, each from plain arrays:
+
+1. Command replay (:mod:`recon._replay`): the configured law recomputed from the raw telemetry the
+   onboard computer saw, against the logged commands (gain ratio, correlation, lag, saturation,
+   limit-to-limit chatter).
+2. Dipole identification (:mod:`recon._dipole_id`): each coil's effective dipole per amp from the
+   motion (Euler's equation, least squares), hence polarity, response and gain, plus the actuation
+   latency that best explains the motion.
+3. Physical effect (:mod:`recon._effect`): the kinetic-energy (B-dot) or momentum-error
+   (cross-product) trend against what the configured law should have achieved along the same
+   trajectory, and the sign of the magnetic torque's power.
+4. Crosstalk feedback: the loop gain of the coils' own field through B-dot's derivative, and a
+   replay with that field removed from the samples.
+
+The decision thresholds are module constants below, each with its reason. A finding needs its own
+evidence at the stated confidence; where the data cannot decide (a short pass, coils that hardly
+switched, no law configured) the verdict is "undetermined" and says why.
+
+References
+----------
+Stickler, A. C. and Alfriend, K. T. (1974). An elementary magnetic attitude control system. AIAA
+paper 74-923.
+Avanzini, G. and Giulietti, F. (2012). Magnetic detumbling of a rigid spacecraft. J. Guidance,
+Control, and Dynamics 35(4), 1326-1334, doi:10.2514/1.53074.
+Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
+Control. Springer, sec. 3.3 and 7.5.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import _dipole_id as dip
+from . import _effect as eff
+from . import _replay as rep
+from .anomaly import Anomaly
+from .config import CoilSpec, ControllerSpec
+from .errors import InputError
+from .frames import body_from_gcrf
+
+__all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass", "THRESHOLDS"]
+
+AXES = ("x", "y", "z")
+
+# ------------------------------------------------------------------------------ decision thresholds
+# Command replay. The replay uses the very samples the onboard computer used, so a healthy law
+# matches its log to the drive's rounding (gain ratio 1.000, correlation 1.000 on B-dot); the
+# cross-product replay uses the gyro as logged, so its match is a little looser. A 20 % band equals
+# the coil-gain band below; correlation below 0.8 means the log follows some other law.
+COMMAND_GAIN_TOLERANCE = 0.2
+COMMAND_MIN_CORRELATION = 0.8
+COMMAND_MIN_TICKS = 20          # unsaturated ticks above 1 % of the limit needed to judge an axis
+# Time at the current limit above which the controller is reported as saturated: beyond half the
+# pass the law is no longer the linear one its gain describes (common practice, no source).
+SATURATION_FRACTION_LIMIT = 0.5
+# Chatter: limit-to-limit sign flips on at least a quarter of the ticks, and at least three times the
+# flips the body's rotation alone would cause (a component of the body-frame field changes sign
+# twice per turn, i.e. on |w| T / pi of the ticks). A quarter corresponds to a rotation of 45 deg
+# per tick, beyond what a sampled B-dot can follow (common practice, no source).
+CHATTER_FRACTION_LIMIT = 0.25
+CHATTER_ROTATION_FACTOR = 3.0
+LOOP_GAIN_LIMIT = 1.0           # >= 1: the coil-field loop oscillates (see rep.crosstalk_loop_gain)
+# Coil gain: flagged when the whole 3-sigma interval of |C_jj / C_nominal_jj| lies outside
+# 1 +- 0.2 ("off by more than 20 % at high confidence").
+COIL_GAIN_TOLERANCE = 0.2
+COIL_GAIN_SIGMAS = 3.0
+# Latency from tick to torque flagged from one control period (the law assumes its command acts
+# within the period it was computed for) when the motion rejects zero delay at 3 sigma
+# (profile chi-square difference >= 9).
+LATENCY_LIMIT_PERIODS = 1.0
+LATENCY_DELTA_CHI2 = 9.0
+# Effect: detumble_slow when the observed energy time constant exceeds this factor times the one the
+# replayed law should have produced along the same trajectory, judged only when the expected decay
+# over the pass is at least EXPECTED_MIN_CHANGE in ln E (40 %). Healthy coils within the 20 % gain
+# band and the disturbance torques cannot account for a factor 3; missing or opposing torque can.
+DETUMBLE_SLOW_FACTOR = 3.0
+EXPECTED_MIN_CHANGE = 0.5
+# Dipole identification needs at least this many independent segments (of ``SEGMENT_POINTS``
+# ticks): fewer leave the residual variance and its autocorrelation, which set every sigma, resting
+# on too few stretches of data.
+SEGMENT_POINTS = 31
+MIN_SEGMENTS = 5
+MAX_LATENCY_PERIODS = 5
+
+# Every decision threshold in one place (the contributor guide lists them with their reasons).
+THRESHOLDS: dict[str, float] = {
+    "COMMAND_GAIN_TOLERANCE": COMMAND_GAIN_TOLERANCE, "COMMAND_MIN_CORRELATION": COMMAND_MIN_CORRELATION,
+    "COMMAND_MIN_TICKS": COMMAND_MIN_TICKS, "SATURATION_LEVEL": rep.SATURATION_LEVEL,
+    "SATURATION_FRACTION_LIMIT": SATURATION_FRACTION_LIMIT, "NEAR_LIMIT_LEVEL": rep.NEAR_LIMIT_LEVEL,
+    "INFORMATIVE_LEVEL": rep.INFORMATIVE_LEVEL,
+    "CHATTER_FRACTION_LIMIT": CHATTER_FRACTION_LIMIT, "CHATTER_ROTATION_FACTOR": CHATTER_ROTATION_FACTOR,
+    "LOOP_GAIN_LIMIT": LOOP_GAIN_LIMIT, "COIL_GAIN_TOLERANCE": COIL_GAIN_TOLERANCE,
+    "COIL_GAIN_SIGMAS": COIL_GAIN_SIGMAS, "MODEL_FLOOR_FRACTION": dip.MODEL_FLOOR_FRACTION,
+    "OUTLIER_PROBABILITY": dip.OUTLIER_PROBABILITY, "LATENCY_LIMIT_PERIODS": LATENCY_LIMIT_PERIODS,
+    "LATENCY_DELTA_CHI2": LATENCY_DELTA_CHI2, "DETUMBLE_SLOW_FACTOR": DETUMBLE_SLOW_FACTOR,
+    "EXPECTED_MIN_CHANGE": EXPECTED_MIN_CHANGE, "TREND_SIGMAS": eff.TREND_SIGMAS,
+    "TREND_MIN_CHANGE": eff.TREND_MIN_CHANGE, "SEGMENT_POINTS": SEGMENT_POINTS, "MIN_SEGMENTS": MIN_SEGMENTS,
+    "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS,
+}
+
+
+# ----------------------------------------------------------------------------------- result types
+@dataclass(frozen=True)
+class AxisJudgement:
+    """What recon concludes about one coil (body axis)."""
+
+    axis: str
+    polarity: str
+    polarity_confidence: float | None
+    dipole_per_amp_estimated: float | None
+    dipole_per_amp_sigma: float | None
+    dipole_per_amp_nominal: float
+    gain_ratio: float | None
+    gain_ratio_sigma: float | None
+    command_gain_ratio: float | None
+    correlation: float | None
+    saturation_fraction: float | None
+    chatter_fraction: float | None
+    rms_current_A: float | None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"polarity": self.polarity, "polarity_confidence": self.polarity_confidence,
+                "dipole_per_amp_estimated": self.dipole_per_amp_estimated,
+                "dipole_per_amp_sigma": self.dipole_per_amp_sigma,
+                "dipole_per_amp_nominal": self.dipole_per_amp_nominal, "gain_ratio": self.gain_ratio,
+                "gain_ratio_sigma": self.gain_ratio_sigma, "command_gain_ratio": self.command_gain_ratio,
+                "correlation": self.correlation, "saturation_fraction": self.saturation_fraction,
+                "chatter_fraction": self.chatter_fraction, "rms_current_A": self.rms_current_A}
+
+
+@dataclass(frozen=True)
+class ControllerJudgement:
+    """The controller judgement of one pass (see :func:`judge_pass`); ``to_summary()`` gives the
+    summary.json "controller" block."""
+
+    law: str
+    axes: tuple[AxisJudgement, ...]
+    verdict: str
+    reasons: tuple[str, ...]
+    anomalies: tuple[Anomaly, ...]
+    latency_s: float | None = None
+    command_lag_s: float | None = None
+    actuation_latency_s: float | None = None
+    actuation_latency_interval_s: tuple[float, float] | None = None
+    rate_trend: str = "steady"
+    energy_time_constant_s: float | None = None
+    energy_time_constant_expected_s: float | None = None
+    momentum_error_trend: str | None = None
+    momentum_error_time_constant_s: float | None = None
+    momentum_error_time_constant_expected_s: float | None = None
+    magnetic_power_mean_W: float | None = None
+    damping_fraction: float | None = None
+    loop_gain: float | None = None
+    crosstalk_coupling: float | None = None
+    chatter_fraction_without_coil_field: float | None = None
+    bdot_equivalent_gain_Nms: float | None = None
+    near_optimal_gain_Nms: float | None = None
+    rate_floor_rad_s: float | None = None
+    dipole_per_amp_matrix: np.ndarray | None = None
+    residual_dipole_Am2: np.ndarray | None = None
+    extras: dict[str, Any] = field(default_factory=dict)
+
+    def to_summary(self) -> dict[str, Any]:
+        """The "controller" block of summary.json (floats, lists, strings, None)."""
+        def f(x):
+            return None if x is None or not np.isfinite(x) else float(x)
+        out: dict[str, Any] = {"law": self.law}
+        for a in self.axes:
+            out[a.axis] = {k: (f(v) if isinstance(v, float | np.floating) else v) for k, v in a.to_dict().items()}
+        out.update({
+            "latency_s": f(self.latency_s), "command_lag_s": f(self.command_lag_s),
+            "actuation_latency_s": f(self.actuation_latency_s),
+            "rate_trend": self.rate_trend,
+            "energy_time_constant_s": f(self.energy_time_constant_s),
+            "energy_time_constant_expected_s": f(self.energy_time_constant_expected_s),
+            "momentum_error_trend": self.momentum_error_trend,
+            "momentum_error_time_constant_s": f(self.momentum_error_time_constant_s),
+            "momentum_error_time_constant_expected_s": f(self.momentum_error_time_constant_expected_s),
+            "magnetic_power_mean_W": f(self.magnetic_power_mean_W),
+            "damping_fraction": f(self.damping_fraction),
+            "loop_gain": f(self.loop_gain), "crosstalk_coupling": f(self.crosstalk_coupling),
+            "bdot_equivalent_gain_Nms": f(self.bdot_equivalent_gain_Nms),
+            "near_optimal_gain_Nms": f(self.near_optimal_gain_Nms),
+            "rate_floor_rad_s": f(self.rate_floor_rad_s),
+            "dipole_per_amp_matrix": None if self.dipole_per_amp_matrix is None
+            else np.asarray(self.dipole_per_amp_matrix).tolist(),
+            "verdict": self.verdict, "reasons": list(self.reasons),
+            "anomalies": [a.to_dict() for a in self.anomalies],
+        })
+        return out
+
+
+# ------------------------------------------------------------------------------------ input checks
+def _arr(name: str, a: Any, tail: tuple[int, ...], n: int | None = None, allow_none: bool = False):
+    if a is None:
+        if allow_none:
+            return None
+        raise InputError(f"expected an array of shape (N, {', '.join(map(str, tail))}), got None", key=name)
+    x = np.asarray(a, float)
+    if x.ndim != 1 + len(tail) or x.shape[1:] != tail or (n is not None and len(x) != n):
+        want = f"({n if n is not None else 'N'}{''.join(', ' + str(t) for t in tail)})"
+        raise InputError(f"expected an array of shape {want}, got {x.shape}", key=name)
+    return x
+
+
+def _seconds(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
+    try:
+        tt = np.asarray(t, dtype="datetime64[ns]")
+    except (TypeError, ValueError):
+        raise InputError(f"expected UTC times (datetime64[ns]), got {np.asarray(t).dtype}", key=name) from None
+    if tt.ndim != 1:
+        raise InputError(f"expected a 1-D array of times, got shape {tt.shape}", key=name)
+    s = (tt - epoch).astype(np.int64) / 1e9
+    if len(s) > 1 and np.any(np.diff(s) <= 0):
+        raise InputError("expected strictly increasing times (clean the log first), got a step back or a "
+                         f"repeat at row {int(np.argmax(np.diff(s) <= 0)) + 1}", key=name)
+    return s
+
+
+def _f(x) -> float | None:
+    return None if x is None or not np.isfinite(x) else float(x)
+
+
+# --------------------------------------------------------------------------------------- the judge
+def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np.ndarray,
+               mag_sensor_to_body: np.ndarray, time_mag_utc: np.ndarray, b_mag_sensor_nT: np.ndarray,
+               time_coil_utc: np.ndarray, i_coil_A: np.ndarray,
+               time_utc: np.ndarray, w_body_rad_s: np.ndarray,
+               q_body_from_gcrf: np.ndarray | None = None, b_gcrf_nT: np.ndarray | None = None,
+               b_body_nT: np.ndarray | None = None, r_gcrf_km: np.ndarray | None = None,
+               w_cov_rad2_s2: np.ndarray | None = None, time_gyro_utc: np.ndarray | None = None,
+               w_gyro_body_rad_s: np.ndarray | None = None,
+               K_nT_per_A: np.ndarray | None = None) -> ControllerJudgement:
+    """Judge the magnetic controller of one pass.
+
+    Parameters
+    ----------
+    controller : ControllerSpec
+        The configured law ("bdot", "cross_product" or "none"), gain, period and first tick.
+    coils : CoilSpec
+        Nominal dipole per amp C (m_body = C i), max_current_A, mag_sampling and off_window_s.
+    inertia_kg_m2 : (3, 3)
+    mag_sensor_to_body : (3, 3) the magnetometer's nominal mounting M (v_body = M v_sensor)
+    time_mag_utc : (Nm,) datetime64[ns] UTC; b_mag_sensor_nT : (Nm, 3) nT, sensor frame
+        The raw magnetometer readings (unit-converted, not calibrated: bias, soft iron and coil
+        crosstalk still in them), as the onboard computer saw them.
+    time_coil_utc : (Nc,) datetime64[ns] UTC; i_coil_A : (Nc, 3) A
+        The logged coil commands, body coil axes.
+    time_utc : (N,) datetime64[ns] UTC; w_body_rad_s : (N, 3) rad/s, body frame
+        The reconstructed rate history (body relative to GCRF).
+    q_body_from_gcrf : (N, 4), optional; b_gcrf_nT : (N, 3) nT, GCRF, optional
+        Attitude and reference field, for the field in body axes (needed unless ``b_body_nT``).
+    b_body_nT : (N, 3) nT, body frame, optional
+        The field in body axes directly (for example the calibrated magnetometer).
+    r_gcrf_km : (N, 3) km, GCRF, optional
+        Orbit positions: gravity-gradient torque (with q), mean motion and the near-optimal gain.
+    w_cov_rad2_s2 : (N, 3, 3), optional
+        Rate covariance, weights of the dipole identification.
+    time_gyro_utc : (Ng,), w_gyro_body_rad_s : (Ng, 3) rad/s body axes, optional
+        The raw gyro as the onboard computer used it (cross-product replay); the reconstructed rate
+        is used without it.
+    K_nT_per_A : (3, 3) nT per A, sensor axes, optional
+        Estimated coil crosstalk, for the coil-field loop gain.
+
+    Returns
+    -------
+    ControllerJudgement
+
+    Raises
+    ------
+    InputError
+        Arrays of the wrong shape or time stamps that are not strictly increasing.
+    """
+    J = _arr("inertia_kg_m2", inertia_kg_m2, (3,))
+    if J.shape != (3, 3):
+        raise InputError(f"expected a 3x3 inertia matrix, got shape {J.shape}", key="inertia_kg_m2")
+    M = _arr("mag_sensor_to_body", mag_sensor_to_body, (3,))
+    epoch = np.asarray(time_utc, dtype="datetime64[ns]")[0]
+    t = _seconds("time_utc", time_utc, epoch)
+    w = _arr("w_body_rad_s", w_body_rad_s, (3,), len(t))
+    t_mag = _seconds("time_mag_utc", time_mag_utc, epoch)
+    b_mag_body = _arr("b_mag_sensor_nT", b_mag_sensor_nT, (3,), len(t_mag)) @ M.T
+    t_coil = _seconds("time_coil_utc", time_coil_utc, epoch)
+    i_coil = _arr("i_coil_A", i_coil_A, (3,), len(t_coil))
+    q = _arr("q_body_from_gcrf", q_body_from_gcrf, (4,), len(t), allow_none=True)
+    if b_body_nT is not None:
+        b_body = _arr("b_body_nT", b_body_nT, (3,), len(t))
+    elif q is not None and b_gcrf_nT is not None:
+        b_body = body_from_gcrf(q, _arr("b_gcrf_nT", b_gcrf_nT, (3,), len(t)))
+    else:
+        raise InputError("expected b_body_nT, or q_body_from_gcrf with b_gcrf_nT, got neither", key="b_body_nT")
+    r_gcrf = _arr("r_gcrf_km", r_gcrf_km, (3,), len(t), allow_none=True)
+    r_body = body_from_gcrf(q, r_gcrf) if (r_gcrf is not None and q is not None) else None
+    P = _arr("w_cov_rad2_s2", w_cov_rad2_s2, (3, 3), len(t), allow_none=True)
+    K = _arr("K_nT_per_A", K_nT_per_A, (3,), 3, allow_none=True)
+    if len(t) < 3 or len(t_coil) < 2:
+        raise InputError(f"expected at least 3 rate samples and 2 coil-log rows, got {len(t)} and {len(t_coil)}",
+                         key="time_utc")
+
+    law, T = controller.law, float(controller.period_s)
+    C_nom = np.asarray(coils.dipole_per_amp, float)
+    imax = np.asarray(coils.max_current_A, float)
+    window = coils.off_window_s if coils.mag_sampling == "windowed" else None
+    if controller.first_tick is not None:
+        first = float((np.datetime64(controller.first_tick, "ns") - epoch).astype(np.int64) / 1e9)
+    else:  # the tick phase from the coil log's own time stamps (circular mean)
+        ang = 2 * np.pi * np.mod(t_coil, T) / T
+        first = float(np.mod(np.arctan2(np.sin(ang).mean(), np.cos(ang).mean()), 2 * np.pi) / (2 * np.pi) * T)
+    lo, hi = max(t[0], t_coil[0]), min(t[-1], t_coil[-1] + T)
+    ticks = rep.control_ticks_s(lo, hi, T, first)
+    gate = (rep.control_ticks_s(lo - T, hi + T, T, first), *window) if window is not None else None
+    span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
+    ctx = _Context(law, T, C_nom, imax, span, coils.mag_sampling)
+
+    # 1. command replay ------------------------------------------------------------------------
+    b_tick = rep.tick_samples_nT(t_mag, b_mag_body, ticks, sampling=coils.mag_sampling, off_window_s=window)
+    i_rep = np.full((len(ticks), 3), np.nan)
+    if law == "bdot":
+        i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
+    elif law == "cross_product":
+        if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
+            tg = _seconds("time_gyro_utc", time_gyro_utc, epoch)
+            w_tick = rep.hold_values(tg, _arr("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks)
+        else:
+            w_tick = np.column_stack([np.interp(ticks, t, w[:, a]) for a in range(3)])
+        target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
+        i_rep = rep.replay_cross_product_A(b_tick, w_tick, J, target, controller.gain, C_nom, imax)
+    cmp_ = rep.compare_commands(ticks, i_rep, t_coil, i_coil, imax, T) if law != "none" else None
+    logged_tick = (cmp_.logged_A if cmp_ is not None
+                   else rep.hold_values(t_coil, i_coil, ticks + 0.5 * T, max_age_s=2 * T))
+    chatter = rep.chatter_fraction(logged_tick, imax)
+
+    # 2. dipole identification and actuation latency -------------------------------------------
+    n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
+    fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
+    if n_seg >= MIN_SEGMENTS:
+        scan_fit, lat_trials, lat_wrss = dip.scan_actuation_latency(
+            t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
+            r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T)
+        lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
+        # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
+        L_use = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else 0.0
+        fit = dip.identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
+                                  latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS)
+    else:
+        lat_info = None
+    i_applied = dip.applied_current_A(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+                                      max_hold_s=2.5 * T)
+    axes = _axes(ctx, fit, cmp_, chatter, i_applied)
+    if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
+        lat_info["determined"] = False  # no coil identified: the motion says nothing about timing
+
+    # 3. physical effect -----------------------------------------------------------------------
+    C_used = C_nom.copy()
+    for a, ax in enumerate(axes):
+        if fit is not None and ax.polarity != "undetermined":
+            C_used[:, a] = fit.C[:, a]
+    i_rep_applied = dip.applied_current_A(t, ticks, np.nan_to_num(i_rep), gate=gate, max_hold_s=2.5 * T)
+    target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
+    effect = eff.assess_effect(law, controller.gain, t, w, b_body, J, i_applied, i_rep_applied, C_used, C_nom,
+                               target_momentum_Nms=target, r_gcrf_km=r_gcrf,
+                               b_gcrf_nT=None if b_gcrf_nT is None else np.asarray(b_gcrf_nT, float))
+
+    # 4. crosstalk feedback --------------------------------------------------------------------
+    loop: dict[str, Any] = {}
+    if law == "bdot" and K is not None:
+        L_act = fit.latency_s if fit is not None else 0.0
+        seen = (np.zeros((len(ticks), 3)) if coils.mag_sampling == "coils_off" else
+                dip.applied_current_A(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
+        loop = rep.assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
+                                             i_seen_at_tick_A=seen, max_current_A=imax,
+                                             delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
+
+    anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks))
+    verdict = _verdict(ctx, axes, anomalies, reasons, cmp_)
+    lag = cmp_.lag_s if cmp_ is not None else None
+    act = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else None
+    total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
+    return ControllerJudgement(
+        law=law, axes=tuple(axes), verdict=verdict, reasons=tuple(reasons), anomalies=tuple(anomalies),
+        latency_s=total, command_lag_s=lag, actuation_latency_s=act,
+        actuation_latency_interval_s=lat_info["interval_s"] if lat_info is not None else None,
+        rate_trend=effect["rate_trend"], energy_time_constant_s=effect.get("tau_E"),
+        energy_time_constant_expected_s=effect.get("tau_E_exp"),
+        momentum_error_trend=effect.get("h_trend"), momentum_error_time_constant_s=effect.get("tau_h"),
+        momentum_error_time_constant_expected_s=effect.get("tau_h_exp"),
+        magnetic_power_mean_W=effect.get("power_W"), damping_fraction=effect.get("damping_fraction"),
+        loop_gain=loop.get("loop_gain"), crosstalk_coupling=loop.get("coupling"),
+        chatter_fraction_without_coil_field=(_f(float(np.nanmax(loop["chatter_without"])))
+                                             if "chatter_without" in loop else None),
+        bdot_equivalent_gain_Nms=effect.get("k_eq"), near_optimal_gain_Nms=effect.get("k_ag"),
+        rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
+        residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
+        extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
+                "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
+                "n_ticks": int(len(ticks)), "n_segments": n_seg},
+    )
+
+
+@dataclass(frozen=True)
+class _Context:
+    law: str
+    period_s: float
+    C_nom: np.ndarray
+    imax: np.ndarray
+    span: tuple[np.datetime64, np.datetime64]
+    sampling: str
+
+
+def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | None:
+    """Best latency, its 3-sigma range (profile chi-square within 9; the 1-sigma one within 1) and
+    the chi-square excess of zero latency, in units of the best fit's scaled residual variance.
+
+    The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
+    model errors (attitude error) make them optimistic, so decisions use the 3-sigma range."""
+    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss)):
+        return None
+    infl = (1 + scan_fit.ar1) / (1 - scan_fit.ar1) if 0 < scan_fit.ar1 < 0.99 else 1.0
+    unit = scan_fit.chi2_per_dof * infl
+    d = (wrss - np.nanmin(wrss)) / unit
+    dd = np.nan_to_num(d, nan=np.inf)
+    inside = lat[dd <= 1.0]
+    wide = lat[dd <= LATENCY_DELTA_CHI2]
+    d0 = d[np.argmin(np.abs(lat))] if np.min(np.abs(lat)) < 1e-9 else np.nan
+    lo, hi = float(wide.min()), float(wide.max())
+    return {"latency_s": float(scan_fit.latency_s), "interval_s": (lo, hi), "delta_chi2_zero": float(d0),
+            "interval_1sigma_s": (float(inside.min()), float(inside.max())),
+            # determined: the 3-sigma set (profile chi-square within 9) spans at most two periods,
+            # i.e. the latency is known to within about one period
+            "determined": bool(wide.max() - wide.min() <= 2.0 * period_s + 1e-9)}
+
+
+def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
+    out = []
+    for a, name in enumerate(AXES):
+        c0 = float(ctx.C_nom[a, a])
+        rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
+        if fit is not None and np.isfinite(fit.C_sigma[a, a]):
+            pol, conf, r, rs = dip.classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
+            est, sig = float(fit.C[a, a]), float(np.hypot(fit.C_sigma[a, a], dip.MODEL_FLOOR_FRACTION * abs(c0)))
+        else:  # not identified, or the coil never carried current
+            pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
+        out.append(AxisJudgement(
+            axis=name, polarity=pol, polarity_confidence=_f(conf), dipole_per_amp_estimated=_f(est),
+            dipole_per_amp_sigma=_f(sig), dipole_per_amp_nominal=c0, gain_ratio=_f(r), gain_ratio_sigma=_f(rs),
+            command_gain_ratio=_f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
+            correlation=_f(cmp_.correlation[a]) if cmp_ is not None else None,
+            saturation_fraction=_f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
+            chatter_fraction=_f(chatter[a]), rms_current_A=_f(rms)))
+    return out
+
+
+
+
+# ------------------------------------------------------------------------------------------ findings
+def _an(ctx: _Context, code: str, severity: str, evidence: str, axis: str | None = None,
+        value: float | None = None) -> Anomaly:
+    return Anomaly(code, severity, evidence, ctx.span[0], ctx.span[1], axis, _f(value) if value is not None else None)
+
+
+def _command_verified(cmp_, a: int) -> bool:
+    if cmp_ is None or not np.isfinite(cmp_.correlation[a]) or cmp_.correlation[a] < COMMAND_MIN_CORRELATION:
+        return False
+    if cmp_.n_informative[a] >= COMMAND_MIN_TICKS:
+        return bool(abs(cmp_.gain_ratio[a] - 1.0) <= COMMAND_GAIN_TOLERANCE)
+    return True
+
+
+def _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons) -> None:
+    if fit is None:
+        if n_seg < MIN_SEGMENTS:
+            reasons.append(f"pass too short to identify the coils from the motion: {n_ticks} control ticks "
+                           f"({n_ticks * ctx.period_s:.0f} s) make {n_seg} segments of {SEGMENT_POINTS - 1} "
+                           f"periods, {MIN_SEGMENTS} are needed")
+        else:
+            reasons.append("the coils could not be identified from the motion: too few usable instants "
+                           "(gaps in the coil log or the rate history)")
+        return
+    for a, ax in enumerate(axes):
+        est, sig, c0, r, rs = (ax.dipole_per_amp_estimated, ax.dipole_per_amp_sigma, ax.dipole_per_amp_nominal,
+                               ax.gain_ratio, ax.gain_ratio_sigma)
+        if est is None or sig is None:
+            head = f"coil {ax.axis}: no dipole estimate (nominal {c0:+.2f} A m^2/A)"
+        else:
+            head = f"coil {ax.axis}: estimated dipole {est:+.2f} +- {sig:.2f} A m^2/A against nominal {c0:+.2f}"
+        rms = f"{(ax.rms_current_A or 0.0) * 1e3:.1f} mA rms"
+        if ax.polarity == "inverted":
+            why = ""
+            if ax.command_gain_ratio is not None and abs(ax.command_gain_ratio - 1) <= COMMAND_GAIN_TOLERANCE:
+                why = (f"; the logged commands follow the law (command gain ratio {ax.command_gain_ratio:.2f}), "
+                       "so the reversal is in the coil or its wiring")
+            out.append(_an(ctx, "coil_polarity_inverted", "critical",
+                           f"{head}: polarity inverted ({ax.polarity_confidence:.0f} sigma from zero){why}",
+                           ax.axis, est))
+        elif ax.polarity == "no_response":
+            out.append(_an(ctx, "coil_no_response", "critical",
+                           f"{head}: no response ({ax.polarity_confidence:.0f} sigma below nominal) while "
+                           f"commanded at {rms}", ax.axis, est))
+        elif ax.polarity == "undetermined":
+            if not ax.rms_current_A:
+                reasons.append(f"{head}: the coil carried no current during the pass")
+            else:
+                reasons.append(f"{head}: cannot be told from nominal or from zero at 3 sigma "
+                               f"(current {rms}, {100 * ax.rms_current_A / ctx.imax[a]:.0f} % of the limit)")
+        if ax.polarity in ("nominal", "inverted"):
+            lo, hi = abs(r) - COIL_GAIN_SIGMAS * rs, abs(r) + COIL_GAIN_SIGMAS * rs
+            if lo > 1 + COIL_GAIN_TOLERANCE or hi < 1 - COIL_GAIN_TOLERANCE:
+                out.append(_an(ctx, "coil_gain_off", "warning",
+                               f"coil {ax.axis}: dipole {abs(est):.2f} +- {sig:.2f} A m^2/A is {abs(r):.2f} of nominal "
+                               f"{abs(c0):.2f} (3-sigma interval {lo:.2f} to {hi:.2f}, outside "
+                               f"{1 - COIL_GAIN_TOLERANCE:.2f} to {1 + COIL_GAIN_TOLERANCE:.2f})", ax.axis, r))
+
+
+def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
+    T = ctx.period_s
+    if cmp_ is not None:
+        for a, ax in enumerate(axes):
+            cg, cc, n = cmp_.gain_ratio[a], cmp_.correlation[a], int(cmp_.n_informative[a])
+            bad_gain = n >= COMMAND_MIN_TICKS and abs(cg - 1.0) > COMMAND_GAIN_TOLERANCE
+            bad_corr = np.isfinite(cc) and cc < COMMAND_MIN_CORRELATION and n >= COMMAND_MIN_TICKS
+            if bad_gain or bad_corr:
+                sev = "critical" if (np.isfinite(cg) and cg < 0) else "warning"
+                out.append(_an(ctx, "command_mismatch", sev,
+                               f"axis {ax.axis}: logged commands are {cg:.2f} times the replayed {ctx.law} law "
+                               f"(correlation {cc:.2f} over {n} unsaturated ticks); a healthy law gives 1.00 within "
+                               f"{COMMAND_GAIN_TOLERANCE:.2f} and correlation above {COMMAND_MIN_CORRELATION}",
+                               ax.axis, cg))
+            elif not _command_verified(cmp_, a):
+                reasons.append(f"axis {ax.axis}: the logged commands could not be checked against the law "
+                               f"({n} informative ticks, correlation {cc:.2f})")
+            sf = cmp_.saturation_fraction[a]
+            if np.isfinite(sf) and sf > SATURATION_FRACTION_LIMIT:
+                out.append(_an(ctx, "controller_saturated", "warning",
+                               f"axis {ax.axis}: at the current limit ({ctx.imax[a] * 1e3:.0f} mA) on {100 * sf:.0f} % "
+                               f"of control ticks (more than {100 * SATURATION_FRACTION_LIMIT:.0f} %): the law acts "
+                               "as bang-bang there, not at its configured gain", ax.axis, sf))
+        if cmp_.lag_s is not None and abs(cmp_.lag_s) >= LATENCY_LIMIT_PERIODS * T:
+            out.append(_an(ctx, "command_latency", "warning",
+                           f"logged commands appear {cmp_.lag_s:.2f} s after the replayed law's tick "
+                           f"({cmp_.lag_s / T:.1f} control periods)", value=cmp_.lag_s))
+    if lat_info is None:
+        return
+    L, (lo, hi), d0 = lat_info["latency_s"], lat_info["interval_s"], lat_info["delta_chi2_zero"]
+    if lat_info["determined"] and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
+        out.append(_an(ctx, "command_latency", "warning",
+                       f"coil currents act {L:.1f} s (3-sigma range {lo:.1f} to {hi:.1f} s) after their logged command "
+                       f"time, {L / T:.1f} control periods; the motion rejects immediate action (profile "
+                       f"chi-square +{d0:.0f} at zero delay)", value=L))
+
+
+def _effect_findings(ctx, effect, out, reasons) -> None:
+    if ctx.law == "bdot":
+        tr, tre = effect.get("energy_trend"), effect.get("energy_trend_expected")
+        code_up, code_slow, what = "rate_increasing", "detumble_slow", "kinetic energy"
+    elif ctx.law == "cross_product":
+        tr, tre = effect.get("h_trend_obj"), effect.get("h_trend_expected")
+        code_up, code_slow, what = "momentum_error_increasing", "momentum_dump_slow", "momentum error |h - h_target|"
+    else:
+        return
+    if tr is None:
+        reasons.append(f"the {what} trend could not be fitted (too few rate samples)")
+        return
+    label = eff.trend_label(tr)
+    tau_exp = tre.time_constant_s if tre is not None else float("nan")
+    if label == "increasing":
+        out.append(_an(ctx, code_up, "critical",
+                       f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} per s, "
+                       f"{np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) where the "
+                       f"configured law should have reduced it (expected time constant {tau_exp:.0f} s); mean "
+                       f"magnetic power {effect.get('power_W', float('nan')):+.2e} W (positive pumps energy in)",
+                       value=tr.slope_per_s))
+        return
+    if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
+        return
+    ratio = effect.get("efficiency", float("nan"))
+    if np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR:
+        obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
+        extra = ""
+        if ctx.law == "bdot" and effect.get("k_eq") and effect.get("k_ag"):
+            extra = (f"; B-dot equivalent gain k <|B|^2> = {effect['k_eq']:.2e} N m s, "
+                     f"{effect['k_eq'] / effect['k_ag']:.1f} times the near-optimal {effect['k_ag']:.2e} N m s "
+                     "(Avanzini and Giulietti 2012)")
+        out.append(_an(ctx, code_slow, "warning",
+                       f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
+                       f"this trajectory (achieved {max(ratio, 0):.2f} of the expected decay rate, limit "
+                       f"1/{DETUMBLE_SLOW_FACTOR:.0f}){extra}", value=ratio))
+
+
+def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
+    if ctx.law != "bdot" or not np.any(np.isfinite(chatter)):
+        return
+    rot = effect.get("mean_rate_rad_s", 0.0) * ctx.period_s / np.pi
+    a = int(np.nanargmax(chatter))
+    cf = float(chatter[a])
+    lg = loop.get("loop_gain")
+    detected = cf >= CHATTER_FRACTION_LIMIT and cf >= CHATTER_ROTATION_FACTOR * rot
+    rate_txt = f"{np.degrees(effect.get('mean_rate_rad_s', 0.0)):.1f} deg/s"
+    if detected:
+        head = (f"coil commands flip between the current limits on {100 * cf:.0f} % of ticks (axis {AXES[a]}); the "
+                f"body's rotation ({rate_txt}) alone would flip about {100 * rot:.1f} %")
+        if lg is not None and lg >= LOOP_GAIN_LIMIT:
+            cw = loop.get("chatter_without")
+            cw_txt = f"{100 * float(np.nanmax(cw)):.0f} %" if cw is not None and np.any(np.isfinite(cw)) else "n/a"
+            kmax = float(np.max(np.abs(loop["K_body_nT_per_A"])))
+            out.append(_an(ctx, "crosstalk_feedback", "critical",
+                           f"{head}; the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates; "
+                           f"crosstalk up to {kmax:.0f} nT/A) and the law replayed with the coils' field removed "
+                           f"from its samples flips on {cw_txt} of ticks: the coils' own field, seen by the "
+                           f"magnetometer (mag_sampling = {ctx.sampling}), feeds back through dB/dt",
+                           AXES[a], lg))
+        else:
+            lg_txt = f"loop gain {lg:.2f} < {LOOP_GAIN_LIMIT:.0f}" if lg is not None else "no crosstalk estimate"
+            out.append(_an(ctx, "crosstalk_feedback", "warning",
+                           f"{head}; {lg_txt}: the coils' field does not explain it", AXES[a], cf))
+    elif lg is not None and lg >= LOOP_GAIN_LIMIT and ctx.sampling == "coils_on":
+        out.append(_an(ctx, "crosstalk_feedback", "warning",
+                       f"the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates) with the "
+                       "magnetometer sampled while the coils are on, although commands flipped on only "
+                       f"{100 * cf:.0f} % of ticks in this pass", value=lg))
+
+
+def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks):
+    out: list[Anomaly] = []
+    reasons: list[str] = []
+    if ctx.law == "none":
+        reasons.append('no control law is configured (controller.law = "none"): there is no intended '
+                       "behaviour to check the coils against")
+    _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons)
+    _command_findings(ctx, axes, cmp_, lat_info, out, reasons)
+    _effect_findings(ctx, effect, out, reasons)
+    _feedback_findings(ctx, effect, loop, chatter, out)
+    return out, reasons
+
+
+def _verdict(ctx, axes, anomalies, reasons, cmp_) -> str:
+    """"not_as_intended" on any critical or warning finding other than saturation (an operating
+    regime, not a fault); otherwise "as_intended" only when every coil's polarity and every axis's
+    commands were checked; "undetermined" (with ``reasons``) when anything could not be."""
+    if any(a.severity in ("critical", "warning") and a.code != "controller_saturated" for a in anomalies):
+        return "not_as_intended"
+    if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
+        return "undetermined"
+    if not all(_command_verified(cmp_, a) for a in range(3)):
+        return "undetermined"
+    return "as_intended"
