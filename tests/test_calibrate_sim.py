@@ -19,8 +19,8 @@ from recon.simulate import simulate_pass
 
 DURATION_s = 600.0
 # A tumbling satellite (15 deg/s, B-dot saturating its coils, so the currents span their range),
-# a 20 nT magnetometer and 2,000-6,000 nT/A of crosstalk (240-720 nT at full current): CHECKS-range
-# values (COTS sensors 10-100 nT; crosstalk 100 nT to tens of uT per coil; common practice, no source)
+# a 20 nT magnetometer and 2,000-6,000 nT/A of crosstalk (240-720 nT at full current): values of the
+# trade (COTS sensors 10-100 nT rms; crosstalk 100 nT to tens of uT per coil; common practice, no source)
 INFORMATIVE = {"tumble_deg_s": 15.0, "mag_noise_nT": 20.0, "mag_lsb_nT": 1.0,
                "mag_crosstalk_range_nT_per_A": (2000.0, 6000.0)}
 
