@@ -96,12 +96,45 @@ def window_bounds(segment_start: np.ndarray, n: int, half_width: int = HALF_WIDT
 
 
 @numba.njit(cache=True, nogil=True)
+def _insert(buf, m, v):  # pragma: no cover - compiled
+    """Insert v into the sorted buf[:m] (binary search, then shift)."""
+    lo, hi = 0, m
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if buf[mid] <= v:
+            lo = mid + 1
+        else:
+            hi = mid
+    for k in range(m, lo, -1):
+        buf[k] = buf[k - 1]
+    buf[lo] = v
+
+
+@numba.njit(cache=True, nogil=True)
+def _remove(buf, m, v):  # pragma: no cover - compiled
+    """Remove one element equal to v from the sorted buf[:m]."""
+    lo, hi = 0, m
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if buf[mid] < v:
+            lo = mid + 1
+        else:
+            hi = mid
+    for k in range(lo, m - 1):
+        buf[k] = buf[k + 1]
+
+
+@numba.njit(cache=True, nogil=True)
 def moving_median_mad(x, lo, hi):  # pragma: no cover - compiled; checked against the reference
     """Median and median absolute deviation of ``x[lo[i] : hi[i] + 1]`` for every i.
 
+    The window is kept sorted as it slides (one removal and one insertion per step, a rebuild when
+    it jumps to a new segment); the MAD comes from merging the deviations on either side of the
+    median, which are already in order. Windows must move forward: ``lo`` and ``hi`` nondecreasing.
+
     Parameters
     ----------
-    x : (N,) float64 array
+    x : (N,) float64 array, finite
     lo, hi : (N,) int64 arrays, inclusive window bounds
 
     Returns
@@ -114,28 +147,56 @@ def moving_median_mad(x, lo, hi):  # pragma: no cover - compiled; checked agains
     width = 1
     for i in range(n):
         width = max(width, hi[i] - lo[i] + 1)
-    buf = np.empty(width)
-    dev = np.empty(width)
+    buf = np.empty(width + 1)
+    m = 0
+    cur_lo, cur_hi = 0, -1
     for i in range(n):
-        m = hi[i] - lo[i] + 1
-        for j in range(m):  # insertion sort: windows are a handful of samples
-            v = x[lo[i] + j]
-            k = j
-            while k > 0 and buf[k - 1] > v:
-                buf[k] = buf[k - 1]
-                k -= 1
-            buf[k] = v
+        a, b = lo[i], hi[i]
+        if a > cur_hi or a < cur_lo or b < cur_hi:  # disjoint or moved back: start again
+            m = 0
+            for j in range(a, b + 1):
+                _insert(buf, m, x[j])
+                m += 1
+        else:
+            for j in range(cur_lo, a):
+                _remove(buf, m, x[j])
+                m -= 1
+            for j in range(cur_hi + 1, b + 1):
+                _insert(buf, m, x[j])
+                m += 1
+        cur_lo, cur_hi = a, b
         h = m // 2
-        md = buf[h] if m % 2 == 1 else 0.5 * (buf[h - 1] + buf[h])
+        if m % 2 == 1:
+            md = buf[h]
+        else:
+            md = 0.5 * (buf[h - 1] + buf[h])
         med[i] = md
-        for j in range(m):
-            v = abs(buf[j] - md)
-            k = j
-            while k > 0 and dev[k - 1] > v:
-                dev[k] = dev[k - 1]
-                k -= 1
-            dev[k] = v
-        mad[i] = dev[h] if m % 2 == 1 else 0.5 * (dev[h - 1] + dev[h])
+        # deviations in increasing order: walk outward from the median
+        if m % 2 == 1:
+            left, right = h - 1, h + 1
+            d_prev = 0.0
+            count = 1  # the centre, deviation 0
+        else:
+            left, right = h - 1, h
+            d_prev = 0.0
+            count = 0
+        d_cur = 0.0
+        target = h  # 0-based index of the (upper) middle deviation
+        while count <= target:
+            dl = md - buf[left] if left >= 0 else np.inf
+            dr = buf[right] - md if right < m else np.inf
+            d_prev = d_cur
+            if dl <= dr:
+                d_cur = dl
+                left -= 1
+            else:
+                d_cur = dr
+                right += 1
+            count += 1
+        if m % 2 == 1:
+            mad[i] = d_cur if m > 1 else 0.0
+        else:
+            mad[i] = 0.5 * (d_prev + d_cur)
     return med, mad
 
 
@@ -201,11 +262,24 @@ def hampel_flags(x: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: float, floor)
     if x.size == 0:
         z = np.zeros(0)
         return np.zeros(0, dtype=bool), z, z
+    floor = np.ascontiguousarray(np.broadcast_to(np.asarray(floor, dtype=np.float64), x.shape))
     med, mad = moving_median_mad(x, lo, hi)
-    resid = x - med
-    scale = np.maximum(MAD_TO_SIGMA * mad, floor)
-    with np.errstate(invalid="ignore", over="ignore"):
-        flag = (np.abs(resid) > t * scale) & ((hi - lo + 1) >= 3)
+    return _decide(x, med, mad, lo, hi, float(t), floor)
+
+
+@numba.njit(cache=True, nogil=True)
+def _decide(x, med, mad, lo, hi, t, floor):  # pragma: no cover - compiled
+    """flag, resid, scale of the Hampel identifier in one pass (NaN or inf never flags)."""
+    n = x.size
+    flag = np.zeros(n, dtype=np.bool_)
+    resid = np.empty(n)
+    scale = np.empty(n)
+    for i in range(n):
+        r = x[i] - med[i]
+        s = max(MAD_TO_SIGMA * mad[i], floor[i])
+        resid[i] = r
+        scale[i] = s
+        flag[i] = (hi[i] - lo[i] >= 2) and abs(r) > t * s
     return flag, resid, scale
 
 
@@ -221,12 +295,11 @@ def _rate_flags(x: np.ndarray, t_s: np.ndarray, seg_start: np.ndarray, sigma: fl
     sample of a two-sample burst) still does.
     """
     n = x.size
-    out = np.zeros(n, dtype=bool)
     cut = np.zeros(n, dtype=bool)
     cut[seg_start[seg_start > 0]] = True  # pair (j-1, j) crosses a gap when j starts a segment
     j = np.flatnonzero(~cut[1:])
     if j.size < 3:
-        return out
+        return np.zeros(n, dtype=bool)
     dt = np.diff(t_s)[j]
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         rate = np.diff(x)[j] / dt
@@ -236,33 +309,51 @@ def _rate_flags(x: np.ndarray, t_s: np.ndarray, seg_start: np.ndarray, sigma: fl
     rseg = np.flatnonzero(np.diff(j) != 1) + 1
     rlo, rhi = window_bounds(np.concatenate(([0], rseg)), j.size, half_width, symmetric=True)
     r_flag, r_resid, r_scale = hampel_flags(rate, rlo, rhi, t, floor)
-    r_med = rate - r_resid
-    into = np.full(n, -1)
-    into[j + 1] = np.arange(j.size)
-    outof = np.full(n, -1)
-    outof[j] = np.arange(j.size)
-    both = (into >= 0) & (outof >= 0)
-    ia, ib = into[both], outof[both]
-    hit = r_flag[ia] & r_flag[ib] & (np.sign(r_resid[ia]) != np.sign(r_resid[ib]))
-    cand = np.flatnonzero(both)[hit]
-    if cand.size == 0:
-        return out
-    # second pass: nearest non-candidate neighbours in the same segment
-    seg_id = np.cumsum(cut)
-    keep = np.ones(n, dtype=bool)
-    keep[cand] = False
-    others = np.flatnonzero(keep)
-    k = np.searchsorted(others, cand)
-    has_p, has_q = k > 0, k < others.size
-    p = others[np.maximum(k - 1, 0)]
-    q = others[np.minimum(k, others.size - 1)]
-    ok = has_p & has_q & (seg_id[p] == seg_id[cand]) & (seg_id[q] == seg_id[cand])
-    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        e_in = (x[cand] - x[p]) / (t_s[cand] - t_s[p]) - r_med[into[cand]]
-        e_out = (x[q] - x[cand]) / (t_s[q] - t_s[cand]) - r_med[outof[cand]]
-        confirm = (ok & (np.abs(e_in) > t * r_scale[into[cand]]) & (np.abs(e_out) > t * r_scale[outof[cand]])
-                   & (np.sign(e_in) != np.sign(e_out)))
-    out[cand[confirm]] = True
+    return _out_and_back(np.ascontiguousarray(x, dtype=np.float64), np.ascontiguousarray(t_s, dtype=np.float64),
+                         j, np.cumsum(cut), r_flag, r_resid, r_scale, rate - r_resid, float(t))
+
+
+@numba.njit(cache=True, nogil=True)
+def _out_and_back(x, t_s, j, seg_id, r_flag, r_resid, r_scale, r_med, t):  # pragma: no cover - compiled
+    """Both passes of the out-and-back test (see :func:`_rate_flags`) over the pair series ``j``."""
+    n = x.size
+    into = np.full(n, -1, dtype=np.int64)
+    outof = np.full(n, -1, dtype=np.int64)
+    for k in range(j.size):
+        outof[j[k]] = k
+        into[j[k] + 1] = k
+    cand = np.zeros(n, dtype=np.bool_)
+    for i in range(n):
+        a, b = into[i], outof[i]
+        if a >= 0 and b >= 0 and r_flag[a] and r_flag[b] and (
+                (r_resid[a] > 0 and r_resid[b] < 0) or (r_resid[a] < 0 and r_resid[b] > 0)):
+            cand[i] = True
+    # nearest non-candidate before and after each sample
+    prev = np.full(n, -1, dtype=np.int64)
+    nxt = np.full(n, n, dtype=np.int64)
+    last = -1
+    for i in range(n):
+        prev[i] = last
+        if not cand[i]:
+            last = i
+    last = n
+    for i in range(n - 1, -1, -1):
+        nxt[i] = last
+        if not cand[i]:
+            last = i
+    out = np.zeros(n, dtype=np.bool_)
+    for i in range(n):
+        if not cand[i]:
+            continue
+        p, q = prev[i], nxt[i]
+        if p < 0 or q >= n or seg_id[p] != seg_id[i] or seg_id[q] != seg_id[i]:
+            continue
+        a, b = into[i], outof[i]
+        e_in = (x[i] - x[p]) / (t_s[i] - t_s[p]) - r_med[a]
+        e_out = (x[q] - x[i]) / (t_s[q] - t_s[i]) - r_med[b]
+        if (abs(e_in) > t * r_scale[a] and abs(e_out) > t * r_scale[b]
+                and ((e_in > 0 and e_out < 0) or (e_in < 0 and e_out > 0))):
+            out[i] = True
     return out
 
 

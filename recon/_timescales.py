@@ -20,12 +20,13 @@ import warnings
 
 import erfa
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 
 from .constants import GPS_EPOCH_UTC
 
 __all__ = [
     "TAI_MINUS_GPS_s", "EARLIEST_UTC", "LATEST_UTC",
-    "iso_to_utc", "unix_seconds_to_utc", "gps_seconds_to_utc", "unwrap_ticks", "ticks_to_utc",
+    "iso_to_utc", "iso_bytes_to_utc", "unix_seconds_to_utc", "gps_seconds_to_utc", "unwrap_ticks", "ticks_to_utc",
 ]
 
 # TAI - GPS, fixed by the definition of GPS time (ICD-GPS-200: GPS = UTC at 1980-01-06, when
@@ -86,6 +87,101 @@ def iso_to_utc(text) -> np.ndarray:
     ok = ~np.isnat(naive) & (naive >= lo) & (naive < hi)
     out = np.full(naive.shape, _NAT)
     out[ok] = naive[ok].astype("datetime64[ns]")
+    return out
+
+
+_DAYS_IN_MONTH = np.array([31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31], dtype=np.int64)
+_DAYS_IN_MONTH.flags.writeable = False
+
+
+def _days_from_civil(y: np.ndarray, m: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Days since 1970-01-01 of proleptic Gregorian dates (H. Hinnant's days_from_civil algorithm)."""
+    y = y - (m <= 2)
+    era = np.floor_divide(y, 400)
+    yoe = y - era * 400
+    doy = (153 * (m + np.where(m > 2, -3, 9)) + 2) // 5 + d - 1
+    doe = yoe * 365 + yoe // 4 - yoe // 100 + doy
+    return era * 146097 + doe - 719468
+
+
+def _fixed_iso(chars: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Parse fixed-width "YYYY-MM-DDThh:mm:ss[.f...]" rows (uint8, (N, w), 19 <= w <= 29, no zone).
+
+    Returns ns since 1970 (int64) and a mask of rows that follow that layout exactly and name a
+    real instant (month 1-12, a day that exists in that month, hh < 24, mm < 60, ss < 60). Other rows
+    are left to the general parser. Digits are read arithmetically: no string parser is involved.
+    """
+    n, w = chars.shape
+    cols = np.ascontiguousarray(chars.T)  # (w, N): one contiguous row per character position
+    ok = np.ones(n, dtype=bool)
+
+    def num(*ks):  # the number written by the digits at positions ks; marks non-digits
+        nonlocal ok
+        total = np.zeros(n, dtype=np.int64)
+        for k in ks:
+            d = cols[k].astype(np.int64) - 48
+            ok &= (d >= 0) & (d <= 9)
+            total = total * 10 + d
+        return total
+
+    year, month, day = num(0, 1, 2, 3), num(5, 6), num(8, 9)
+    hour, minute, second = num(11, 12), num(14, 15), num(17, 18)
+    ok &= (cols[4] == 45) & (cols[7] == 45) & ((cols[10] == 84) | (cols[10] == 32))
+    ok &= (cols[13] == 58) & (cols[16] == 58)
+    frac_ns = np.zeros(n, dtype=np.int64)
+    if w > 19:
+        ok &= (cols[19] == 46) & (w > 20)
+        frac_ns = num(*range(20, w)) * 10 ** (9 - (w - 20))
+    leap = ((year % 4 == 0) & (year % 100 != 0)) | (year % 400 == 0)
+    month_ok = (month >= 1) & (month <= 12)
+    dim = _DAYS_IN_MONTH[np.clip(month - 1, 0, 11)] + ((month == 2) & leap)
+    ok &= month_ok & (day >= 1) & (day <= dim) & (hour <= 23) & (minute <= 59) & (second <= 59)
+    days = _days_from_civil(year, np.clip(month, 1, 12), day)
+    ns = ((days * 86_400 + hour * 3600 + minute * 60 + second) * _NS) + frac_ns
+    return np.where(ok, ns, 0), ok
+
+
+def iso_bytes_to_utc(buf: np.ndarray, start: np.ndarray, end: np.ndarray) -> np.ndarray:
+    """ISO 8601 UTC times stored as byte ranges of a buffer, to datetime64[ns]; NaT where unreadable.
+
+    Fast path for logs whose time fields share a few fixed widths ("2026-07-14T09:12:00.100Z"): the
+    fields of one width are gathered into an (N, width) byte array and their digits read
+    arithmetically (see :func:`_fixed_iso`). Any field off that layout (an explicit offset, a date
+    alone, text, an impossible date) goes through :func:`iso_to_utc` (pandas), which decides.
+
+    Parameters
+    ----------
+    buf : (B,) uint8 array, the file
+    start, end : (N,) int64 arrays, ``[start, end)`` of each time field
+    """
+    n = start.size
+    out = np.full(n, _NAT)
+    if n == 0:
+        return out
+    length = end - start
+    has_z = np.zeros(n, dtype=bool)
+    nz = length > 0
+    has_z[nz] = buf[end[nz] - 1] == ord("Z")
+    width = length - has_z
+    slow = np.zeros(n, dtype=bool)
+    keys = width[:1] if width.min() == width.max() else np.unique(width)
+    if keys.size > 12:
+        slow[:] = True
+        keys = keys[:0]
+    for w in keys:
+        g = np.arange(n) if keys.size == 1 else np.flatnonzero(width == w)
+        if w < 19 or w > 29:
+            slow[g] = True
+            continue
+        ns, ok = _fixed_iso(sliding_window_view(buf, int(w))[start[g]])
+        out[g[ok]] = ns[ok].astype("datetime64[ns]")
+        slow[g[~ok]] = True
+    if slow.any():
+        idx = np.flatnonzero(slow)
+        raw = [bytes(buf[a:b]).decode("utf-8", "replace") for a, b in zip(start[idx], end[idx], strict=True)]
+        out[idx] = iso_to_utc(raw)
+    bad = np.isnat(out) | (out < EARLIEST_UTC) | (out >= LATEST_UTC)
+    out[bad] = _NAT
     return out
 
 

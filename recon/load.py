@@ -174,25 +174,23 @@ def _numbers(col: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """float64 values of a column and a reason code per row: 0 ok, 1 missing, 2 non-numeric,
     3 non-finite."""
     if col.dtype == object:
-        s = pd.Series(col, dtype=object)
-        v = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float)
-        empty = s.str.strip().fillna("").to_numpy(dtype=object) == ""
+        v = pd.to_numeric(pd.Series(col, dtype=object), errors="coerce").to_numpy(dtype=float)
     else:
         v = col.astype(float, copy=False)
-        empty = np.zeros(v.shape, dtype=bool)
     code = np.zeros(v.shape, dtype=np.int8)
-    bad = ~np.isfinite(v)
-    if col.dtype == object and bad.any():
-        low = pd.Series(col[bad], dtype=object).str.strip().str.lower()
-        looks_numeric = low.str.fullmatch(r"[+-]?(nan|inf|infinity|[0-9.]+(e[+-]?[0-9]+)?)").fillna(False)
-        code[np.flatnonzero(bad)] = np.where(looks_numeric.to_numpy(dtype=bool), 3, 2)
-    else:
+    bad = np.flatnonzero(~np.isfinite(v))
+    if bad.size == 0:
+        return v, code
+    if col.dtype != object:
         code[bad] = 3
-    code[empty] = 1
+        return v, code
+    text = pd.Series(col[bad], dtype=object).astype(str).str.strip().str.lower()
+    looks_numeric = text.str.fullmatch(r"[+-]?(nan|inf|infinity|[0-9.]+(e[+-]?[0-9]+)?)").to_numpy(dtype=bool)
+    code[bad] = np.where(text.to_numpy(dtype=object) == "", 1, np.where(looks_numeric, 3, 2))
     return v, code
 
 
-_CODE_REASON = {1: REASON_MISSING, 2: REASON_NON_NUMERIC, 3: REASON_NON_FINITE}
+_CODE_REASON = {1: REASON_MISSING, 2: REASON_NON_NUMERIC, 3: REASON_NON_FINITE, 4: REASON_BAD_TIME}
 
 
 def _times(col: np.ndarray, spec: TimeSpec) -> tuple[np.ndarray, np.ndarray]:
@@ -231,7 +229,7 @@ def _content_ids(scan: Scan, rows_line_idx: np.ndarray, t_ns: np.ndarray) -> np.
     """Index of the first row with byte-identical line content (only rows sharing a time can)."""
     n = rows_line_idx.size
     ids = np.arange(n, dtype=np.int64)
-    if n < 2:
+    if n < 2 or np.all(np.diff(t_ns) > 0):  # strictly increasing: no two rows share a time
         return ids
     order = np.argsort(t_ns, kind="stable")
     same = t_ns[order][1:] == t_ns[order][:-1]
@@ -286,40 +284,53 @@ def load_log(spec: SensorSpec | CoilSpec, name: str, label: str | None = None) -
         raise InputError(f"expected data rows after the header, found none in the {name} log", path)
     i_time = _column_index(scan.header, spec.time.column, path, name)
     i_val = [_column_index(scan.header, c, path, name) for c in spec.columns]
-    usecols = sorted(set([i_time, *i_val]))
-    float_cols = [c for c in usecols if not (c == i_time and spec.time.format == "iso")]
 
     body, good_idx = scan.good_body()
-    cols = _read_columns(body, usecols, float_cols, good_idx.size)
     n = good_idx.size
+    buf = np.frombuffer(data, dtype=np.uint8)
+    t_iso = None
+    if spec.time.format == "iso" and n:
+        # ISO times straight from the bytes (no Python string per row); values through pandas
+        t_iso = ts.iso_bytes_to_utc(buf, *scan.field_span(good_idx, i_time))
+    usecols = sorted(set(i_val) | (set() if t_iso is not None else {i_time}))
+    float_cols = [c for c in usecols if not (c == i_time and spec.time.format == "iso")]
+    cols = _read_columns(body, usecols, float_cols, n)
     line_good = good_idx + 2
-    reason = np.full(n, "", dtype=object)
-    detail = np.full(n, "", dtype=object)
+    code = np.zeros(n, dtype=np.int8)  # 0 usable, else a key of _CODE_REASON
+    detail: dict[int, str] = {}
 
     # values: raw -> file unit -> internal unit
     raw = np.empty((n, 3))
     for k, (c, cname) in enumerate(zip(i_val, spec.columns, strict=True)):
-        v, code = _numbers(cols[c])
+        v, vcode = _numbers(cols[c])
         raw[:, k] = v
-        hit = np.flatnonzero((code > 0) & (reason == ""))
-        for i in hit:  # only the failing rows
-            reason[i] = _CODE_REASON[int(code[i])]
-            detail[i] = f"column {cname!r}: expected a finite number, got {_shown(cols[c][i])}"
+        for i in np.flatnonzero((vcode > 0) & (code == 0)):  # only the failing rows
+            code[i] = vcode[i]
+            detail[int(i)] = f"column {cname!r}: expected a finite number, got {_shown(cols[c][i])}"
     with np.errstate(over="ignore", invalid="ignore"):
         file_unit = raw * spec.scale + spec.offset
         values = _to_internal(file_unit, spec, name)
-    overflow = (reason == "") & ~np.all(np.isfinite(values), axis=1)
-    reason[overflow] = REASON_NON_FINITE
-    detail[overflow] = "value out of range after scale, offset and unit conversion"
+    for i in np.flatnonzero((code == 0) & ~np.all(np.isfinite(values), axis=1)):
+        code[i] = 3
+        detail[int(i)] = "value out of range after scale, offset and unit conversion"
 
     # time (a bad time outranks a bad value in the ledger)
-    t_col = cols[i_time]
-    t, wraps = _times(t_col, spec.time)
-    for i in np.flatnonzero(np.isnat(t)):
-        reason[i] = REASON_BAD_TIME
-        detail[i] = f"column {spec.time.column!r}: expected {_time_detail(spec.time)}, got {_shown(t_col[i])}"
+    if t_iso is not None:
+        t, wraps = t_iso, np.zeros(0, dtype=np.int64)
+    else:
+        t, wraps = _times(cols[i_time], spec.time)
+    bad_t = np.flatnonzero(np.isnat(t))
+    if bad_t.size:
+        if t_iso is not None:
+            a, b = scan.field_span(good_idx[bad_t], i_time)
+            shown = [data[x:y].decode("utf-8", "replace") for x, y in zip(a, b, strict=True)]
+        else:
+            shown = list(cols[i_time][bad_t])
+        for i, text in zip(bad_t, shown, strict=True):
+            code[i] = 4
+            detail[int(i)] = f"column {spec.time.column!r}: expected {_time_detail(spec.time)}, got {_shown(text)}"
 
-    keep = reason == ""
+    keep = code == 0
     rows = np.flatnonzero(keep)
     wrap_rows = np.searchsorted(rows, wraps[keep[wraps]])
     ledger_parts = []
@@ -327,9 +338,11 @@ def load_log(spec: SensorSpec | CoilSpec, name: str, label: str | None = None) -
         ledger_parts.append(ledger_frame(label, name, scan.bad + 2, np.datetime64("NaT", "ns"),
                                          np.asarray(scan.bad_reason, dtype=object), "dropped",
                                          np.asarray(scan.bad_detail, dtype=object)))
-    if (~keep).any():
-        ledger_parts.append(ledger_frame(label, name, line_good[~keep], t[~keep], reason[~keep], "dropped",
-                                         detail[~keep]))
+    gone = np.flatnonzero(~keep)
+    if gone.size:
+        ledger_parts.append(ledger_frame(
+            label, name, line_good[gone], t[gone], np.array([_CODE_REASON[int(c)] for c in code[gone]], dtype=object),
+            "dropped", np.array([detail[int(i)] for i in gone], dtype=object)))
     ledger = pd.concat(ledger_parts, ignore_index=True) if ledger_parts else empty_ledger()
     if rows.size == 0:
         counts = ledger["reason"].value_counts()

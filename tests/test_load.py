@@ -351,3 +351,31 @@ def test_ticks_log_through_load_with_rollover(tmp_path):
     np.testing.assert_array_equal(np.diff(log.time_utc).astype(np.int64), np.full(7, 500_000_000))
     np.testing.assert_array_equal(log.wrap_line, [6])
     assert sorted(p.ledger["line"]) == [10, 11] and set(p.ledger["reason"]) == {"bad_time"}
+
+
+def test_iso_fast_byte_path_agrees_with_pandas_path():
+    # the fixed-width numpy parse of the bytes and pandas' ISO 8601 parse of the text must agree,
+    # field by field, on valid and invalid times alike
+    from recon._timescales import iso_bytes_to_utc
+
+    rng = np.random.default_rng(5)
+    base = np.datetime64("2026-07-14T09:12:00", "ns")
+    texts = []
+    for k in range(3000):
+        t = base + np.timedelta64(int(rng.integers(0, 10**15)), "ns")
+        unit = ["s", "ms", "us", "ns"][k % 4]
+        s = np.datetime_as_string(t, unit=unit)
+        if k % 3 == 0:
+            s += "Z"
+        if k % 5 == 0:
+            s = s.replace("T", " ")
+        texts.append(s)
+    for k in rng.choice(3000, 40, replace=False):  # corrupt some: offsets, text, impossible dates
+        texts[k] = ["2026-07-14T09:12:00+02:00", "garbage", "2026-02-30T00:00:00", "", "2026-07-14T09:12:60Z",
+                    "9999999-01-01", "2026-07-14T09:12:00-05:30"][k % 7]
+    data = "\n".join(texts).encode()
+    start = np.cumsum([0] + [len(s) + 1 for s in texts[:-1]])
+    end = start + np.array([len(s) for s in texts])
+    fast = iso_bytes_to_utc(np.frombuffer(data, np.uint8), start, end)
+    np.testing.assert_array_equal(fast, iso_to_utc(texts))
+    assert np.isnat(fast).sum() >= 15
