@@ -195,8 +195,8 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     n_seg = int(seg[-1]) + 1
 
     cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
-    n_k, n_nuis = len(cols_k), 3 + 6 + 3
-    n_par = n_k + n_nuis + 3 * n_seg
+    n_k = len(cols_k)
+    n_par = n_k + 3 + 6 + 3  # K, bias, soft iron, gyro bias; the field rates are projected out
     n_p = len(k0)
     x = np.zeros((n_p, 3, n_par))
     eye = np.eye(3)
@@ -212,24 +212,23 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     # gyro bias: -R_k [m_k x] dt_k, column e of [m x] is m x e_e
     for e in range(3):
         x[:, :, n_k + 9 + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[k0][:, None]
-    for p in range(n_p):
-        base = n_k + n_nuis + 3 * seg[p]
-        x[p, :, base:base + 3] = a_next[p] * dt[k0[p]]
+    trend = a_next * dt[k0][:, None, None]  # (P, 3, 3): the field-rate columns of each pair's segment
     y = m[k0 + 1] - rm
 
     use = np.ones(n_p, bool)
     for _ in range(2):
-        theta, res = _ols(x[use], y[use])
-        r_norm = np.linalg.norm(y - x @ theta, axis=1)
+        theta, rss, xt, yt = _ols_segments(x, y, trend, seg, n_seg, use)
+        r_norm = np.linalg.norm(yt - xt @ theta, axis=1)
         scale = 1.4826 * np.median(np.abs(r_norm[use] - np.median(r_norm[use])))
         new_use = r_norm <= np.median(r_norm[use]) + OUTLIER_FENCE * max(scale, 1e-9)
         if np.array_equal(new_use, use):
             break
         use = new_use
-    theta, rss = _ols(x[use], y[use])
+    theta, rss, xt, _ = _ols_segments(x, y, trend, seg, n_seg, use)
 
-    # Sandwich covariance with the MA(1) noise of the differences: Z = D^T X.
-    xu, ru, ku = x[use], r_mat[use], k0[use]
+    # Sandwich covariance with the MA(1) noise of the differences: Z = D^T X (X with the field-rate
+    # columns projected out, which leaves the estimate and its covariance unchanged: Frisch-Waugh-Lovell).
+    xu, ru, ku = xt[use], r_mat[use], k0[use]
     n_samples = len(t)
     z = np.zeros((n_samples, 3, n_par))
     np.add.at(z, ku + 1, xu)
@@ -237,9 +236,11 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     xf, zf = xu.reshape(-1, n_par), z.reshape(-1, n_par)
     xx = xf.T @ xf
     zz = zf.T @ zf
-    xx_inv = np.linalg.pinv(xx)
-    trace_h = float(np.trace(xx_inv @ zz))
-    dof = 6.0 * len(ku) - trace_h
+    xx_inv = np.linalg.pinv(xx, hermitian=True)
+    # E[RSS] = sigma^2 (tr(D D^T) - tr(H D D^T)); the field-rate columns add between 0 and 6 per
+    # segment to tr(H D D^T) (3 is taken): an error below one part in the number of pairs
+    n_used_seg = len(np.unique(seg[use]))
+    dof = 6.0 * len(ku) - float(np.trace(xx_inv @ zz)) - 3.0 * n_used_seg
     sigma2 = rss / max(dof, 1.0)
     cov_all = sigma2 * xx_inv @ zz @ xx_inv
 
@@ -255,11 +256,36 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
                    int((~use).sum()))
 
 
+def _ols_segments(x, y, trend, seg, n_seg, use):
+    """Least squares of ``y`` on ``x`` plus one field-rate vector per segment (columns ``trend``).
+
+    The segment columns are projected out segment by segment (Frisch-Waugh-Lovell: the coefficients
+    of ``x`` from the residualised problem equal those of the full one), so the design never holds a
+    column per segment. Returns (theta, RSS, residualised x, residualised y), the latter for all
+    pairs, with the projections computed from the pairs in ``use``.
+    """
+    n_par = x.shape[2]
+    tu, xu, yu, su = trend[use], x[use], y[use], seg[use]
+    g = np.zeros((n_seg, 3, 3))
+    np.add.at(g, su, np.einsum("pai,paj->pij", tu, tu))
+    tx = np.zeros((n_seg, 3, n_par))
+    np.add.at(tx, su, np.einsum("pai,paj->pij", tu, xu))
+    ty = np.zeros((n_seg, 3))
+    np.add.at(ty, su, np.einsum("pai,pa->pi", tu, yu))
+    g_inv = np.linalg.pinv(g, hermitian=True)
+    cx = g_inv @ tx  # (S, 3, n_par)
+    cy = np.einsum("sij,sj->si", g_inv, ty)
+    xt = x - np.einsum("pab,pbi->pai", trend, cx[seg])
+    yt = y - np.einsum("pab,pb->pa", trend, cy[seg])
+    theta, rss = _ols(xt[use], yt[use])
+    return theta, rss, xt, yt
+
+
 def _ols(x3: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, float]:
     """Least squares over stacked (P, 3, p) design and (P, 3) data; returns (theta, RSS).
 
-    Solved through the normal equations of the column-normalised design (p is under a hundred and
-    the normalised design well conditioned, so squaring its condition number costs no accuracy that
+    Solved through the normal equations of the column-normalised design (p is under twenty and the
+    normalised design well conditioned, so squaring its condition number costs no accuracy that
     matters), with a pseudo-inverse for any column the data leave empty."""
     a = x3.reshape(-1, x3.shape[-1])
     b = y.reshape(-1)
