@@ -50,8 +50,11 @@ SIGNIFICANCE_SIGMA = 3.0
 CONTAMINATION_NOISE_FACTOR = 5.0
 # Bias above this fraction of the mean field magnitude: a magnetised part near the sensor or a wrong
 # offset in the mission file; a few per cent is usual for a calibrated sensor on a small satellite
-# (common practice, no source).
+# (common practice, no source). recon removes the bias from its calibrated field, but onboard software
+# that uses raw readings does not: info above the first level, warning above the second (where the
+# field direction an uncorrected onboard estimate sees is off by up to ~6 deg).
 BIAS_FRACTION_LARGE = 0.05
+BIAS_FRACTION_WARNING = 0.10
 # Fewer usable samples than this and no calibration is attempted (18 unknowns; common practice).
 MIN_SAMPLES = 100
 # Default magnetometer noise when the mission file gives none: the middle of 10-100 nT rms for COTS
@@ -387,15 +390,18 @@ def _bias_anomaly(bias, bias_s, h, span) -> list[Anomaly]:
         return []
     mag = float(np.linalg.norm(bias))
     mean_h = float(np.mean(h))
-    limit = BIAS_FRACTION_LARGE * mean_h
     sigma = float(np.sqrt(np.sum(bias_s**2)))
-    if mag - SIGNIFICANCE_SIGMA * sigma <= limit:
+    low = mag - SIGNIFICANCE_SIGMA * sigma  # the bias is at least this large (3 sigma)
+    if low <= BIAS_FRACTION_LARGE * mean_h:
         return []
-    return [Anomaly("mag_bias_large", "warning",
+    warn = low > BIAS_FRACTION_WARNING * mean_h
+    limit = BIAS_FRACTION_WARNING if warn else BIAS_FRACTION_LARGE
+    return [Anomaly("mag_bias_large", "warning" if warn else "info",
                     f"magnetometer bias |b| = {mag:.0f} +- {sigma:.0f} nT "
                     f"({np.round(bias).astype(int).tolist()} nT, sensor axes) is {100 * mag / mean_h:.1f} % of "
-                    f"the mean field {mean_h:.0f} nT, above {100 * BIAS_FRACTION_LARGE:g} %: a magnetised part "
-                    f"near the sensor or a wrong offset in the mission file", span[0], span[1], value=mag)]
+                    f"the mean field {mean_h:.0f} nT, above {100 * limit:g} %: a magnetised part near the "
+                    f"sensor or a wrong offset in the mission file; recon removes it from the calibrated "
+                    f"field, onboard software using raw readings does not", span[0], span[1], value=mag)]
 
 
 # ------------------------------------------------------------------------------------------ pass level

@@ -147,16 +147,21 @@ def test_coils_off_duty_cycle_checked():
 
 def test_large_bias_flagged_with_numbers():
     p, m, _, w_body = _rotate_synthetic(2)
-    offset = np.array([3000.0, -2500.0, 1000.0])  # |bias + offset| = 4,180 nT, 9.5 % of the field
-    cal = calibrate_arrays(_t(p["t_s"]), m + offset, p["h"], p["i"], sensor_to_body=M_SENSOR_TO_BODY,
-                           max_current_A=np.full(3, I_MAX_A), noise_nT=NOISE_nT, mag_sampling="coils_on")
-    big = [a for a in cal.anomalies if a.code == "mag_bias_large"]
-    assert len(big) == 1
+    kw = dict(sensor_to_body=M_SENSOR_TO_BODY, max_current_A=np.full(3, I_MAX_A), noise_nT=NOISE_nT,
+              mag_sampling="coils_on")
+
+    def flagged(offset):
+        cal = calibrate_arrays(_t(p["t_s"]), m + offset, p["h"], p["i"], **kw)
+        return [a for a in cal.anomalies if a.code == "mag_bias_large"]
+
+    offset = np.array([3000.0, -2500.0, 1000.0])  # |bias + offset| = 4,180 nT, 9.6 % of the field
+    big = flagged(offset)
+    assert len(big) == 1 and big[0].severity == "info"  # between 5 and 10 %
     assert big[0].value == pytest.approx(np.linalg.norm(p["bias"] + offset), abs=100.0)
-    assert "% of the mean field" in big[0].evidence
-    small = calibrate_arrays(_t(p["t_s"]), m, p["h"], p["i"], sensor_to_body=M_SENSOR_TO_BODY,
-                             max_current_A=np.full(3, I_MAX_A), noise_nT=NOISE_nT, mag_sampling="coils_on")
-    assert "mag_bias_large" not in {a.code for a in small.anomalies}  # |bias| = 770 nT, 1.8 %
+    assert "9.6 % of the mean field 43811 nT" in big[0].evidence
+    huge = flagged(2.0 * offset)  # 19 %
+    assert len(huge) == 1 and huge[0].severity == "warning"
+    assert flagged(np.zeros(3)) == []  # |bias| = 770 nT, 1.8 %
 
 
 def test_quiet_pass_summary_and_table_say_undetermined():
