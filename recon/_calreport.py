@@ -77,7 +77,8 @@ def _k_table(k, k_s, imax) -> list[str]:
 
 
 def format_crosstalk_table(cal, max_current_A=None) -> str:
-    """The ``recon crosstalk`` table: K with 1 sigma from both estimates and combined, the coil
+    """The ``recon crosstalk`` table (anomalies are listed by the caller): K with 1 sigma from both
+    estimates and combined, the coil
     field at full current per sensor axis (every coil at full current, signs adding), the |b| residual before and after,
     and whether the estimates agree.
 
@@ -127,6 +128,4 @@ def format_crosstalk_table(cal, max_current_A=None) -> str:
         reasons.setdefault(why, []).append(name)
     for why, names in reasons.items():
         out.append(f"undetermined {', '.join(names)}: {why}")
-    for a in cal.anomalies:
-        out.append(f"{a.severity.upper()} {a.code}: {a.evidence}")
     return "\n".join(out)
