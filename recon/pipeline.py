@@ -116,9 +116,35 @@ def inspect_pass(mission_path: Path | str, out_root: Path | str = "reports") -> 
     return InspectResult(mission, cleaned, table, ledger_path)
 
 
+def _reference(mission: Mission, cleaned, skipped: dict[str, str], progress) -> Any:
+    if mission.orbit is None:
+        skipped["orbit"] = ("the mission file has no [orbit] section: no reference field, so the "
+                            "magnetometer is calibrated from current steps only and no attitude is estimated")
+        return None
+    from .field import reference_field
+
+    _say(progress, "reference field (IGRF-14 along the orbit)", 0.0)
+    ref = reference_field(mission, cleaned.magnetometer.time_utc)
+    _say(progress, "reference field (IGRF-14 along the orbit)", 1.0)
+    return ref
+
+
 def crosstalk_pass(mission_path: Path | str, out_root: Path | str = "reports") -> str:
     """Calibrate the magnetometer of one pass and return the crosstalk table as text."""
-    raise InputError("the crosstalk stage is not available in this version of recon", mission_path)
+    from .calibrate import calibrate_pass, format_crosstalk_table
+
+    mission = load_mission(mission_path)
+    cleaned = _load_and_clean(mission)
+    _check_unit(cleaned)
+    skipped: dict[str, str] = {}
+    ref = _reference(mission, cleaned, skipped, None)
+    cal = calibrate_pass(mission, cleaned, ref)
+    out = _out_dir(mission, out_root)
+    write_json(out / "calibration.json", cal.to_summary())
+    text = format_crosstalk_table(cal, None if mission.coils is None else mission.coils.max_current_A)
+    notes = [f"{a.severity}: {a.code}: {a.evidence}" for a in cal.anomalies]
+    notes += [f"note: {why}" for why in skipped.values()]
+    return "\n".join([text, *notes])
 
 
 def _check_unit(cleaned) -> None:
@@ -127,44 +153,211 @@ def _check_unit(cleaned) -> None:
             raise InputError(a.evidence, key="magnetometer.unit")
 
 
-def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, progress: bool = False) -> PassResult:
+class _Progress:
+    """A one-line progress bar on stderr, for terminals only."""
+
+    def __init__(self, stream):
+        self.stream, self.last = stream, None
+
+    def __call__(self, stage: str, fraction: float) -> None:
+        pct = int(round(100 * min(max(fraction, 0.0), 1.0)))
+        if (stage, pct) == self.last:
+            return
+        self.last = (stage, pct)
+        bar = "#" * (pct // 4) + "." * (25 - pct // 4)
+        end = "\n" if pct >= 100 else ""
+        self.stream.write(f"\r{stage[:40]:<40} [{bar}] {pct:3d}%{end}")
+        self.stream.flush()
+
+
+def _say(progress, stage: str, fraction: float) -> None:
+    if progress is not None:
+        progress(stage, fraction)
+
+
+def _settings(mission: Mission) -> dict[str, Any]:
+    s: dict[str, Any] = {"magnetometer": f"{mission.magnetometer.file.name} ({mission.magnetometer.unit})"}
+    if mission.gyro is not None:
+        s["gyro"] = f"{mission.gyro.file.name} ({mission.gyro.unit})"
+    if mission.coils is not None:
+        s["coils"] = f"{mission.coils.file.name} ({mission.coils.unit}), sampling {mission.coils.mag_sampling}"
+    if mission.controller is not None:
+        s["control law"] = (f"{mission.controller.law}, gain {mission.controller.gain:g}, "
+                            f"period {mission.controller.period_s:g} s")
+    if mission.orbit is not None:
+        s["orbit"] = mission.orbit.kind
+    s["estimator mode"] = mission.estimator.mode
+    return s
+
+
+def _estimate(mission: Mission, cleaned, cal, ref, progress):
+    from .estimate import NoiseModel, estimate_attitude
+
+    gyro = cleaned.gyro
+    coils = cleaned.coils
+    return estimate_attitude(
+        cleaned.magnetometer.time_utc, cal.b_body_calibrated_nT, ref.b_gcrf_nT,
+        gyro_t_utc=None if gyro is None else gyro.time_utc,
+        w_gyro_body_rad_s=None if gyro is None else gyro.values,
+        noise=NoiseModel.from_mission(mission), mode=mission.estimator.mode,
+        inertia_kg_m2=mission.inertia_kg_m2,
+        coil_t_utc=None if coils is None else coils.time_utc,
+        i_coil_A=None if coils is None else coils.values,
+        dipole_per_amp=None if mission.coils is None else mission.coils.dipole_per_amp,
+        r_gcrf_km=ref.r_gcrf_km, progress=progress)
+
+
+def _judge(mission: Mission, cleaned, cal, ref, hist):
+    from .judge import judge_pass
+
+    mag = cleaned.magnetometer
+    m_stb = mission.magnetometer.sensor_to_body
+    b_sensor = mag.values @ m_stb  # (M^T b_body^T)^T: raw readings back in sensor axes, nT
+    gyro = cleaned.gyro
+    w_cov = hist.smoothed.covariance[:, 3:6, 3:6] if hist.mode == "dynamics" else None
+    return judge_pass(
+        controller=mission.controller, coils=mission.coils, inertia_kg_m2=mission.inertia_kg_m2,
+        mag_sensor_to_body=m_stb, time_mag_utc=mag.time_utc, b_mag_sensor_nT=b_sensor,
+        time_coil_utc=cleaned.coils.time_utc, i_coil_A=cleaned.coils.values,
+        time_utc=hist.time_utc, w_body_rad_s=hist.w_body_rad_s, q_body_from_gcrf=hist.q_body_from_gcrf,
+        b_gcrf_nT=ref.b_gcrf_nT, r_gcrf_km=ref.r_gcrf_km, w_cov_rad2_s2=w_cov,
+        time_gyro_utc=None if gyro is None else gyro.time_utc,
+        w_gyro_body_rad_s=None if gyro is None else gyro.values,
+        K_nT_per_A=cal.crosstalk_combined_nT_per_A)
+
+
+def _figures(mission: Mission, cleaned, cal, ref, hist, judgement, anomalies) -> list:
+    from . import figures as F
+
+    figs = []
+    logs = {g.name: g.time_utc for g in cleaned.logs()}
+    t0 = min(t[0] for t in logs.values() if len(t))
+    led = cleaned.ledger
+    dropped, saturated, gaps = {}, {}, {}
+    for g in cleaned.logs():
+        mine = led[(led["sensor"] == g.name) & (led["action"] == "dropped")]
+        tt = np.asarray(mine["time_utc"].dropna().to_numpy(), dtype="datetime64[ns]") if len(mine) else []
+        dropped[g.name] = tt
+        saturated[g.name] = g.time_utc[g.saturated.any(axis=1)]
+        gaps[g.name] = [(np.datetime64(a, "ns"), np.datetime64(b, "ns"))
+                        for a, b in zip(g.gaps["start_utc"], g.gaps["stop_utc"], strict=True)]
+    figs.append(F.quality_timeline(t0, logs, gaps, dropped, saturated))
+    if ref is not None and cal is not None:
+        mag = cleaned.magnetometer
+        b_raw = mag.values
+        figs.append(F.field_magnitude(mag.time_utc, ref.b_gcrf_nT, b_raw, cal.b_body_calibrated_nT))
+    if hist is not None:
+        figs.append(F.attitude_uncertainty(hist.time_utc, hist.sigma_att_rad))
+        figs.append(F.rates(hist.time_utc, hist.w_body_rad_s, hist.smoothed.sigma_rate_rad_s))
+        if hist.mode == "gyro":
+            sb = np.sqrt(np.maximum(np.diagonal(hist.covariance[:, 3:6, 3:6], axis1=1, axis2=2), 0.0))
+            figs.append(F.gyro_bias(hist.time_utc, hist.gyro_bias_rad_s, sb))
+        w = hist.w_body_rad_s
+        energy = 0.5 * np.einsum("ni,ij,nj->n", w, mission.inertia_kg_m2, w)
+        figs.append(F.kinetic_energy(hist.time_utc, energy))
+    if judgement is not None and getattr(judgement, "replay_time_utc", None) is not None:
+        figs.append(F.commands(cleaned.coils.time_utc, cleaned.coils.values, judgement.replay_time_utc,
+                               judgement.replay_i_A))
+    if ref is not None:
+        marks = []
+        for a in anomalies:
+            if a.start_utc is None or a.severity == "info":
+                continue
+            k = int(np.clip(np.searchsorted(ref.time_utc, np.datetime64(a.start_utc, "ns")), 0, len(ref.time_utc) - 1))
+            if np.isfinite(ref.lat_deg[k]):
+                marks.append((float(ref.lat_deg[k]), float(ref.lon_deg[k]), a.code))
+        figs.append(F.ground_track(ref.lat_deg, ref.lon_deg, marks[:12]))
+    return figs
+
+
+def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, progress: bool = False,
+             report: bool = True) -> PassResult:
     """Run every available stage on one pass and write ``<out_root>/<pass id>/``.
 
     Parameters
     ----------
     mission_path : path to the mission file (TOML)
     out_root : folder under which ``<pass id>/`` is written
-    progress : show progress bars on the terminal for long stages
+    progress : show progress bars on stderr for long stages (for terminals)
+    report : write report.html and figures (summary.json, ledger, attitude files are always written)
 
     Returns
     -------
     PassResult
     """
-    from . import __version__
+    import sys
 
+    from . import __version__
+    from .calibrate import calibrate_pass
+
+    bar = _Progress(sys.stderr) if progress else None
     mission = load_mission(mission_path)
+    out = _out_dir(mission, out_root)
+    _say(bar, "load and clean", 0.0)
+    cleaned = _load_and_clean(mission)
+    _say(bar, "load and clean", 1.0)
+    _check_unit(cleaned)
     from .clean import write_ledger
 
-    out = _out_dir(mission, out_root)
-    cleaned = _load_and_clean(mission)
-    _check_unit(cleaned)
     write_ledger(out / "ledger.csv", cleaned.ledger)
     anomalies: list[Anomaly] = list(cleaned.anomalies)
     skipped: dict[str, str] = {}
 
-    if mission.orbit is None:
-        skipped["orbit"] = "the mission file has no [orbit] section"
-    for stage in ("calibration", "estimate", "controller"):
-        skipped.setdefault(stage, "stage not available in this version of recon")
+    ref = _reference(mission, cleaned, skipped, bar)
+    _say(bar, "calibrate magnetometer", 0.0)
+    cal = calibrate_pass(mission, cleaned, ref)
+    _say(bar, "calibrate magnetometer", 1.0)
+    anomalies += list(cal.anomalies)
 
+    hist = None
+    if ref is None:
+        skipped["estimate"] = "no reference field (no orbit), so no attitude can be referred to GCRF"
+    elif not np.isfinite(cal.b_body_calibrated_nT).any():
+        skipped["estimate"] = "no calibrated magnetometer sample is usable"
+    else:
+        hist = _estimate(mission, cleaned, cal, ref, bar)
+        anomalies += list(hist.anomalies)
+        from .aem import write_aem
+        from .estimate import write_attitude_csv
+
+        write_attitude_csv(out / "attitude.csv", hist)
+        write_aem(out / "attitude.aem", hist.time_utc, hist.q_body_from_gcrf,
+                  creation_date=hist.time_utc[-1], originator="recon", object_name=mission.pass_id,
+                  object_id="UNKNOWN", w_body_rad_s=hist.w_body_rad_s)
+
+    judgement = None
+    if mission.controller is None or mission.coils is None:
+        skipped["controller"] = "the mission file has no [controller] and [coils] sections"
+    elif cleaned.coils is None or len(cleaned.coils.time_utc) == 0:
+        skipped["controller"] = "no coil current sample survived cleaning"
+    elif hist is None:
+        skipped["controller"] = "no rate history to judge the controller from (see estimate)"
+    else:
+        _say(bar, "judge the controller", 0.0)
+        judgement = _judge(mission, cleaned, cal, ref, hist)
+        _say(bar, "judge the controller", 1.0)
+        anomalies += list(judgement.anomalies)
+
+    controller = judgement.to_summary() if judgement is not None else {
+        "verdict": "undetermined", "reason": skipped.get("controller", "")}
     summary: dict[str, Any] = {
         "pass_id": mission.pass_id,
         "tool_version": __version__,
         "mission_file": mission.path.name,
         "inputs": cleaned.inputs_summary(),
+        "calibration": cal.to_summary(),
+        "estimate": hist.to_summary() if hist is not None else None,
+        "controller": controller,
         "skipped": skipped,
+        "settings": _settings(mission),
         "anomalies": [a.to_dict() for a in anomalies],
         "caution": CAUTION,
     }
     write_json(out / "summary.json", summary)
+    if report:
+        from .report import write_report
+
+        _say(bar, "report", 0.0)
+        write_report(out, summary, _figures(mission, cleaned, cal, ref, hist, judgement, anomalies))
+        _say(bar, "report", 1.0)
     return PassResult(mission.pass_id, out, summary, anomalies)
