@@ -157,12 +157,35 @@ def _section_magnetometer(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     return "".join(parts)
 
 
+def _flatten(d: Mapping[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
+    rows: list[tuple[str, Any]] = []
+    for k, v in d.items():
+        name = f"{prefix}{k}".replace("_", " ")
+        if isinstance(v, Mapping):
+            rows += _flatten(v, f"{prefix}{k} / ")
+        else:
+            rows.append((name, v))
+    return rows
+
+
+def _value(v: Any) -> str:
+    if isinstance(v, list | tuple):
+        return ", ".join(_num(x) for x in v)
+    return _num(v)
+
+
 def _section_attitude(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     est = s.get("estimate")
     if not est:
         return "<h2>Attitude and rate</h2>" + _skip_note(s, "estimate")
-    rows = [[_e(k), _num(v) if not isinstance(v, dict | list) else _e(v)] for k, v in est.items()]
-    return ("<h2>Attitude and rate</h2>" + _table(["figure", "value"], rows) + _figures(figs, "attitude"))
+    head = (f"<p>Mode: {_e(est.get('mode'))}. {_e(est.get('mode_reason', ''))}</p>")
+    main = {k: est[k] for k in ("accuracy", "consistency") if isinstance(est.get(k), Mapping)}
+    rows = [[_e(k), _value(v)] for k, v in _flatten(main)]
+    rest = {k: v for k, v in est.items() if k not in ("mode", "mode_reason", "accuracy", "consistency")}
+    detail = "".join(f"<tr><td>{_e(k)}</td><td>{_value(v)}</td></tr>" for k, v in _flatten(rest))
+    return ("<h2>Attitude and rate</h2>" + head + _table(["figure", "value"], rows)
+            + _figures(figs, "attitude")
+            + f"<details><summary>Filter settings and start-up</summary><table>{detail}</table></details>")
 
 
 def _section_controller(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
