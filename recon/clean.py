@@ -15,8 +15,12 @@ Steps, per log (each sees only the rows that survived the ones before):
    kept (the first in the file on a tie) and the others dropped.
 6. ``out_of_range``: a value no instrument of that configuration can report (beyond 1.5 x full
    scale; coil current beyond 1.5 x max_current_A) is a corrupt word and is dropped.
-7. ``spike`` (magnetometer and gyro): the Hampel identifier on each axis and on its rate of change
-   (see :mod:`recon._hampel`). Coil currents are left alone: they step at every control tick by
+7. ``spike`` (magnetometer and gyro): the Hampel identifier on each axis, on each axis's rate of
+   change and on the rate of change of the vector's magnitude (see :mod:`recon._hampel`), in
+   stretches between gaps. Rows with a saturated axis are not tested. Samples taken with the coils
+   switched off (``mag_sampling = "windowed"``) are tested apart from those taken with them on. A
+   log sampled so sparsely that a window spans more than ``SPIKE_WINDOW_MAX_S`` is not tested, and
+   an info anomaly says so. Coil currents are left alone: they step at every control tick by
    design, and a step is no spike; their only test is the physical bound of step 6.
 8. ``saturated``: a value at or beyond full scale on any axis is flagged (kept).
 

@@ -12,8 +12,11 @@ sensor axes (after ``raw * scale + offset``) are kept beside them for saturation
 calibration. Coil values are per-coil currents in A and are not rotated; a "duty" unit means
 ``current = duty * max_current_A`` for each coil.
 
-Speed: well-formed files go straight through the pandas C parser with float columns; only when it
-meets a field that is not a number are the columns read again as text to find which rows fail.
+Speed: the file is scanned once as bytes (line boundaries, field counts, bytes that are not text),
+and only well-formed lines reach the pandas C parser, with float columns; only when it meets a
+field that is not a number are the columns read again as text to find which rows fail. ISO times
+are read from the bytes directly (:func:`recon._timescales.iso_bytes_to_utc`), without a Python
+string per row.
 """
 
 from __future__ import annotations
@@ -46,9 +49,6 @@ REASON_BAD_TIME = "bad_time"
 REASON_MISSING = "missing_value"
 REASON_NON_NUMERIC = "non_numeric"
 REASON_NON_FINITE = "non_finite"
-
-_INTERNAL_UNIT = {"magnetometer": "nT", "gyro": "rad/s", "coils": "A"}
-
 
 @dataclass(frozen=True)
 class SensorLog:
@@ -152,8 +152,8 @@ def _column_index(header: list[str], name: str, path: Path, what: str) -> int:
 def _read_columns(body: bytes, usecols: list[int], float_cols: list[int], n_rows: int):
     """Read the chosen columns of well-formed lines; numbers as float64 when every field parses.
 
-    Returns a dict column index -> array (float64, or object strings when a field did not parse)
-    and a flag telling whether the text fallback was used.
+    Returns a dict column index -> array: float64, or object (text) for every column when some
+    field did not parse as a number (the caller then finds which rows fail).
     """
     common = dict(header=None, usecols=usecols, engine="c", quoting=csv.QUOTE_NONE, na_filter=False,
                   skip_blank_lines=False, encoding="utf-8", index_col=False)
@@ -238,7 +238,7 @@ def _content_ids(scan: Scan, rows_line_idx: np.ndarray, t_ns: np.ndarray) -> np.
     cand = np.unique(np.concatenate((order[1:][same], order[:-1][same])))
     first: dict[bytes, int] = {}
     for i in cand:  # ascending index = file order
-        key = scan.line_bytes(int(rows_line_idx[i])).rstrip(b" \t")
+        key = scan.line_bytes(int(rows_line_idx[i]))
         ids[i] = first.setdefault(key, int(i))
     return ids
 

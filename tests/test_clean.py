@@ -123,8 +123,8 @@ def test_threshold_is_a_bonferroni_bound_never_below_hampel_3():
     # two-sided Gaussian tail at t, times the number of tests, equals the false-alarm budget
     for n in (10, 1_000, 1_000_000):
         t = _hampel.hampel_threshold(n, 1e-3)
-        assert 2 * norm.sf(t) * n == pytest.approx(1e-3, rel=1e-9) or t == 3.0
-    assert _hampel.hampel_threshold(1, 0.5) == 3.0
+        assert t > 3.0 and 2 * norm.sf(t) * n == pytest.approx(1e-3, rel=1e-9)
+    assert _hampel.hampel_threshold(1, 0.5) == 3.0  # the Bonferroni bound would be 0.67
 
 
 def test_noise_sigma_from_second_differences_ignores_trend_and_spikes():
@@ -157,7 +157,7 @@ def test_spikes_on_a_field_tumbling_at_20_deg_s_are_found_at_10_hz():
 def test_spikes_at_1_hz_and_20_deg_s_mostly_found_and_no_good_sample_dropped():
     # 20 deg per sample: each axis moves by up to 14,000 nT between samples, as much as the spike; the
     # spike then shows only in the field magnitude, and hides there when it is nearly perpendicular
-    # to the field. Detection limit measured: 54-59 of 60 found over these seeds.
+    # to the field. Measured here: 56 of 60 found (20, 19, 17 for seeds 0, 1, 2).
     found = 0
     for seed in range(3):
         t, b = tumbling_field(6000, 1.0, 20.0, 100.0, seed)

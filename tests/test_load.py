@@ -279,8 +279,8 @@ def _gps_seconds(utc: str, gps_minus_utc_s: int) -> float:
 
 
 def test_gps_minus_utc_is_18_s_since_2017():
-    # IERS Bulletin C 52 (July 2016): leap second at the end of 2016-12-31, TAI - UTC = 37 s from
-    # 2017-01-01, so GPS - UTC = 37 - 19 = 18 s.
+    # IERS Bulletin C 52 (July 2016; bulletin number from memory): leap second at the end of
+    # 2016-12-31, TAI - UTC = 37 s from 2017-01-01, so GPS - UTC = 37 - 19 = 18 s.
     for utc in ("2017-01-01T00:00:00", "2020-02-29T12:00:00.5", "2026-07-14T09:12:00"):
         got = gps_seconds_to_utc(np.array([_gps_seconds(utc, 18)]))[0]
         assert got == np.datetime64(utc, "ns"), utc
