@@ -107,7 +107,22 @@ THRESHOLDS: dict[str, float] = {
 # ----------------------------------------------------------------------------------- result types
 @dataclass(frozen=True)
 class AxisJudgement:
-    """What recon concludes about one coil (body axis)."""
+    """What recon concludes about one coil (body axis).
+
+    Attributes
+    ----------
+    axis : "x" | "y" | "z"
+    polarity : "nominal" | "inverted" | "no_response" | "undetermined" (see ``classify_coil``)
+    polarity_confidence : sigmas from zero (nominal, inverted), from nominal (no_response)
+    dipole_per_amp_estimated, dipole_per_amp_sigma : C_jj identified from the motion and its total
+        1-sigma (statistical with the model floor), A m^2 per A
+    dipole_per_amp_nominal : C_jj of the mission file, A m^2 per A
+    gain_ratio, gain_ratio_sigma : C_jj / nominal and its 1-sigma
+    command_gain_ratio, correlation : logged against replayed commands (unsaturated ticks / all)
+    saturation_fraction : fraction of control ticks at the current limit
+    chatter_fraction : fraction of tick pairs flipping from one current limit to the other
+    rms_current_A : rms current flowing during the pass, A
+    """
 
     axis: str
     polarity: str
@@ -136,7 +151,33 @@ class AxisJudgement:
 @dataclass(frozen=True)
 class ControllerJudgement:
     """The controller judgement of one pass (see :func:`judge_pass`); ``to_summary()`` gives the
-    summary.json "controller" block."""
+    summary.json "controller" block.
+
+    Attributes
+    ----------
+    law : the configured law; axes : three AxisJudgement (x, y, z)
+    verdict : "as_intended" | "not_as_intended" | "undetermined"
+    reasons : why parts could not be judged (non-empty whenever the verdict is "undetermined")
+    anomalies : Anomaly records, each with an evidence sentence carrying its numbers
+    latency_s : tick to torque, s: command_lag_s (tick to logged command, from the replay) plus
+        actuation_latency_s (logged command to torque, from the motion); None where undetermined
+    actuation_latency_interval_s : 3-sigma range of the actuation latency, s
+    rate_trend : "decreasing" | "steady" | "increasing" (kinetic energy)
+    energy_time_constant_s : e-folding time of the kinetic energy (the rate's is twice it), s;
+        negative for a rise. energy_time_constant_expected_s: what the replayed law should have
+        given along the observed trajectory, s
+    momentum_error_trend, momentum_error_time_constant_s(_expected_s) : cross-product law only
+    magnetic_power_mean_W : mean of w . (m x B) with the identified dipoles, W (negative damps)
+    damping_fraction : fraction of the time that power is negative
+    loop_gain : coil-field feedback loop gain (>= 1 oscillates), crosstalk_coupling : spectral
+        radius of (k/T) 1e-9 C^-1 K_body; chatter_fraction_without_coil_field : chatter of the law
+        replayed with the coils' field taken out of its samples
+    bdot_equivalent_gain_Nms : k <|B|^2>, near_optimal_gain_Nms : 2 n (1 + sin xi_m) J_min
+        (Avanzini and Giulietti 2012), rate_floor_rad_s : 2 n
+    dipole_per_amp_matrix, dipole_per_amp_matrix_sigma : identified C (3, 3) and its 1-sigma
+    residual_dipole_Am2 : (3,) constant dipole identified alongside C
+    extras : diagnostics (latency profile, effect figures), not part of the summary
+    """
 
     law: str
     axes: tuple[AxisJudgement, ...]
@@ -162,13 +203,14 @@ class ControllerJudgement:
     near_optimal_gain_Nms: float | None = None
     rate_floor_rad_s: float | None = None
     dipole_per_amp_matrix: np.ndarray | None = None
+    dipole_per_amp_matrix_sigma: np.ndarray | None = None
     residual_dipole_Am2: np.ndarray | None = None
     extras: dict[str, Any] = field(default_factory=dict)
 
     def to_summary(self) -> dict[str, Any]:
         """The "controller" block of summary.json (floats, lists, strings, None)."""
         def f(x):
-            return None if x is None or not np.isfinite(x) else float(x)
+            return None if x is None or not np.isfinite(x) else float(x) + 0.0  # + 0.0: no "-0.0"
         out: dict[str, Any] = {"law": self.law}
         for a in self.axes:
             out[a.axis] = {k: (f(v) if isinstance(v, float | np.floating) else v) for k, v in a.to_dict().items()}
@@ -189,6 +231,8 @@ class ControllerJudgement:
             "rate_floor_rad_s": f(self.rate_floor_rad_s),
             "dipole_per_amp_matrix": None if self.dipole_per_amp_matrix is None
             else np.asarray(self.dipole_per_amp_matrix).tolist(),
+            "dipole_per_amp_matrix_sigma": None if self.dipole_per_amp_matrix_sigma is None
+            else [[f(v) for v in row] for row in np.asarray(self.dipole_per_amp_matrix_sigma)],
             "verdict": self.verdict, "reasons": list(self.reasons),
             "anomalies": [a.to_dict() for a in self.anomalies],
         })
@@ -223,7 +267,7 @@ def _seconds(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
 
 
 def _f(x) -> float | None:
-    return None if x is None or not np.isfinite(x) else float(x)
+    return None if x is None or not np.isfinite(x) else float(x) + 0.0
 
 
 # --------------------------------------------------------------------------------------- the judge
@@ -395,6 +439,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                                              if "chatter_without" in loop else None),
         bdot_equivalent_gain_Nms=effect.get("k_eq"), near_optimal_gain_Nms=effect.get("k_ag"),
         rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
+        dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
         extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
                 "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
