@@ -17,6 +17,7 @@ The fast suite runs 600 s passes on two seeds; the slow one the scenarios' own d
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 from pathlib import Path
 
@@ -63,10 +64,17 @@ def _estimate_like(sim, seed: int):
 
 
 @functools.cache
-def judged(scenario: str, seed: int, duration_s: float | None):
-    """(judgement, truth) for one simulated pass; the bulky simulation is not kept."""
-    sim = simulate_pass(scenario, seed=seed, duration_s=duration_s)
+def judged(scenario: str, seed: int, duration_s: float | None, configured_gain_factor: float = 1.0,
+           faults: tuple = ()):
+    """(judgement, truth) for one simulated pass; the bulky simulation is not kept.
+
+    ``configured_gain_factor`` scales the gain the judge is told (a mission file or flight software
+    out of step); ``faults`` are (kind, axis, value) triples replacing the scenario's faults."""
+    extra = {"faults": [{"kind": k, "axis": a, "value": v} for k, a, v in faults]} if faults else {}
+    sim = simulate_pass(scenario, seed=seed, duration_s=duration_s, **extra)
     ctrl, coils = _specs(sim)
+    if configured_gain_factor != 1.0:
+        ctrl = dataclasses.replace(ctrl, gain=ctrl.gain * configured_gain_factor)
     w, q, K = _estimate_like(sim, seed)
     j = judge_pass(controller=ctrl, coils=coils, inertia_kg_m2=sim.inertia_kg_m2,
                    mag_sensor_to_body=sim.magnetometer.sensor_to_body, time_mag_utc=sim.time_utc,
@@ -139,6 +147,7 @@ def check_chatter(j, truth):
     assert j.chatter_fraction_without_coil_field < 0.05
     assert "coils' own field" in crit[0].evidence
     assert j.verdict == "not_as_intended"
+    assert {a.axis for a in j.anomalies if a.code == "controller_saturated"} == {"x", "y", "z"}
     # the coils switched in lock-step: their dipoles cannot be told apart, and the judge says so
     # rather than guessing a polarity
     assert not {"coil_polarity_inverted", "coil_no_response"} & {c for c, _ in _codes(j)}
@@ -174,6 +183,35 @@ def test_too_short_pass_is_undetermined():
     check_undetermined(j, truth)
     assert any("too short" in r for r in j.reasons)
     assert all(ax.dipole_per_amp_estimated is None for ax in j.axes)
+
+
+def test_wrong_configured_gain_is_a_command_mismatch():
+    # the flight software runs half the gain the mission file states: the log is 0.5 x the replay
+    j, _ = judged("nominal", 0, FAST_DURATION_S, configured_gain_factor=2.0)
+    mism = [a for a in j.anomalies if a.code == "command_mismatch"]
+    assert {a.axis for a in mism} == {"x", "y", "z"}
+    for ax in j.axes:
+        assert ax.command_gain_ratio == pytest.approx(0.5, abs=0.01)
+        assert ax.polarity == "nominal"            # the coils themselves are fine
+    assert j.verdict == "not_as_intended"
+
+
+def test_all_coils_reversed_pumps_energy_in():
+    # every coil wired backwards turns B-dot into an anti-damping law: the energy must rise
+    j, _ = judged("nominal", 0, FAST_DURATION_S, faults=(("coil_polarity_inverted", None, None),))
+    assert j.rate_trend == "increasing"
+    assert ("rate_increasing", None) in _codes(j, "critical")
+    assert [ax.polarity for ax in j.axes] == ["inverted"] * 3
+    assert j.magnetic_power_mean_W > 0
+
+
+def test_weak_coils_make_a_slow_detumble():
+    # all three drives deliver a fifth of the command: about a fifth of the designed damping
+    j, _ = judged("nominal", 0, FAST_DURATION_S, faults=(("coil_gain_off", None, 0.2),))
+    assert ("detumble_slow", None) in _codes(j, "warning")
+    assert {a for c, a in _codes(j, "warning") if c == "coil_gain_off"} == {"x", "y", "z"}
+    assert j.energy_time_constant_s > THRESHOLDS["DETUMBLE_SLOW_FACTOR"] * j.energy_time_constant_expected_s
+    assert _codes(j, "critical") == []
 
 
 def test_summary_block_shape():
