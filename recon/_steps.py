@@ -160,6 +160,10 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     if len(tg) >= 2:
         tm = 0.5 * (t[1:] + t[:-1])
         pair &= (tm >= tg[0]) & (tm <= tg[-1])
+        # no rate across a gyro gap: the pair's middle must lie between gyro samples that are close
+        j = np.clip(np.searchsorted(tg, tm), 1, len(tg) - 1)
+        gyro_dt = np.median(np.diff(tg))
+        pair &= (tg[j] - tg[j - 1]) <= GAP_FACTOR * max(gyro_dt, float(np.median(dt)) if len(dt) else 0.0)
     else:
         pair[:] = False
     undetermined: dict[str, str] = {}

@@ -449,11 +449,16 @@ def calibrate_pass(mission, cleaned, reference) -> Calibration:
         read = controller_samples(t, tc, ic, sampling, **timing)
     h = _reference_magnitude(reference, t)
     gyro = getattr(cleaned, "gyro", None)
+    w_body = None
+    if gyro is not None:
+        w_body = np.array(gyro.values, dtype=float)
+        g_sat = getattr(gyro, "saturated", None)
+        if g_sat is not None:  # a clipped rate would turn the field by the wrong angle
+            w_body[np.asarray(g_sat, bool).reshape(len(w_body), -1).any(axis=1)] = np.nan
     cal = calibrate_arrays(
         t, m_sensor, h, i_fit, sensor_to_body=mm, max_current_A=imax, noise_nT=noise_nT,
-        mag_sampling=sampling, i_apply_A=i_apply,
-        gyro_time_utc=None if gyro is None else gyro.time_utc,
-        w_gyro_body_rad_s=None if gyro is None else gyro.values, exclude=exclude, controller_read=read)
+        mag_sampling=sampling, i_apply_A=i_apply, gyro_time_utc=None if gyro is None else gyro.time_utc,
+        w_gyro_body_rad_s=w_body, exclude=exclude, controller_read=read)
     extra = []
     if mission.coils is None or coils_log is None:
         extra.append("no coil log: crosstalk not estimated")

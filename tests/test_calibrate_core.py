@@ -310,3 +310,15 @@ def test_linear_step_round_trip_any_parameters(seed):
     back = np.linalg.solve(lin.soft_iron, (m - lin.bias_nT - i @ lin.crosstalk_nT_per_A.T).T).T
     np.testing.assert_allclose(back, b, atol=1e-6 * 50000)  # the true field, to 1e-6 of full scale
     np.testing.assert_allclose(lin.soft_iron, s, atol=1e-8)
+
+
+def test_step_response_skips_pairs_across_a_gyro_gap():
+    p = synthetic_pass(0)
+    imax = np.full(3, I_MAX_A)
+    full = fit_crosstalk_steps(p["t_s"], p["m"], p["i"], p["gyro_t_s"], p["w"], imax)
+    keep = np.ones(len(p["gyro_t_s"]), bool)
+    keep[1000:1500] = False  # 100 s without gyro
+    gap = fit_crosstalk_steps(p["t_s"], p["m"], p["i"], p["gyro_t_s"][keep], p["w"][keep], imax)
+    assert full.n_pairs - gap.n_pairs == pytest.approx(500, abs=2)
+    assert abs(gap.noise_nT - NOISE_nT) < 0.05 * NOISE_nT  # no interpolated rate over the gap
+    assert _k_error(gap.crosstalk_nT_per_A, p["K"]) < 0.05
