@@ -151,11 +151,12 @@ def test_fit_recovers_parameters_on_synthetic_pass(seed):
     bias, s, k = matrices_from_params(fit.params)
     assert fit.undetermined == {}
     assert fit.converged
-    # currents span their whole range: K within 5 % (Frobenius); measured 0.3-0.9 %
+    # currents span their whole range: K within 5 % (Frobenius); measured 0.75-1.4 %
     assert _k_error(k, p["K"]) < 0.05
-    assert np.abs(bias - p["bias"]).max() < 50.0  # nT; measured 9-47 nT
-    assert np.abs(s - p["S"]).max() < 0.005  # measured 0.0013-0.0019
-    # residual floor: the true parameters leave noise + unmodelled field (about 50-70 nT here)
+    assert np.abs(bias - p["bias"]).max() < 50.0  # nT; measured 7-28 nT
+    assert np.abs(s - p["S"]).max() < 0.005  # measured 0.0007-0.0013
+    # residual floor: the true parameters leave noise + unmodelled field (55-72 nT here; the fit
+    # reaches 51-61 nT, absorbing part of the unmodelled field)
     floor = np.sqrt(np.mean(residual_nT(params_from_matrices(p["bias"], p["S"], p["K"]), p["m"], p["h"],
                                         p["i"]) ** 2))
     assert fit.residual_rms_after_nT <= 1.2 * floor
@@ -167,7 +168,8 @@ def test_fit_recovers_parameters_on_synthetic_pass(seed):
 
 def test_fit_sigma_calibrated_over_seeds():
     # RMS of (error / sigma) over 6 seeds x 18 parameters: near 1 for an honest covariance. Without the
-    # unmodelled-field term it is ~10 for bias and soft iron (measured); with it, 0.9-1.3.
+    # unmodelled-field term it is ~10 for bias and soft iron (measured); with it, 1.4 here (the
+    # synthetic unmodelled field varies more slowly than the 200 s the error model assumes).
     zs = []
     for seed in range(10, 16):
         p = synthetic_pass(seed, n=2000)
@@ -221,7 +223,7 @@ def test_step_response_recovers_crosstalk(seed):
     p = synthetic_pass(seed)
     step = fit_crosstalk_steps(p["t_s"], p["m"], p["i"], p["gyro_t_s"], p["w"], np.full(3, I_MAX_A))
     assert step.undetermined == {}
-    assert _k_error(step.crosstalk_nT_per_A, p["K"]) < 0.10  # measured 0.4-0.6 %
+    assert _k_error(step.crosstalk_nT_per_A, p["K"]) < 0.10  # measured 0.25-0.5 %
     assert abs(step.noise_nT - NOISE_nT) < 0.1 * NOISE_nT  # the noise is recovered from the differences
     z = (step.crosstalk_nT_per_A - p["K"]) / step.sigma_nT_per_A
     assert np.abs(z).max() < 4.0
