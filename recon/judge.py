@@ -176,6 +176,8 @@ class ControllerJudgement:
         (Avanzini and Giulietti 2012), rate_floor_rad_s : 2 n
     dipole_per_amp_matrix, dipole_per_amp_matrix_sigma : identified C (3, 3) and its 1-sigma
     residual_dipole_Am2 : (3,) constant dipole identified alongside C
+    replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
+        (NaN where the law could not be replayed)
     extras : diagnostics (latency profile, effect figures), not part of the summary
     """
 
@@ -205,6 +207,8 @@ class ControllerJudgement:
     dipole_per_amp_matrix: np.ndarray | None = None
     dipole_per_amp_matrix_sigma: np.ndarray | None = None
     residual_dipole_Am2: np.ndarray | None = None
+    replay_time_utc: np.ndarray | None = None
+    replay_i_A: np.ndarray | None = None
     extras: dict[str, Any] = field(default_factory=dict)
 
     def to_summary(self) -> dict[str, Any]:
@@ -308,8 +312,9 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     time_gyro_utc : (Ng,), w_gyro_body_rad_s : (Ng, 3) rad/s body axes, optional
         The raw gyro as the onboard computer used it (cross-product replay); the reconstructed rate
         is used without it.
-    K_nT_per_A : (3, 3) nT per A, sensor axes, optional
-        Estimated coil crosstalk, for the coil-field loop gain.
+    K_nT_per_A : (3, 3) nT per A, sensor axes (row: sensor axis, column: coil), optional
+        Estimated coil crosstalk, for the coil-field loop gain; NaN entries (undetermined) count as
+        zero.
 
     Returns
     -------
@@ -342,6 +347,8 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     r_body = body_from_gcrf(q, r_gcrf) if (r_gcrf is not None and q is not None) else None
     P = _arr("w_cov_rad2_s2", w_cov_rad2_s2, (3, 3), len(t), allow_none=True)
     K = _arr("K_nT_per_A", K_nT_per_A, (3,), 3, allow_none=True)
+    if K is not None and not np.all(np.isfinite(K)):
+        K = np.nan_to_num(K, nan=0.0)  # undetermined entries (a coil that never switched) count as none
     if len(t) < 3 or len(t_coil) < 2:
         raise InputError(f"expected at least 3 rate samples and 2 coil-log rows, got {len(t)} and {len(t_coil)}",
                          key="time_utc")
@@ -441,6 +448,8 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
         dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
+        replay_time_utc=epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
+        replay_i_A=i_rep,
         extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
                 "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
                 "n_ticks": int(len(ticks)), "n_segments": n_seg},
