@@ -23,6 +23,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
@@ -32,7 +33,7 @@ from .allan import white_noise_from_differences
 from .anomaly import Anomaly
 
 __all__ = ["GyroCheck", "check_gyro", "BiasStep", "find_bias_step", "step_mean_dipole", "coil_log_with_off_windows",
-           "local_slope", "estimate_dynamics", "initial_state_dynamics"]
+           "local_slope", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
 
 _NS = 1_000_000_000
 _DEG = np.pi / 180.0
@@ -370,6 +371,35 @@ def _dyn_inputs(t: np.ndarray, m_steps: np.ndarray, r_km: np.ndarray) -> np.ndar
     return u
 
 
+@njit(cache=True)
+def propagate_rigid_body(q0, w0, t, m_body, b_ref, r_km, prm, nsub):
+    """Attitude and rate along t (K,) from (q0, w0) at t[0] with Euler's equations and RK4.
+
+    m_body (K, 3): dipole held over [t_k, t_k+1]; b_ref (K, 3) nT and r_km (K, 3): GCRF field and
+    position at t_k. ``nsub`` RK4 sub-steps per interval. Returns q (K, 4), w (K, 3).
+    """
+    kk = t.shape[0]
+    qo = np.empty((kk, 4))
+    wo = np.empty((kk, 3))
+    q = q0.copy()
+    w = w0.copy()
+    qo[0, :] = q
+    wo[0, :] = w
+    for k in range(kk - 1):
+        dt = (t[k + 1] - t[k]) / nsub
+        for s in range(nsub):
+            f0 = s / nsub
+            f1 = (s + 1.0) / nsub
+            b0 = b_ref[k] + f0 * (b_ref[k + 1] - b_ref[k])
+            b1 = b_ref[k] + f1 * (b_ref[k + 1] - b_ref[k])
+            r0 = r_km[k] + f0 * (r_km[k + 1] - r_km[k])
+            r1 = r_km[k] + f1 * (r_km[k + 1] - r_km[k])
+            q, w = core.rk4_rigid_body(q, w, dt, m_body[k], b0, b1, r0, r1, prm)
+        qo[k + 1, :] = q
+        wo[k + 1, :] = w
+    return qo, wo
+
+
 def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, m_steps: np.ndarray,
                            r_km: np.ndarray, prm: np.ndarray, sigma_vec_nT: float, *,
                            window_s: float = 120.0, n_starts: int = 12,
@@ -416,7 +446,7 @@ def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
         # attitude as a small body-axis error about a_start: A = (I - [p x]) A_start, the filter's convention
         n = len(grid) if n is None else n
         q0 = (Rotation.from_rotvec(-p[:3]) * a_start).as_quat()
-        qs, _ = core.propagate_rigid_body(q0, p[3:].copy(), tw[:n], mw[:n], rw_[:n], rkm[:n], prm, 1)
+        qs, _ = propagate_rigid_body(q0, p[3:].copy(), tw[:n], mw[:n], rw_[:n], rkm[:n], prm, 1)
         pred = Rotation.from_quat(qs).apply(rw_[:n])
         return ((pred - bw[:n]) / sigma_vec_nT).ravel()
 

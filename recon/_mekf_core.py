@@ -11,7 +11,10 @@ v_body``); the kinematics is ``dA/dt = -[w x] A``, so one step with a constant b
 Error state (the multiplicative EKF of Lefferts, Markley & Shuster 1982): ``dx = [dtheta, dv, db]``
 with ``A_true = (I - [dtheta x]) A_est`` (the attitude error in body axes, as in Markley & Crassidis
 2014 sec. 6.2), ``dv`` the error of the gyro bias (gyro mode) or of the body rate (dynamics mode),
-and ``db`` the error of the estimated field-model error (GCRF, nT; present when n = 9).
+and ``db`` the error of the estimated field-model error (GCRF, nT). The error state always has N = 9
+components (constant loop bounds let the compiler unroll the small matrix products); a white
+field-model error (``tau_f = 0``) is the same filter with ``exp(-dt/tau_f) = 0``, which is exactly the
+six-state filter with ``sig_f^2`` added to the measurement noise.
 
 - Gyro mode (Markley & Crassidis 2014 sec. 6.2.3): ``F = [[-[w x], -I], [0, 0]]``; the discrete
   Phi is the exact transition for a rate held over the step; the discrete Q is the one of Crassidis &
@@ -22,8 +25,7 @@ and ``db`` the error of the estimated field-model error (GCRF, nT; present when 
 - Dynamics mode (rate from Euler's equations, as in Psiaki, Martel & Pal 1990): attitude and body
   rate integrated with RK4 under magnetic torque ``m x B`` and gravity gradient ``3 mu/|r|^3 (n x J n)``;
   ``F = [[-[w x], I], [J^-1 (T_theta), J^-1 ([Jw x] - [w x] J)]]``; Phi to second order in dt with
-  F averaged over the step's ends;
-  Q from a white unmodelled torque.
+  F averaged over the step's ends; Q from a white unmodelled torque.
 - Field-model error: a first-order Gauss-Markov process per GCRF axis with time constant ``tau_f``
   and steady sigma ``sig_f`` (state augmentation for coloured measurement noise, Bryson & Henrikson
   1968); the measurement is ``z = A(q) (b_ref + db) + v``.
@@ -56,6 +58,8 @@ P_TAUREL = 27
 N_PRM = 28
 
 MODE_GYRO, MODE_DYNAMICS = 0, 1
+N = 9  # error-state size: attitude (3), gyro bias or body rate (3), field-model error (3)
+NP = N * (N + 1) // 2  # stored covariances keep the upper triangle only, row by row (45 numbers)
 
 
 # --------------------------------------------------------------------------------- small algebra
@@ -111,6 +115,26 @@ def qnormalize(q):
 
 
 @njit(cache=True)
+def _rot_step_into(v0, v1, v2, q, out):
+    """out = normalised q(v) (x) q for the rotation vector v: one step of the kinematics, no allocation."""
+    th = np.sqrt(v0 * v0 + v1 * v1 + v2 * v2)
+    if th < 1e-8:
+        sc = 0.5 - th * th / 48.0
+    else:
+        sc = np.sin(0.5 * th) / th
+    px, py, pz, pw = sc * v0, sc * v1, sc * v2, np.cos(0.5 * th)
+    x = pw * q[0] + q[3] * px + py * q[2] - pz * q[1]
+    y = pw * q[1] + q[3] * py + pz * q[0] - px * q[2]
+    z = pw * q[2] + q[3] * pz + px * q[1] - py * q[0]
+    w = pw * q[3] - px * q[0] - py * q[1] - pz * q[2]
+    nn = np.sqrt(x * x + y * y + z * z + w * w)
+    out[0] = x / nn
+    out[1] = y / nn
+    out[2] = z / nn
+    out[3] = w / nn
+
+
+@njit(cache=True)
 def attitude_matrix(q):
     """A(q) with ``A @ v_gcrf = v_body`` (scipy ``as_matrix``)."""
     x, y, z, w = q[0], q[1], q[2], q[3]
@@ -158,31 +182,13 @@ def _cross(a, b):
 
 
 @njit(cache=True)
-def _sym_prop(phi, p, q, n, tmp, out):
-    """out = phi p phi^T + q for n x n blocks (phi dense but mostly zero: zeros skipped)."""
-    for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for k in range(n):
-                f = phi[i, k]
-                if f != 0.0:
-                    s += f * p[k, j]
-            tmp[i, j] = s
-    for i in range(n):
-        for j in range(i, n):
-            s = q[i, j]
-            for k in range(n):
-                f = phi[j, k]
-                if f != 0.0:
-                    s += tmp[i, k] * f
-            out[i, j] = s
-            out[j, i] = s
+def _cholesky_solve(a, b, lwork, out):
+    """Solve a x = b for symmetric positive-definite a (N x N), b (N x N). Returns False if not SPD.
 
-
-@njit(cache=True)
-def _cholesky_solve(a, b, n, m, lwork, out):
-    """Solve a x = b for symmetric positive-definite a (n x n), b (n x m). Returns False if not SPD."""
-    for i in range(n):
+    ``lwork`` receives the Cholesky factor L (row i, column j <= i); its diagonal holds 1 / L_ii.
+    Rows of all right-hand sides are processed together so the inner loops run over contiguous memory.
+    """
+    for i in range(N):
         for j in range(i + 1):
             s = a[i, j]
             for k in range(j):
@@ -190,20 +196,27 @@ def _cholesky_solve(a, b, n, m, lwork, out):
             if i == j:
                 if s <= 0.0:
                     return False
-                lwork[i, i] = np.sqrt(s)
+                lwork[i, i] = 1.0 / np.sqrt(s)
             else:
-                lwork[i, j] = s / lwork[j, j]
-    for c in range(m):
-        for i in range(n):
-            s = b[i, c]
-            for k in range(i):
-                s -= lwork[i, k] * out[k, c]
-            out[i, c] = s / lwork[i, i]
-        for i in range(n - 1, -1, -1):
-            s = out[i, c]
-            for k in range(i + 1, n):
-                s -= lwork[k, i] * out[k, c]
-            out[i, c] = s / lwork[i, i]
+                lwork[i, j] = s * lwork[j, j]
+    for i in range(N):
+        for c in range(N):
+            out[i, c] = b[i, c]
+        for k in range(i):
+            lik = lwork[i, k]
+            for c in range(N):
+                out[i, c] -= lik * out[k, c]
+        d = lwork[i, i]
+        for c in range(N):
+            out[i, c] *= d
+    for i in range(N - 1, -1, -1):
+        for k in range(i + 1, N):
+            lki = lwork[k, i]
+            for c in range(N):
+                out[i, c] -= lki * out[k, c]
+        d = lwork[i, i]
+        for c in range(N):
+            out[i, c] *= d
     return True
 
 
@@ -243,55 +256,63 @@ def gyro_transition(w, dt, phi):
 
 
 @njit(cache=True)
-def propagate_gyro(q, beta, db, u, dt, prm, n, phi, qd):
-    """One gyro-mode step: returns (q_next, beta_next, db_next); fills phi and qd (n x n).
+def _field_decay(dt, prm):
+    """Gauss-Markov factor e = exp(-dt/tau_f) and its process noise sig_f^2 (1 - e^2); e = 0 if tau_f <= 0."""
+    tau = prm[P_TAUF]
+    e = np.exp(-dt / tau) if tau > 0.0 else 0.0
+    return e, prm[P_SIGF] * prm[P_SIGF] * (1.0 - e * e)
 
-    ``u = [w_meas (3), s0, q_step]``: the held gyro sample (rad/s, body), the time since it was taken
-    at the start of the step (s) and an extra bias variance for this step (rad^2/s^2; zero except
-    where a bias jump was found).
+
+@njit(cache=True)
+def _gyro_noise(dt, s0, extra, prm):
+    """Discrete Q coefficients (a11, a12, a22) of one gyro step (see the module docstring).
+
+    s0: time since the held gyro sample was taken, at the start of the step; extra: added bias
+    variance (a bias step allowed at this step, rad^2/s^2).
     """
-    w = np.empty(3)
-    for i in range(3):
-        w[i] = u[i] - beta[i]
-    qn = qnormalize(qmul(quat_from_rotvec(-w[0] * dt, -w[1] * dt, -w[2] * dt), q))
-    for i in range(n):
-        for j in range(n):
-            phi[i, j] = 0.0
-            qd[i, j] = 0.0
-    gyro_transition(w, dt, phi)
-    for i in range(3, 6):
-        phi[i, i] = 1.0
     sv2 = prm[P_SV] * prm[P_SV]
     su2 = prm[P_SU] * prm[P_SU]
     a11 = sv2 * dt + su2 * dt * dt * dt / 3.0
     # growth of error while a gyro sample is held past its nominal interval h (a gap): the held
     # sample's own noise (variance sv^2/h, times s^2) and an unknown steady angular acceleration
-    # (error acc s^2 / 2, variance acc^2 s^4 / 4).
+    # (error acc s^2 / 2, variance acc^2 s^4 / 4)
     h = prm[P_HNOM]
-    s0 = u[3]
     s1 = s0 + dt
     acc = prm[P_ACC]
     a11 += acc * acc * (s1 * s1 * s1 * s1 - s0 * s0 * s0 * s0) / 4.0
     if s1 > h and h > 0.0:
         sa = s0 if s0 > h else h
         a11 += sv2 * ((s1 * s1 - sa * sa) / h - (s1 - sa))
-    a12 = -0.5 * su2 * dt * dt
-    a22 = su2 * dt
-    if u.shape[0] > 4:
-        a22 += u[4]  # a bias step allowed at this step (variance, rad^2/s^2)
+    return a11, -0.5 * su2 * dt * dt, su2 * dt + extra
+
+
+@njit(cache=True)
+def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
+    """One gyro-mode step, reference form: returns (q_next, beta_next, db_next) and fills the full
+    Phi and Q (N x N). ``u = [w_meas (3), s0, extra]``: the held gyro sample (rad/s, body), the time
+    since it was taken (s) and an extra bias variance for this step (rad^2/s^2, zero except where a
+    bias jump was found). The passes use the same formulas through :func:`_predict_into`.
+    """
+    w = np.empty(3)
     for i in range(3):
+        w[i] = u[i] - beta[i]
+    qn = np.empty(4)
+    _rot_step_into(-w[0] * dt, -w[1] * dt, -w[2] * dt, q, qn)
+    phi[:, :] = 0.0
+    qd[:, :] = 0.0
+    gyro_transition(w, dt, phi)
+    a11, a12, a22 = _gyro_noise(dt, u[3], u[4] if u.shape[0] > 4 else 0.0, prm)
+    e, q33 = _field_decay(dt, prm)
+    dbn = np.empty(3)
+    for i in range(3):
+        phi[3 + i, 3 + i] = 1.0
+        phi[6 + i, 6 + i] = e
         qd[i, i] = a11
         qd[i, 3 + i] = a12
         qd[3 + i, i] = a12
         qd[3 + i, 3 + i] = a22
-    dbn = db.copy()
-    if n == 9:
-        e = np.exp(-dt / prm[P_TAUF])
-        sf2 = prm[P_SIGF] * prm[P_SIGF]
-        for i in range(3):
-            phi[6 + i, 6 + i] = e
-            qd[6 + i, 6 + i] = sf2 * (1.0 - e * e)
-            dbn[i] = e * db[i]
+        qd[6 + i, 6 + i] = q33
+        dbn[i] = e * db[i]
     return qn, beta.copy(), dbn
 
 
@@ -393,7 +414,7 @@ def dynamics_jacobian(q, w, m_body, b_gcrf_nT, r_gcrf_km, prm, f):
 
 
 @njit(cache=True)
-def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, n, phi, qd):
+def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, phi, qd):
     """One dynamics-mode step: returns (q_next, w_next, db_next); fills phi and qd.
 
     ``u = [m_body (3) A m^2, r0 (3) km, r1 (3) km]``: the mean coil dipole over the step and the
@@ -412,8 +433,8 @@ def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, n, phi, qd):
     for i in range(6):
         for j in range(6):
             f[i, j] = 0.5 * (f[i, j] + f1[i, j])
-    for i in range(n):
-        for j in range(n):
+    for i in range(N):
+        for j in range(N):
             phi[i, j] = 0.0
             qd[i, j] = 0.0
     # Phi = I + F dt + F^2 dt^2 / 2 on the attitude-rate block (F averaged over the step)
@@ -438,188 +459,310 @@ def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, n, phi, qd):
             qd[i, 3 + j] = qa * dt * dt / 2.0
             qd[3 + i, j] = qa * dt * dt / 2.0
             qd[3 + i, 3 + j] = qa * dt
-    dbn = db.copy()
-    if n == 9:
-        e = np.exp(-dt / prm[P_TAUF])
-        sf2 = prm[P_SIGF] * prm[P_SIGF]
-        for i in range(3):
-            phi[6 + i, 6 + i] = e
-            qd[6 + i, 6 + i] = sf2 * (1.0 - e * e)
-            dbn[i] = e * db[i]
+    e, q33 = _field_decay(dt, prm)
+    dbn = np.empty(3)
+    for i in range(3):
+        phi[6 + i, 6 + i] = e
+        qd[6 + i, 6 + i] = q33
+        dbn[i] = e * db[i]
     return qn, wn, dbn
 
 
 @njit(cache=True)
-def _propagate(mode, k, q, v, db, t, u, r, prm, n, phi, qd):
+def _predict_into(mode, k, q, v, db, t, u, r, prm, p, qn, vn, dbn, m, pm, blk, w3, phi, qd):
+    """Prediction k -> k+1 in place: state into (qn, vn, dbn), ``m = Phi P``, ``pm = Phi P Phi^T + Q``.
+
+    Gyro mode uses the block structure ``Phi = [[A, B, 0], [0, I, 0], [0, 0, e I]]`` (blk = [A B],
+    3 x 6); dynamics mode a dense attitude-rate block from :func:`propagate_dynamics`.
+    """
     dt = t[k + 1] - t[k]
     if mode == MODE_GYRO:
-        return propagate_gyro(q, v, db, u[k], dt, prm, n, phi, qd)
-    return propagate_dynamics(q, v, db, u[k], r[k], r[k + 1], dt, prm, n, phi, qd)
+        for i in range(3):
+            w3[i] = u[k, i] - v[i]
+            vn[i] = v[i]
+        _rot_step_into(-w3[0] * dt, -w3[1] * dt, -w3[2] * dt, q, qn)
+        gyro_transition(w3, dt, blk)
+        a11, a12, a22 = _gyro_noise(dt, u[k, 3], u[k, 4] if u.shape[1] > 4 else 0.0, prm)
+        e, q33 = _field_decay(dt, prm)
+        for i in range(3):
+            dbn[i] = e * db[i]
+        for i in range(3):
+            for j in range(N):
+                m[i, j] = 0.0
+            for c in range(6):
+                bc = blk[i, c]
+                for j in range(N):
+                    m[i, j] += bc * p[c, j]
+        for i in range(3, 6):
+            for j in range(N):
+                m[i, j] = p[i, j]
+        for i in range(6, N):
+            for j in range(N):
+                m[i, j] = e * p[i, j]
+        for i in range(N):
+            for j in range(i, N):
+                if j < 3:
+                    acc_ = 0.0
+                    for c in range(6):
+                        acc_ += m[i, c] * blk[j, c]
+                elif j < 6:
+                    acc_ = m[i, j]
+                else:
+                    acc_ = e * m[i, j]
+                pm[i, j] = acc_
+        for i in range(3):
+            pm[i, i] += a11
+            pm[i, 3 + i] += a12
+            pm[3 + i, 3 + i] += a22
+            pm[6 + i, 6 + i] += q33
+        for i in range(N):
+            for j in range(i + 1, N):
+                pm[j, i] = pm[i, j]
+        return
+    q2, v2, db2 = propagate_dynamics(q, v, db, u[k], r[k], r[k + 1], dt, prm, phi, qd)
+    for i in range(4):
+        qn[i] = q2[i]
+    for i in range(3):
+        vn[i] = v2[i]
+        dbn[i] = db2[i]
+    for i in range(N):
+        for j in range(N):
+            acc_ = 0.0
+            for c in range(N):
+                f = phi[i, c]
+                if f != 0.0:
+                    acc_ += f * p[c, j]
+            m[i, j] = acc_
+    for i in range(N):
+        for j in range(i, N):
+            acc_ = qd[i, j]
+            for c in range(N):
+                f = phi[j, c]
+                if f != 0.0:
+                    acc_ += m[i, c] * f
+            pm[i, j] = acc_
+            pm[j, i] = acc_
 
 
 # ------------------------------------------------------------------------------ vector update
 @njit(cache=True)
-def vector_update(q, v, db, p, z, b_ref, prm, n, innov):
-    """Update with one body-frame field measurement z (nT) against the GCRF reference b_ref (nT).
+def _update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx):
+    """Vector update in place (work arrays a (3, 3), pht (N, 3), kg (N, 3), dx (N,)); returns NIS.
 
-    ``h(x) = A(q) (b_ref + db)``, ``H = [[h x], 0, A]`` (the last block only when n = 9), R = sig_m^2 I
-    (n = 9) or (sig_m^2 + sig_f^2) I (n = 6). Joseph-form covariance update; P is updated in place.
-    Returns (q, v, db, nis); ``innov`` (3,) receives z - h(x).
+    ``h(x) = A(q) (b_ref + db)``, ``H = [[h x], 0, A]``, ``R = sig_m^2 I``. The covariance update is Joseph's form
+    ``(I - K H) P (I - K H)^T + K R K^T``, evaluated as ``P - K (H P) - (K (H P))^T + K S K^T``, which
+    is the same expression multiplied out (valid for any gain K) at a third of the cost.
     """
-    a = attitude_matrix(q)
-    bref = np.empty(3)
-    for i in range(3):
-        bref[i] = b_ref[i] + (db[i] if n == 9 else 0.0)
-    hb = np.empty(3)
-    for i in range(3):
-        hb[i] = a[i, 0] * bref[0] + a[i, 1] * bref[1] + a[i, 2] * bref[2]
-    h = np.zeros((3, n))
-    _skew_into(hb, h, 0, 0, 1.0)
-    if n == 9:
-        for i in range(3):
-            for j in range(3):
-                h[i, 6 + j] = a[i, j]
+    x, y, zq, w = q[0], q[1], q[2], q[3]
+    a[0, 0] = w * w + x * x - y * y - zq * zq
+    a[0, 1] = 2.0 * (x * y - zq * w)
+    a[0, 2] = 2.0 * (x * zq + y * w)
+    a[1, 0] = 2.0 * (x * y + zq * w)
+    a[1, 1] = w * w - x * x + y * y - zq * zq
+    a[1, 2] = 2.0 * (y * zq - x * w)
+    a[2, 0] = 2.0 * (x * zq - y * w)
+    a[2, 1] = 2.0 * (y * zq + x * w)
+    a[2, 2] = w * w - x * x - y * y + zq * zq
+    r0 = b_ref[0] + db[0]
+    r1 = b_ref[1] + db[1]
+    r2 = b_ref[2] + db[2]
+    h0 = a[0, 0] * r0 + a[0, 1] * r1 + a[0, 2] * r2
+    h1 = a[1, 0] * r0 + a[1, 1] * r1 + a[1, 2] * r2
+    h2 = a[2, 0] * r0 + a[2, 1] * r1 + a[2, 2] * r2
     r = prm[P_SIGM] * prm[P_SIGM]
-    if n == 6:
-        r += prm[P_SIGF] * prm[P_SIGF]
-    for i in range(3):
-        innov[i] = z[i] - hb[i]
-    # P H^T (n x 3), S = H P H^T + R (3 x 3)
-    pht = np.zeros((n, 3))
-    for i in range(n):
-        for c in range(3):
-            s = 0.0
-            for m in range(n):
-                hv = h[c, m]
-                if hv != 0.0:
-                    s += p[i, m] * hv
-            pht[i, c] = s
-    sm = np.empty((3, 3))
-    for i in range(3):
-        for c in range(3):
-            s = 0.0
-            for m in range(n):
-                hv = h[i, m]
-                if hv != 0.0:
-                    s += hv * pht[m, c]
-            sm[i, c] = s
-        sm[i, i] += r
-    # 3x3 inverse by cofactors
-    c00 = sm[1, 1] * sm[2, 2] - sm[1, 2] * sm[2, 1]
-    c01 = sm[0, 2] * sm[2, 1] - sm[0, 1] * sm[2, 2]
-    c02 = sm[0, 1] * sm[1, 2] - sm[0, 2] * sm[1, 1]
-    det = sm[0, 0] * c00 + sm[1, 0] * c01 + sm[2, 0] * c02
-    si = np.empty((3, 3))
-    si[0, 0] = c00 / det
-    si[0, 1] = c01 / det
-    si[0, 2] = c02 / det
-    si[1, 0] = (sm[1, 2] * sm[2, 0] - sm[1, 0] * sm[2, 2]) / det
-    si[1, 1] = (sm[0, 0] * sm[2, 2] - sm[0, 2] * sm[2, 0]) / det
-    si[1, 2] = (sm[0, 2] * sm[1, 0] - sm[0, 0] * sm[1, 2]) / det
-    si[2, 0] = (sm[1, 0] * sm[2, 1] - sm[1, 1] * sm[2, 0]) / det
-    si[2, 1] = (sm[0, 1] * sm[2, 0] - sm[0, 0] * sm[2, 1]) / det
-    si[2, 2] = (sm[0, 0] * sm[1, 1] - sm[0, 1] * sm[1, 0]) / det
-    kg = np.zeros((n, 3))
-    for i in range(n):
-        for c in range(3):
-            kg[i, c] = pht[i, 0] * si[0, c] + pht[i, 1] * si[1, c] + pht[i, 2] * si[2, c]
-    dx = np.zeros(n)
-    for i in range(n):
-        dx[i] = kg[i, 0] * innov[0] + kg[i, 1] * innov[1] + kg[i, 2] * innov[2]
-    nis = 0.0
-    for i in range(3):
-        for c in range(3):
-            nis += innov[i] * si[i, c] * innov[c]
-    # Joseph form: (I - K H) P (I - K H)^T + K R K^T
-    ikh = np.zeros((n, n))
-    for i in range(n):
-        for j in range(n):
-            ikh[i, j] = (1.0 if i == j else 0.0) - (kg[i, 0] * h[0, j] + kg[i, 1] * h[1, j]
-                                                    + kg[i, 2] * h[2, j])
-    tmp = np.zeros((n, n))
-    for i in range(n):
-        for j in range(n):
-            s = 0.0
-            for m in range(n):
-                s += ikh[i, m] * p[m, j]
-            tmp[i, j] = s
-    for i in range(n):
-        for j in range(i, n):
-            s = r * (kg[i, 0] * kg[j, 0] + kg[i, 1] * kg[j, 1] + kg[i, 2] * kg[j, 2])
-            for m in range(n):
-                s += tmp[i, m] * ikh[j, m]
-            p[i, j] = s
-            p[j, i] = s
-    qn = qnormalize(qmul(quat_from_rotvec(-dx[0], -dx[1], -dx[2]), q))
-    vn = np.empty(3)
-    dbn = db.copy()
+    innov[0] = z[0] - h0
+    innov[1] = z[1] - h1
+    innov[2] = z[2] - h2
+    # P H^T: the attitude block of H is [h x] (so column c of P H^T is P[:, 0:3] . row c of [h x]),
+    # the field block is A
+    for i in range(N):
+        p0, p1, p2 = p[i, 0], p[i, 1], p[i, 2]
+        pht[i, 0] = -h2 * p1 + h1 * p2
+        pht[i, 1] = h2 * p0 - h0 * p2
+        pht[i, 2] = -h1 * p0 + h0 * p1
+        f0, f1, f2 = p[i, 6], p[i, 7], p[i, 8]
+        pht[i, 0] += a[0, 0] * f0 + a[0, 1] * f1 + a[0, 2] * f2
+        pht[i, 1] += a[1, 0] * f0 + a[1, 1] * f1 + a[1, 2] * f2
+        pht[i, 2] += a[2, 0] * f0 + a[2, 1] * f1 + a[2, 2] * f2
+    # S = H P H^T + R (rows of H applied to the columns of P H^T)
+    s00 = -h2 * pht[1, 0] + h1 * pht[2, 0]
+    s01 = -h2 * pht[1, 1] + h1 * pht[2, 1]
+    s02 = -h2 * pht[1, 2] + h1 * pht[2, 2]
+    s11 = h2 * pht[0, 1] - h0 * pht[2, 1]
+    s12 = h2 * pht[0, 2] - h0 * pht[2, 2]
+    s22 = -h1 * pht[0, 2] + h0 * pht[1, 2]
+    s00 += a[0, 0] * pht[6, 0] + a[0, 1] * pht[7, 0] + a[0, 2] * pht[8, 0]
+    s01 += a[0, 0] * pht[6, 1] + a[0, 1] * pht[7, 1] + a[0, 2] * pht[8, 1]
+    s02 += a[0, 0] * pht[6, 2] + a[0, 1] * pht[7, 2] + a[0, 2] * pht[8, 2]
+    s11 += a[1, 0] * pht[6, 1] + a[1, 1] * pht[7, 1] + a[1, 2] * pht[8, 1]
+    s12 += a[1, 0] * pht[6, 2] + a[1, 1] * pht[7, 2] + a[1, 2] * pht[8, 2]
+    s22 += a[2, 0] * pht[6, 2] + a[2, 1] * pht[7, 2] + a[2, 2] * pht[8, 2]
+    s00 += r
+    s11 += r
+    s22 += r
+    # inverse of the symmetric 3x3 S by cofactors
+    c00 = s11 * s22 - s12 * s12
+    c01 = s02 * s12 - s01 * s22
+    c02 = s01 * s12 - s02 * s11
+    det = s00 * c00 + s01 * c01 + s02 * c02
+    i00 = c00 / det
+    i01 = c01 / det
+    i02 = c02 / det
+    i11 = (s00 * s22 - s02 * s02) / det
+    i12 = (s02 * s01 - s00 * s12) / det
+    i22 = (s00 * s11 - s01 * s01) / det
+    nis = (innov[0] * (i00 * innov[0] + i01 * innov[1] + i02 * innov[2])
+           + innov[1] * (i01 * innov[0] + i11 * innov[1] + i12 * innov[2])
+           + innov[2] * (i02 * innov[0] + i12 * innov[1] + i22 * innov[2]))
+    for i in range(N):
+        e0, e1, e2 = pht[i, 0], pht[i, 1], pht[i, 2]
+        k0 = e0 * i00 + e1 * i01 + e2 * i02
+        k1 = e0 * i01 + e1 * i11 + e2 * i12
+        k2 = e0 * i02 + e1 * i12 + e2 * i22
+        kg[i, 0] = k0
+        kg[i, 1] = k1
+        kg[i, 2] = k2
+        dx[i] = k0 * innov[0] + k1 * innov[1] + k2 * innov[2]
+    # Joseph form multiplied out: P - K (H P) - (K (H P))^T + K S K^T, with H P = (P H^T)^T
+    for i in range(N):
+        k0, k1, k2 = kg[i, 0], kg[i, 1], kg[i, 2]
+        ks0 = k0 * s00 + k1 * s01 + k2 * s02
+        ks1 = k0 * s01 + k1 * s11 + k2 * s12
+        ks2 = k0 * s02 + k1 * s12 + k2 * s22
+        for j in range(i, N):
+            val = (p[i, j] - (k0 * pht[j, 0] + k1 * pht[j, 1] + k2 * pht[j, 2])
+                   - (kg[j, 0] * pht[i, 0] + kg[j, 1] * pht[i, 1] + kg[j, 2] * pht[i, 2])
+                   + ks0 * kg[j, 0] + ks1 * kg[j, 1] + ks2 * kg[j, 2])
+            p[i, j] = val
+            p[j, i] = val
+    _rot_step_into(-dx[0], -dx[1], -dx[2], q, qn)
     for i in range(3):
         vn[i] = v[i] + dx[3 + i]
-        if n == 9:
-            dbn[i] += dx[6 + i]
+        dbn[i] = db[i] + dx[6 + i]
+    return nis
+
+
+@njit(cache=True)
+def vector_update(q, v, db, p, z, b_ref, prm, innov):
+    """Update with one body-frame field measurement z (nT) against the GCRF reference b_ref (nT).
+
+    P (N x N) is updated in place; returns (q, v, db, nis); ``innov`` (3,) receives z - h(x). The
+    allocating form of :func:`_update_into`, which the passes use.
+    """
+    qn = np.empty(4)
+    vn = np.empty(3)
+    dbn = np.empty(3)
+    nis = _update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, np.empty((3, 3)), np.empty((N, 3)),
+                       np.empty((N, 3)), np.empty(N))
     return qn, vn, dbn, nis
 
 
 # --------------------------------------------------------------------------------- the passes
 @njit(cache=True)
-def forward_pass(mode, t, u, is_mag, z, r, prm, n, q0, v0, db0, p0,
+def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
                  q_out, v_out, db_out, p_out, nis_out, innov_out):
     """Forward MEKF over K steps. Step k sits at t[k]; propagation k-1 -> k uses u[k-1].
 
-    Outputs (filled): q_out (K, 4), v_out (K, 3), db_out (K, 3), p_out (K, n, n) after the update at
-    each step; nis_out (K,) NaN where no update; innov_out (K, 3).
-    Returns the number of updates skipped because the innovation covariance was not invertible.
+    Outputs (filled): q_out (K, 4), v_out (K, 3), db_out (K, 3), p_out (K, NP) the covariance after
+    the update at each step, upper triangle row by row (see :func:`unpack_covariance`); nis_out (K,)
+    and innov_out (K, 3), NaN where there is no update.
     """
     kk = t.shape[0]
-    q = q0.copy()
-    v = v0.copy()
-    db = db0.copy()
-    p = p0.copy()
-    phi = np.zeros((n, n))
-    qd = np.zeros((n, n))
-    tmp = np.zeros((n, n))
-    pm = np.zeros((n, n))
-    innov = np.zeros(3)
+    q, v, db, p = q0.copy(), v0.copy(), db0.copy(), p0.copy()
+    q2, v2, db2, p2 = np.empty(4), np.empty(3), np.empty(3), np.empty((N, N))
+    m = np.empty((N, N))
+    blk = np.zeros((3, 6))
+    w3 = np.empty(3)
+    phi = np.zeros((N, N))
+    qd = np.zeros((N, N))
+    a3 = np.empty((3, 3))
+    pht = np.empty((N, 3))
+    kg = np.empty((N, 3))
+    dx = np.empty(N)
+    innov = np.empty(3)
     for k in range(kk):
         if k > 0:
-            q, v, db = _propagate(mode, k - 1, q, v, db, t, u, r, prm, n, phi, qd)
-            _sym_prop(phi, p, qd, n, tmp, pm)
-            p[:, :] = pm
-        nis_out[k] = np.nan
-        innov_out[k, :] = np.nan
+            _predict_into(mode, k - 1, q, v, db, t, u, r, prm, p, q2, v2, db2, m, p2, blk, w3, phi, qd)
+            q, q2 = q2, q
+            v, v2 = v2, v
+            db, db2 = db2, db
+            p, p2 = p2, p
         if is_mag[k]:
-            q, v, db, nis = vector_update(q, v, db, p, z[k], r[k], prm, n, innov)
-            nis_out[k] = nis
-            innov_out[k, :] = innov
-        q_out[k, :] = q
-        v_out[k, :] = v
-        db_out[k, :] = db
-        p_out[k, :, :] = p
+            nis_out[k] = _update_into(q, v, db, p, z[k], r[k], prm, innov, q2, v2, db2, a3, pht, kg, dx)
+            q, q2 = q2, q
+            v, v2 = v2, v
+            db, db2 = db2, db
+            innov_out[k, 0] = innov[0]
+            innov_out[k, 1] = innov[1]
+            innov_out[k, 2] = innov[2]
+        else:
+            nis_out[k] = np.nan
+            innov_out[k, 0] = np.nan
+            innov_out[k, 1] = np.nan
+            innov_out[k, 2] = np.nan
+        for i in range(4):
+            q_out[k, i] = q[i]
+        for i in range(3):
+            v_out[k, i] = v[i]
+            db_out[k, i] = db[i]
+        c = 0
+        for i in range(N):
+            for j in range(i, N):
+                p_out[k, c] = p[i, j]
+                c += 1
     return 0
 
 
 @njit(cache=True)
-def smoother_pass(mode, t, u, r, prm, n, q_f, v_f, db_f, p_f, out_idx,
+def _unpack_into(packed, out):
+    c = 0
+    for i in range(N):
+        for j in range(i, N):
+            out[i, j] = packed[c]
+            out[j, i] = packed[c]
+            c += 1
+
+
+def unpack_covariance(packed: np.ndarray, size: int = N) -> np.ndarray:
+    """(K, NP) packed upper triangles -> (K, size, size) symmetric blocks (the leading size x size)."""
+    iu = np.triu_indices(N)
+    full = np.empty((packed.shape[0], N, N))
+    full[:, iu[0], iu[1]] = packed
+    full[:, iu[1], iu[0]] = packed
+    return np.ascontiguousarray(full[:, :size, :size])
+
+
+@njit(cache=True)
+def smoother_pass(mode, t, u, r, prm, q_f, v_f, db_f, p_f, out_idx,
                   q_s, v_s, db_s, p_s6, p_sfull):
     """Rauch-Tung-Striebel smoother in error-state form over the stored forward pass.
 
     ``Ks = P+_k Phi^T (P-_{k+1})^-1``; ``dx_k = Ks (x_s,k+1 [-] x-_{k+1})`` with the attitude part
     the small rotation from the predicted to the smoothed quaternion; ``P_s,k = P+_k - Ks (P-_{k+1} -
     P_s,k+1) Ks^T`` (Crassidis & Junkins 2012 ex. 5.1). The correction is applied multiplicatively
-    to the forward quaternion. q_s, v_s, db_s (K, .) are filled for every step; p_s6 (M, 6, 6)
+    to the forward quaternion. p_f (K, NP) holds the forward covariances packed as by
+    :func:`forward_pass`. q_s, v_s, db_s (K, .) are filled for every step; p_s6 (M, 6, 6)
     receives the attitude/rate block at steps with out_idx[k] >= 0 (its row). When p_sfull has K
     rows the full smoothed covariance is stored too.
     Returns the number of steps where P- was not positive definite (smoother gain set to zero).
     """
     kk = t.shape[0]
-    phi = np.zeros((n, n))
-    qd = np.zeros((n, n))
-    tmp = np.zeros((n, n))
-    pm = np.zeros((n, n))
-    ps = p_f[kk - 1].copy()
-    lwork = np.zeros((n, n))
-    x = np.zeros((n, n))
-    dx1 = np.zeros(n)
+    qm, vm, dbm = np.empty(4), np.empty(3), np.empty(3)
+    m = np.empty((N, N))
+    pm = np.empty((N, N))
+    blk = np.zeros((3, 6))
+    w3 = np.empty(3)
+    phi = np.zeros((N, N))
+    qd = np.zeros((N, N))
+    pk = np.empty((N, N))
+    ps = np.empty((N, N))
+    _unpack_into(p_f[kk - 1], ps)
+    lwork = np.zeros((N, N))
+    x = np.zeros((N, N))
+    tmp = np.zeros((N, N))
+    dx1 = np.zeros(N)
+    dxk = np.zeros(N)
+    qc = np.empty(4)
     bad = 0
     store_full = p_sfull.shape[0] == kk
     q_s[kk - 1, :] = q_f[kk - 1]
@@ -630,129 +773,70 @@ def smoother_pass(mode, t, u, r, prm, n, q_f, v_f, db_f, p_f, out_idx,
     if store_full:
         p_sfull[kk - 1, :, :] = ps
     for k in range(kk - 2, -1, -1):
-        pk = p_f[k]
-        qm, vm, dbm = _propagate(mode, k, q_f[k], v_f[k], db_f[k], t, u, r, prm, n, phi, qd)
-        _sym_prop(phi, pk, qd, n, tmp, pm)
-        # error of the smoothed state at k+1 relative to the prediction
-        qc = qm.copy()
-        qc[0:3] = -qc[0:3]
-        rv = rotvec_from_quat(qmul(q_s[k + 1], qc))
+        _unpack_into(p_f[k], pk)
+        _predict_into(mode, k, q_f[k], v_f[k], db_f[k], t, u, r, prm, pk, qm, vm, dbm, m, pm, blk, w3, phi, qd)
+        # error of the smoothed state at k+1 relative to the prediction: q_s = q(-dtheta) (x) q-
+        # qe = q_s,k+1 (x) conj(q-): Hamilton product written out, then its rotation vector
+        ax, ay, az, aw = q_s[k + 1, 0], q_s[k + 1, 1], q_s[k + 1, 2], q_s[k + 1, 3]
+        bx, by, bz, bw = -qm[0], -qm[1], -qm[2], qm[3]
+        ex = aw * bx + bw * ax + ay * bz - az * by
+        ey = aw * by + bw * ay + az * bx - ax * bz
+        ez = aw * bz + bw * az + ax * by - ay * bx
+        ew = aw * bw - ax * bx - ay * by - az * bz
+        if ew < 0.0:
+            ex, ey, ez, ew = -ex, -ey, -ez, -ew
+        sn = np.sqrt(ex * ex + ey * ey + ez * ez)
+        f = 2.0 / ew if sn < 1e-12 else 2.0 * np.arctan2(sn, ew) / sn
+        dx1[0] = -f * ex
+        dx1[1] = -f * ey
+        dx1[2] = -f * ez
         for i in range(3):
-            dx1[i] = -rv[i]
             dx1[3 + i] = v_s[k + 1, i] - vm[i]
-        if n == 9:
-            for i in range(3):
-                dx1[6 + i] = db_s[k + 1, i] - dbm[i]
-        # Ks^T = (P-)^-1 Phi P+  (P symmetric)
-        for i in range(n):
-            for j in range(n):
-                s = 0.0
-                for m in range(n):
-                    f = phi[i, m]
-                    if f != 0.0:
-                        s += f * pk[m, j]
-                tmp[i, j] = s
-        ok = _cholesky_solve(pm, tmp, n, n, lwork, x)
+        for i in range(3):
+            dx1[6 + i] = db_s[k + 1, i] - dbm[i]
+        # Ks^T = (P-)^-1 (Phi P+)   (P symmetric), m = Phi P+
+        ok = _cholesky_solve(pm, m, lwork, x)
         if not ok:
             bad += 1
-            for i in range(n):
-                for j in range(n):
+            for i in range(N):
+                for j in range(N):
                     x[i, j] = 0.0
-        # dx_k = Ks dx1 = x^T dx1
-        dxk = np.zeros(n)
-        for i in range(n):
-            s = 0.0
-            for m in range(n):
-                s += x[m, i] * dx1[m]
-            dxk[i] = s
-        q_s[k, :] = qnormalize(qmul(quat_from_rotvec(-dxk[0], -dxk[1], -dxk[2]), q_f[k]))
+        for i in range(N):
+            dxk[i] = 0.0
+        for c in range(N):
+            d1 = dx1[c]
+            for i in range(N):
+                dxk[i] += x[c, i] * d1
+        _rot_step_into(-dxk[0], -dxk[1], -dxk[2], q_f[k], qc)
+        for i in range(4):
+            q_s[k, i] = qc[i]
         for i in range(3):
             v_s[k, i] = v_f[k, i] + dxk[3 + i]
-            db_s[k, i] = db_f[k, i] + (dxk[6 + i] if n == 9 else 0.0)
-        # P_s,k = P+ - Ks (P- - P_s,k+1) Ks^T
-        for i in range(n):
-            for j in range(n):
+            db_s[k, i] = db_f[k, i] + dxk[6 + i]
+        # P_s,k = P+ - Ks (P- - P_s,k+1) Ks^T ; tmp = Ks D = x^T D (loops ordered for contiguous rows)
+        for i in range(N):
+            for j in range(N):
                 pm[i, j] -= ps[i, j]
-        # tmp = Ks D = x^T D
-        for i in range(n):
-            for j in range(n):
-                s = 0.0
-                for m in range(n):
-                    s += x[m, i] * pm[m, j]
-                tmp[i, j] = s
-        for i in range(n):
-            for j in range(i, n):
-                s = 0.0
-                for m in range(n):
-                    s += tmp[i, m] * x[m, j]
-                val = pk[i, j] - s
-                ps[i, j] = val
-                ps[j, i] = val
+                tmp[i, j] = 0.0
+        for c in range(N):
+            for i in range(N):
+                xci = x[c, i]
+                for j in range(N):
+                    tmp[i, j] += xci * pm[c, j]
+        for i in range(N):
+            for j in range(i, N):
+                ps[i, j] = pk[i, j]
+            for c in range(N):
+                tic = tmp[i, c]
+                for j in range(i, N):
+                    ps[i, j] -= tic * x[c, j]
+            for j in range(i + 1, N):
+                ps[j, i] = ps[i, j]
         if out_idx[k] >= 0:
-            p_s6[out_idx[k], :, :] = ps[0:6, 0:6]
+            row = out_idx[k]
+            for i in range(6):
+                for j in range(6):
+                    p_s6[row, i, j] = ps[i, j]
         if store_full:
             p_sfull[k, :, :] = ps
     return bad
-
-
-# ------------------------------------------------------------------------ helpers for set-up
-@njit(cache=True)
-def integrate_gyro(t_gyro, w_gyro, bias, t_query):
-    """Body-to-body rotations Delta(t) with ``A(t) = Delta(t) A(t_query[0])`` from the gyro.
-
-    The rate of gyro sample j (minus ``bias``) is held from t_gyro[j] to the next sample (the same
-    rule as the filter). Returns (M, 4) quaternions at the (increasing) ``t_query`` times.
-    """
-    mq = t_query.shape[0]
-    out = np.empty((mq, 4))
-    dq = np.array([0.0, 0.0, 0.0, 1.0])
-    tcur = t_query[0]
-    j = np.searchsorted(t_gyro, tcur, side="right") - 1
-    if j < 0:
-        j = 0
-    for i in range(mq):
-        tq = t_query[i]
-        while tcur < tq:
-            tnext = t_gyro[j + 1] if j + 1 < t_gyro.shape[0] else tq
-            if tnext > tq:
-                tnext = tq
-            dt = tnext - tcur
-            if dt > 0.0:
-                wx = w_gyro[j, 0] - bias[0]
-                wy = w_gyro[j, 1] - bias[1]
-                wz = w_gyro[j, 2] - bias[2]
-                dq = qmul(quat_from_rotvec(-wx * dt, -wy * dt, -wz * dt), dq)
-            tcur = tnext
-            if j + 1 < t_gyro.shape[0] and tcur >= t_gyro[j + 1]:
-                j += 1
-        out[i, :] = qnormalize(dq)
-    return out
-
-
-@njit(cache=True)
-def propagate_rigid_body(q0, w0, t, m_body, b_ref, r_km, prm, nsub):
-    """Attitude and rate along t (K,) from (q0, w0) at t[0] with Euler's equations and RK4.
-
-    m_body (K, 3): dipole held over [t_k, t_k+1]; b_ref (K, 3) nT and r_km (K, 3): GCRF field and
-    position at t_k. ``nsub`` RK4 sub-steps per interval. Returns q (K, 4), w (K, 3).
-    """
-    kk = t.shape[0]
-    qo = np.empty((kk, 4))
-    wo = np.empty((kk, 3))
-    q = q0.copy()
-    w = w0.copy()
-    qo[0, :] = q
-    wo[0, :] = w
-    for k in range(kk - 1):
-        dt = (t[k + 1] - t[k]) / nsub
-        for s in range(nsub):
-            f0 = s / nsub
-            f1 = (s + 1.0) / nsub
-            b0 = b_ref[k] + f0 * (b_ref[k + 1] - b_ref[k])
-            b1 = b_ref[k] + f1 * (b_ref[k + 1] - b_ref[k])
-            r0 = r_km[k] + f0 * (r_km[k + 1] - r_km[k])
-            r1 = r_km[k] + f1 * (r_km[k + 1] - r_km[k])
-            q, w = rk4_rigid_body(q, w, dt, m_body[k], b0, b1, r0, r1, prm)
-        qo[k + 1, :] = q
-        wo[k + 1, :] = w
-    return qo, wo

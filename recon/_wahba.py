@@ -26,13 +26,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from . import _mekf_core as core
 
 __all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion", "InitialState",
-           "initial_state_with_gyro"]
+           "initial_state_with_gyro", "integrate_gyro"]
 
 
 def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
@@ -125,6 +126,39 @@ def davenport_q_method(b_body: np.ndarray, r_ref: np.ndarray, sigma_rad: np.ndar
     return WahbaSolution(q, loss, cov)
 
 
+@njit(cache=True)
+def integrate_gyro(t_gyro, w_gyro, bias, t_query):
+    """Body-to-body rotations Delta(t) with ``A(t) = Delta(t) A(t_query[0])`` from the gyro.
+
+    The rate of gyro sample j (minus ``bias``) is held from t_gyro[j] to the next sample (the same
+    rule as the filter). Returns (M, 4) quaternions at the (increasing) ``t_query`` times.
+    """
+    mq = t_query.shape[0]
+    out = np.empty((mq, 4))
+    dq = np.array([0.0, 0.0, 0.0, 1.0])
+    tcur = t_query[0]
+    j = np.searchsorted(t_gyro, tcur, side="right") - 1
+    if j < 0:
+        j = 0
+    for i in range(mq):
+        tq = t_query[i]
+        while tcur < tq:
+            tnext = t_gyro[j + 1] if j + 1 < t_gyro.shape[0] else tq
+            if tnext > tq:
+                tnext = tq
+            dt = tnext - tcur
+            if dt > 0.0:
+                wx = w_gyro[j, 0] - bias[0]
+                wy = w_gyro[j, 1] - bias[1]
+                wz = w_gyro[j, 2] - bias[2]
+                dq = core.qmul(core.quat_from_rotvec(-wx * dt, -wy * dt, -wz * dt), dq)
+            tcur = tnext
+            if j + 1 < t_gyro.shape[0] and tcur >= t_gyro[j + 1]:
+                j += 1
+        out[i, :] = core.qnormalize(dq)
+    return out
+
+
 @dataclass(frozen=True)
 class InitialState:
     """Starting point of the filter at ``t_s`` (seconds on the filter's time axis).
@@ -199,7 +233,7 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
     sig_ang = sigma_vec_nT / bmag
 
     def delta(bias):
-        return core.integrate_gyro(t_gyro, w_gyro, np.asarray(bias, float), tq)
+        return integrate_gyro(t_gyro, w_gyro, np.asarray(bias, float), tq)
 
     d0 = Rotation.from_quat(delta(np.zeros(3)))
     sol = davenport_q_method(d0.inv().apply(bq), rq, sig_ang)
@@ -207,7 +241,7 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
 
     def residuals(p, sel):
         a = Rotation.from_rotvec(-p[:3]) * a0
-        dq = Rotation.from_quat(core.integrate_gyro(t_gyro, w_gyro, p[3:], tq[sel]))
+        dq = Rotation.from_quat(integrate_gyro(t_gyro, w_gyro, p[3:], tq[sel]))
         pred = (dq * a).apply(rq[sel])
         res = ((pred - bq[sel]) / sigma_vec_nT).ravel()
         return np.r_[res, p[3:] / sigma_bias0_rad_s]

@@ -70,7 +70,8 @@ class NoiseModel:
         rms magnitude of the field the reference model leaves out, nT (about 100 nT for IGRF in
         quiet conditions (memory)); the per-axis sigma is this / sqrt(3).
     field_model_tau_s : float
-        Correlation time of that error, s; 0 treats it as white noise added to R (6-state filter).
+        Correlation time of that error, s; 0 treats it as white noise (exactly the 6-state filter with
+        the error's variance added to the measurement noise).
     gyro_arw_rad_sqrt_s : float or None
         Angle random walk sv, rad/sqrt(s) (= rad/s per sqrt(Hz)).
     gyro_bias_walk_rad_s_sqrt_s : float
@@ -341,29 +342,29 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
 
     Notes
     -----
-    Memory: the forward covariances are kept for the smoother, K x n x n floats (n = 9: 648 bytes a
-    step, 0.65 GB for a million steps), plus the 6 x 6 smoothed block of each output row.
+    Memory: the forward covariances are kept for the smoother, the upper triangle of K 9 x 9 matrices
+    (360 bytes a step, 0.36 GB for a million steps), plus the 6 x 6 smoothed block of each output
+    row (288 bytes, 0.29 GB).
     """
-    n = 9 if prm[core.P_TAUF] > 0 else 6
+    n = core.N
     kk = len(t)
     p0 = np.zeros((n, n))
     p0[:3, :3] = np.diag(init.sigma_att_rad ** 2)
     p0[3:6, 3:6] = np.diag(init.sigma_v ** 2)
-    if n == 9:
-        p0[6:, 6:] = np.eye(3) * prm[core.P_SIGF] ** 2
+    p0[6:, 6:] = np.eye(3) * prm[core.P_SIGF] ** 2
     q_f = np.empty((kk, 4))
     v_f = np.empty((kk, 3))
     db_f = np.empty((kk, 3))
-    p_f = np.empty((kk, n, n))
+    p_f = np.empty((kk, core.NP))
     nis = np.empty(kk)
     innov = np.empty((kk, 3))
-    core.forward_pass(mode, t, u, is_mag, z, r, prm, n, np.asarray(init.q_body_from_gcrf, float),
+    core.forward_pass(mode, t, u, is_mag, z, r, prm, np.asarray(init.q_body_from_gcrf, float),
                       np.asarray(init.v, float), np.zeros(3), p0, q_f, v_f, db_f, p_f, nis, innov)
     q_s = np.empty((kk, 4))
     v_s = np.empty((kk, 3))
     db_s = np.empty((kk, 3))
     p_s6 = np.empty((n_out, 6, 6))
-    bad = core.smoother_pass(mode, t, u, r, prm, n, q_f, v_f, db_f, p_f, out_idx, q_s, v_s, db_s, p_s6,
+    bad = core.smoother_pass(mode, t, u, r, prm, q_f, v_f, db_f, p_f, out_idx, q_s, v_s, db_s, p_s6,
                              np.empty((0, n, n)))
     return _Run(t, q_f, v_f, db_f, p_f, nis, q_s, v_s, db_s, p_s6, int(bad))
 
@@ -390,7 +391,7 @@ def _track(run: _Run, smoothed: bool, sel: np.ndarray, mode: int, prm: np.ndarra
     q = (run.q_s if smoothed else run.q_f)[sel]
     v = (run.v_s if smoothed else run.v_f)[sel]
     db = (run.db_s if smoothed else run.db_f)[sel]
-    cov = run.p_s6 if smoothed else np.ascontiguousarray(run.p_f[sel][:, :6, :6])
+    cov = run.p_s6 if smoothed else core.unpack_covariance(run.p_f[sel], 6)
     d = np.sqrt(np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None))
     if mode == core.MODE_GYRO:
         w = w_out - v
