@@ -91,9 +91,10 @@ class GyroNoiseFigures:
 def gyro_noise_from_adev(taus: np.ndarray, adev: np.ndarray, slope_tolerance: float = 0.2) -> GyroNoiseFigures:
     """Angle random walk, bias instability and rate random walk from one Allan deviation curve.
 
-    The -1/2 and +1/2 lines are fitted (in log-log, slope fixed) through the points whose local slope
-    is within ``slope_tolerance`` of -1/2 or +1/2; a line with no such points is reported as None,
-    except that the ARW falls back to the shortest tau (where white noise dominates any real gyro).
+    The -1/2 line is fitted (in log-log, slope fixed) through the run of points from the shortest tau
+    whose local slope is within ``slope_tolerance`` of -1/2 (falling back to the shortest tau alone,
+    where white noise dominates any real gyro); the +1/2 line through all points within the tolerance
+    of +1/2, None if there are none.
 
     Parameters
     ----------
@@ -105,8 +106,11 @@ def gyro_noise_from_adev(taus: np.ndarray, adev: np.ndarray, slope_tolerance: fl
     slope = np.gradient(la, lt) if len(t) > 2 else np.full(len(t), -0.5)
     arw_pts = np.abs(slope + 0.5) <= slope_tolerance
     rrw_pts = np.abs(slope - 0.5) <= slope_tolerance
-    if arw_pts.any():
-        arw = float(np.exp(np.mean(la[arw_pts] + 0.5 * lt[arw_pts])))
+    # the -1/2 line is the run of such points from the shortest tau on: further along, motion or
+    # other terms can cross slope -1/2 by chance
+    run = np.cumprod(arw_pts).astype(bool)
+    if run.any():
+        arw = float(np.exp(np.mean(la[run] + 0.5 * lt[run])))
     else:
         arw = float(a[0] * np.sqrt(t[0]))
     rrw = float(np.exp(np.mean(la[rrw_pts] - 0.5 * (lt[rrw_pts] - np.log(3.0))))) if rrw_pts.any() else None
