@@ -119,12 +119,13 @@ class GyroCheck:
     axis: int | None = None
     explained_fraction: float | None = None
 
-    def anomaly(self, t_epoch_ns: int) -> Anomaly:
+    def anomaly(self, t_epoch_ns: int, dynamics_used: bool = True) -> Anomaly:
         start = None if self.dead_start_s is None else _at(t_epoch_ns, self.dead_start_s)
         stop = None if self.dead_stop_s is None else _at(t_epoch_ns, self.dead_stop_s)
-        return Anomaly("gyro_dead", "critical", self.reason + " Attitude reconstructed without the gyro "
-                       "(dynamics mode).", start, stop, axis=None if self.axis is None else "xyz"[self.axis],
-                       value=self.explained_fraction)
+        what = (" Attitude reconstructed without the gyro (dynamics mode)." if dynamics_used else
+                " The gyro was used anyway because gyro mode was requested: treat the attitude with caution.")
+        return Anomaly("gyro_dead", "critical", self.reason + what, start, stop,
+                       axis=None if self.axis is None else "xyz"[self.axis], value=self.explained_fraction)
 
 
 def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body_nT: np.ndarray,

@@ -511,9 +511,9 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
     if have_gyro:
         check = dyn.check_gyro((tg - t_epoch) / _NS, wg, (tm[ok_rows] - t_epoch) / _NS, bb[ok_rows],
                                noise.gyro_arw_rad_sqrt_s)
-        if mode == "auto" and not check.usable:
-            use_gyro = False
-            anomalies.append(check.anomaly(t_epoch))
+        if not check.usable:
+            use_gyro = mode == "gyro"
+            anomalies.append(check.anomaly(t_epoch, dynamics_used=not use_gyro))
         reason = check.reason
     if not use_gyro:
         if inertia_kg_m2 is None:

@@ -209,6 +209,32 @@ def test_cold_start_without_gyro():
     assert np.all(np.isnan(h.gyro_bias_rad_s))
 
 
+def test_noise_model_from_the_mission_file(mission_dir):
+    """Mission units become recon's: magnetometer 0.08 uT -> 80 nT; gyro 0.004 deg/s per sqrt(Hz) and
+    0.0002 deg/s per sqrt(s) -> rad; [estimator] keys named like NoiseModel's fields override."""
+    from recon.config import load_mission
+
+    path = mission_dir / "mission.toml"
+    nm = NoiseModel.from_mission(load_mission(path))
+    assert nm.mag_nT == pytest.approx(80.0)
+    assert nm.gyro_arw_rad_sqrt_s == pytest.approx(0.004 * DEG)
+    assert nm.gyro_bias_walk_rad_s_sqrt_s == pytest.approx(0.0002 * DEG)
+    path.write_text(path.read_text() + "\n[estimator]\nfield_model_nT = 150.0\n")
+    assert NoiseModel.from_mission(load_mission(path)).field_model_nT == 150.0
+    path.write_text(path.read_text().replace("field_model_nT", "field_noise"))
+    with pytest.raises(InputError, match=r"mission.toml: key 'estimator.field_noise': expected an estimator setting"):
+        NoiseModel.from_mission(load_mission(path))
+
+
+def test_forced_gyro_mode_still_reports_a_dead_gyro():
+    tr = make_truth(12, 600.0)
+    h = estimate_attitude(tr.t_mag_utc, tr.b_body_nT, tr.b_ref_gcrf_nT, gyro_t_utc=tr.t_gyro_utc,
+                          w_gyro_body_rad_s=np.zeros_like(tr.w_gyro), noise=NOISE, mode="gyro")
+    assert h.mode == "gyro"
+    dead = [a for a in h.anomalies if a.code == "gyro_dead"]
+    assert len(dead) == 1 and "requested" in dead[0].evidence
+
+
 def test_bad_input_raises_input_error():
     tr = make_truth(11, 60.0)
     t = tr.t_mag_utc.copy()
