@@ -86,7 +86,7 @@ def window_bounds(segment_start: np.ndarray, n: int, half_width: int = HALF_WIDT
     starts = np.asarray(segment_start, dtype=np.int64)
     ends = np.append(starts[1:], n) - 1
     i = np.arange(n, dtype=np.int64)
-    seg = np.searchsorted(starts, i, side="right") - 1
+    seg = np.repeat(np.arange(starts.size), ends - starts + 1)  # segment of each sample
     if symmetric:
         k = np.minimum(np.minimum(i - starts[seg], ends[seg] - i), half_width)
         return i - k, i + k

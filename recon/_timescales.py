@@ -117,10 +117,10 @@ def _fixed_iso(chars: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
     def num(*ks):  # the number written by the digits at positions ks; marks non-digits
         nonlocal ok
-        total = np.zeros(n, dtype=np.int64)
+        total = np.zeros(n, dtype=np.int32)
         for k in ks:
-            d = cols[k].astype(np.int64) - 48
-            ok &= (d >= 0) & (d <= 9)
+            d = cols[k] - np.uint8(48)  # wraps below "0": one test finds non-digits
+            ok &= d <= 9
             total = total * 10 + d
         return total
 
@@ -131,13 +131,19 @@ def _fixed_iso(chars: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     frac_ns = np.zeros(n, dtype=np.int64)
     if w > 19:
         ok &= (cols[19] == 46) & (w > 20)
-        frac_ns = num(*range(20, w)) * 10 ** (9 - (w - 20))
+        frac_ns = num(*range(20, w)).astype(np.int64) * 10 ** (9 - (w - 20))
     leap = ((year % 4 == 0) & (year % 100 != 0)) | (year % 400 == 0)
     month_ok = (month >= 1) & (month <= 12)
     dim = _DAYS_IN_MONTH[np.clip(month - 1, 0, 11)] + ((month == 2) & leap)
     ok &= month_ok & (day >= 1) & (day <= dim) & (hour <= 23) & (minute <= 59) & (second <= 59)
-    days = _days_from_civil(year, np.clip(month, 1, 12), day)
-    ns = ((days * 86_400 + hour * 3600 + minute * 60 + second) * _NS) + frac_ns
+    # the date changes rarely along a log: convert each run of equal dates once
+    ymd = (year * 100 + month) * 100 + day
+    first = np.flatnonzero(np.r_[True, ymd[1:] != ymd[:-1]])
+    run_days = _days_from_civil(year[first].astype(np.int64), np.clip(month[first], 1, 12).astype(np.int64),
+                                day[first].astype(np.int64))
+    days = np.repeat(run_days, np.diff(np.r_[first, n]))
+    sod = hour.astype(np.int64) * 3600 + minute * 60 + second
+    ns = (days * 86_400 + sod) * _NS + frac_ns
     return np.where(ok, ns, 0), ok
 
 

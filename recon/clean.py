@@ -290,11 +290,11 @@ def _out_of_range(book: _Book, order: np.ndarray, bound: np.ndarray, what: str) 
 
 
 def _quantum(x: np.ndarray) -> float:
-    """Smallest step between distinct values (the resolution of a quantised signal), 0 if none."""
-    u = np.unique(x)
-    if u.size < 2:
-        return 0.0
-    return float(np.diff(u).min())
+    """Smallest nonzero step between consecutive samples: the quantisation step of a quiet quantised
+    signal (where most steps are 0 or 1 count), never less than it; 0 if the signal never moves."""
+    d = np.abs(np.diff(x))
+    d = d[d > 0]
+    return float(d.min()) if d.size else 0.0
 
 
 def _spikes(book: _Book, order: np.ndarray, noise: float | None, saturated: np.ndarray,

@@ -152,22 +152,31 @@ def _column_index(header: list[str], name: str, path: Path, what: str) -> int:
 def _read_columns(body: bytes, usecols: list[int], float_cols: list[int], n_rows: int):
     """Read the chosen columns of well-formed lines; numbers as float64 when every field parses.
 
-    Returns a dict column index -> array: float64, or object (text) for every column when some
-    field did not parse as a number (the caller then finds which rows fail).
+    Returns a dict column index -> array: float64, or object (text) for a number column in which
+    some field did not parse (the caller then finds which rows fail), and for ``text`` columns.
     """
-    common = dict(header=None, usecols=usecols, engine="c", quoting=csv.QUOTE_NONE, na_filter=False,
-                  skip_blank_lines=False, encoding="utf-8", index_col=False)
+    common = dict(header=None, engine="c", quoting=csv.QUOTE_NONE, na_filter=False, skip_blank_lines=False,
+                  encoding="utf-8", index_col=False)
     text_cols = [c for c in usecols if c not in float_cols]
     if n_rows == 0:
         return {c: np.zeros(0, dtype=float if c in float_cols else object) for c in usecols}
+
+    def read(cols, dtype):
+        df = pd.read_csv(io.BytesIO(body), usecols=cols, dtype={c: dtype for c in cols}, **common)
+        if len(df) != n_rows:  # cannot happen for lines that passed the scan; keep the ledger honest
+            raise RuntimeError(f"parser returned {len(df)} rows for {n_rows} well-formed lines")
+        return {c: df[c].to_numpy() for c in cols}
+
+    out = read(text_cols, object) if text_cols else {}
     try:
-        df = pd.read_csv(io.BytesIO(body), dtype={**{c: np.float64 for c in float_cols},
-                                                  **{c: object for c in text_cols}}, **common)
-    except ValueError:
-        df = pd.read_csv(io.BytesIO(body), dtype={c: object for c in usecols}, **common)
-    if len(df) != n_rows:  # cannot happen for lines that passed the scan; keep the ledger honest
-        raise RuntimeError(f"parser returned {len(df)} rows for {n_rows} well-formed lines")
-    return {c: df[c].to_numpy() for c in usecols}
+        out.update(read(float_cols, np.float64))
+    except ValueError:  # some field is not a number: find the column(s), read only those as text
+        for c in float_cols:
+            try:
+                out.update(read([c], np.float64))
+            except ValueError:
+                out.update(read([c], object))
+    return out
 
 
 def _numbers(col: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -369,7 +378,10 @@ def _to_internal(file_unit: np.ndarray, spec: SensorSpec | CoilSpec, name: str) 
             return file_unit * np.asarray(spec.max_current_A, dtype=float)[None, :]
         return file_unit * A_PER_UNIT[spec.unit]
     factor = NT_PER_UNIT[spec.unit] if name == "magnetometer" else RAD_S_PER_UNIT[spec.unit]
-    return (file_unit * factor) @ np.asarray(spec.sensor_to_body, dtype=float).T
+    m = np.asarray(spec.sensor_to_body, dtype=float) * factor
+    # v_body = M @ v_sensor row by row, written out: a (N, 3) x (3, 3) product through BLAS pays
+    # for thread start-up, and more so on a busy machine
+    return file_unit[:, 0:1] * m[:, 0] + file_unit[:, 1:2] * m[:, 1] + file_unit[:, 2:3] * m[:, 2]
 
 
 def load_pass(mission: Mission) -> LoadedPass:
