@@ -59,7 +59,7 @@ def _skew(v):
 
 
 def _phi_q(w, dt, prm):
-    """The same discrete model as recon (Crassidis & Junkins 2012 sec. 7.2), written plainly in numpy."""
+    """The same discrete model as recon (Crassidis & Junkins 2012 ch. 7), written plainly in numpy."""
     wn = np.linalg.norm(w)
     th = wn * dt
     sk = _skew(w)

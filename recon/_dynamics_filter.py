@@ -15,7 +15,7 @@ filtering of magnetometer data. J. Guidance 13(3), 506-514.
 Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
 Control. Springer. Sec. 3.3 (kinematics and Euler's equations), 3.3.6.3 (gravity gradient).
 Savitzky, A. and Golay, M. J. E. (1964). Smoothing and differentiation of data by simplified least
-squares procedures. Anal. Chem. 36(8), 1627-1639 (the local-slope derivative).
+squares procedures. Anal. Chem. 36(8), 1627-1639 (the local-slope derivative) (memory).
 """
 
 from __future__ import annotations

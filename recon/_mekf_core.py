@@ -10,15 +10,15 @@ v_body``); the kinematics is ``dA/dt = -[w x] A``, so one step with a constant b
 
 Error state (the multiplicative EKF of Lefferts, Markley & Shuster 1982): ``dx = [dtheta, dv, db]``
 with ``A_true = (I - [dtheta x]) A_est`` (the attitude error in body axes, as in Markley & Crassidis
-2014 sec. 6.2), ``dv`` the error of the gyro bias (gyro mode) or of the body rate (dynamics mode),
+2014 ch. 6), ``dv`` the error of the gyro bias (gyro mode) or of the body rate (dynamics mode),
 and ``db`` the error of the estimated field-model error (GCRF, nT). The error state always has N = 9
 components (constant loop bounds let the compiler unroll the small matrix products); a white
 field-model error (``tau_f = 0``) is the same filter with ``exp(-dt/tau_f) = 0``, which is exactly the
 six-state filter with ``sig_f^2`` added to the measurement noise.
 
-- Gyro mode (Markley & Crassidis 2014 sec. 6.2.3): ``F = [[-[w x], -I], [0, 0]]``; the discrete
-  Phi is the exact transition for a rate held over the step; the discrete Q is the one of Crassidis &
-  Junkins 2012 eq. 7.43 (ARW ``sv``, rate random walk ``su``), plus the growth of attitude error while
+- Gyro mode (Markley & Crassidis 2014 ch. 6): ``F = [[-[w x], -I], [0, 0]]``; the discrete Phi is
+  the exact transition for a rate held over the step; the discrete Q is the one of Crassidis &
+  Junkins 2012 ch. 7 (ARW ``sv``, rate random walk ``su``), plus the growth of attitude error while
   a gyro sample is held for longer than its nominal interval (a gap in the gyro log): held white
   noise ``sv^2 s^2 / h`` and an unknown, steady angular acceleration ``acc`` (the rate keeps changing
   while it is held) giving ``acc^2 s^4 / 4``.
@@ -37,13 +37,13 @@ estimation. J. Guidance 5(5), 417-429.
 Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
 Control. Springer. Ch. 6.
 Crassidis, J. L. and Junkins, J. L. (2012). Optimal Estimation of Dynamic Systems, 2nd ed. CRC.
-Eq. 7.43 (gyro Q), ex. 5.1 (Rauch-Tung-Striebel smoother).
+Ch. 7 (gyro model and its discrete Q), ex. 5.1 (Rauch-Tung-Striebel smoother).
 Rauch, H. E., Tung, F. and Striebel, C. T. (1965). Maximum likelihood estimates of linear dynamic
-systems. AIAA J. 3(8), 1445-1450.
+systems. AIAA J. 3(8), 1445-1450 (memory).
 Psiaki, M. L., Martel, F. and Pal, P. K. (1990). Three-axis attitude determination via Kalman
 filtering of magnetometer data. J. Guidance 13(3), 506-514.
 Bryson, A. E. and Henrikson, L. J. (1968). Estimation using sampled data containing sequentially
-correlated noise. J. Spacecraft 5(6), 662-665.
+correlated noise. J. Spacecraft and Rockets 5(6), 662-665 (memory).
 """
 
 from __future__ import annotations
@@ -227,7 +227,7 @@ def gyro_transition(w, dt, phi):
 
     ``phi11 = exp(-[w x] dt) = I - (sin th / |w|) [w x] + ((1 - cos th) / |w|^2) [w x]^2`` and
     ``phi12 = -int_0^dt exp(-[w x] s) ds = -(I dt - ((1 - cos th)/|w|^2) [w x] + ((th - sin th)/|w|^3)
-    [w x]^2)``, th = |w| dt: the closed forms of Crassidis & Junkins (2012) sec. 7.2.2 in this error
+    [w x]^2)``, th = |w| dt: the closed forms of Crassidis & Junkins (2012) ch. 7 (memory) in this error
     convention. ``[w x]^2 = w w^T - |w|^2 I``.
     """
     w2 = w[0] * w[0] + w[1] * w[1] + w[2] * w[2]

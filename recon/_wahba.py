@@ -12,9 +12,9 @@ References
 ----------
 Wahba, G. (1965). A least squares estimate of satellite attitude. SIAM Review 7(3), 409.
 Davenport, P. B. (1968). A vector approach to the algebra of rotations with applications.
-NASA TN D-4696 (the q-method).
+NASA TN D-4696 (the q-method) (memory).
 Keat, J. (1977). Analysis of least-squares attitude determination routine DOAOP. Computer Sciences
-Corp. CSC/TM-77/6034 (the q-method in its usual published form).
+Corp. CSC/TM-77/6034 (the q-method in its usual published form) (memory).
 Shuster, M. D. and Oh, S. D. (1981). Three-axis attitude determination from vector observations.
 J. Guidance 4(1), 70-77 (QUEST; the attitude covariance of the Wahba solution).
 Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
@@ -39,7 +39,7 @@ __all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion
 def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
     """The one place where another quaternion convention is converted into recon's (and back).
 
-    Shuster's convention, used by Markley & Crassidis (2014, eq. 2.125) and by CCSDS 504.0-B-2
+    Shuster's convention, used by Markley & Crassidis (2014, ch. 2 (memory)) and by CCSDS 504.0-B-2
     (annex F2, the ADM quaternion "from frame A to frame B"), writes the attitude matrix of a
     scalar-last quaternion as ``A = (q4^2 - |q|^2) I + 2 q q^T - 2 q4 [q x]``; scipy (recon's
     convention, :mod:`recon.frames`) has ``+ 2 w [v x]``. The same attitude matrix therefore has
@@ -55,7 +55,8 @@ def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
 
     References
     ----------
-    Shuster, M. D. (1993). A survey of attitude representations. J. Astronaut. Sci. 41(4), 439-517.
+    Shuster, M. D. (1993). A survey of attitude representations. J. Astronaut. Sci. 41(4), 439-517
+    (memory).
     """
     q = np.array(q_shuster, dtype=float, copy=True)
     q[..., :3] *= -1.0
@@ -73,7 +74,7 @@ class WahbaSolution:
         Wahba's loss ``1/2 sum a_i |b_i - A r_i|^2`` at the solution (unit vectors).
     covariance_rad2 : (3, 3)
         Attitude-error covariance in body axes, ``[sum a_i (I - b_i b_i^T)]^-1`` (Markley &
-        Crassidis 2014 eq. 5.96), with a_i = 1 / sigma_i^2 (rad^-2); infinite when the vectors are
+        Crassidis 2014 sec. 5.5), with a_i = 1 / sigma_i^2 (rad^-2); infinite when the vectors are
         all parallel.
     """
 
@@ -97,7 +98,7 @@ def davenport_q_method(b_body: np.ndarray, r_ref: np.ndarray, sigma_rad: np.ndar
 
     References
     ----------
-    Davenport (1968); Keat (1977); Markley & Crassidis (2014) sec. 5.3 (K matrix, eq. 5.17).
+    Davenport (1968); Keat (1977); Markley & Crassidis (2014) sec. 5.3 (the K matrix; section from memory).
     """
     b = np.asarray(b_body, float)
     r = np.asarray(r_ref, float)

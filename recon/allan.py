@@ -19,7 +19,7 @@ IEEE Std 952-1997 (R2008), revised as IEEE Std 952-2020. IEEE Standard Specifica
 Test Procedure for Single-Axis Interferometric Fiber Optic Gyros. Annex C (Allan variance).
 Riley, W. J. (2008). Handbook of Frequency Stability Analysis. NIST Special Publication 1065.
 El-Sheimy, N., Hou, H. and Niu, X. (2008). Analysis and modeling of inertial sensors using Allan
-variance. IEEE Trans. Instrum. Meas. 57(1), 140-149.
+variance. IEEE Trans. Instrum. Meas. 57(1), 140-149 (memory).
 """
 
 from __future__ import annotations

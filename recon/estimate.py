@@ -198,7 +198,7 @@ class AttitudeHistory:
         return self.smoothed.covariance
 
     def nis_interval(self, p: float = 0.95) -> tuple[float, float]:
-        """Two-sided chi-square interval of one NIS value (Bar-Shalom et al. 2001 sec. 5.4)."""
+        """Two-sided chi-square interval of one NIS value (Bar-Shalom et al. 2001, ch. 5 (memory))."""
         lo, hi = stats.chi2.ppf([(1 - p) / 2, (1 + p) / 2], self.nis_dof)
         return float(lo), float(hi)
 

@@ -50,7 +50,7 @@ def test_propagation_matches_kinematics_dA_dt():
 
 @pytest.mark.parametrize("rate", [0.05, 1e-7])  # closed form and its Taylor branch
 def test_gyro_transition_equals_matrix_exponential(rate):
-    """Phi = expm(F dt) with F = [[-[w x], -I], [0, 0]] (Markley & Crassidis 2014 sec. 6.2.3)."""
+    """Phi = expm(F dt) with F = [[-[w x], -I], [0, 0]] (Markley & Crassidis 2014 ch. 6)."""
     w = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8]) * rate
     dt = 0.9
     phi = np.zeros((6, 6))
@@ -62,8 +62,8 @@ def test_gyro_transition_equals_matrix_exponential(rate):
 
 
 def test_gyro_process_noise_is_crassidis_junkins_form():
-    """Q = [[(sv^2 dt + su^2 dt^3/3) I, -(su^2 dt^2/2) I], [., su^2 dt I]] (Crassidis & Junkins 2012
-    eq. 7.43) with the book's example values sv = sqrt(10)*1e-7 rad/s^(1/2), su = sqrt(10)*1e-10
+    """Q = [[(sv^2 dt + su^2 dt^3/3) I, -(su^2 dt^2/2) I], [., su^2 dt I]] (Crassidis & Junkins 2012,
+    ch. 7) with the book's example values sv = sqrt(10)*1e-7 rad/s^(1/2), su = sqrt(10)*1e-10
     rad/s^(3/2), dt = 1 s; no gap (the sample is fresh) and no unmodelled acceleration."""
     sv, su, dt = np.sqrt(10) * 1e-7, np.sqrt(10) * 1e-10, 1.0
     nm = NoiseModel(mag_nT=1.0, gyro_arw_rad_sqrt_s=sv, gyro_bias_walk_rad_s_sqrt_s=su, rate_hold_accel_rad_s2=0.0,
@@ -266,7 +266,7 @@ def test_shuster_convention_conversion_matches_the_formula():
 
 def test_davenport_recovers_a_known_attitude_and_its_covariance():
     """Noise-free vectors give the attitude exactly; with noise, errors follow the Wahba covariance
-    [sum a_i (I - b_i b_i^T)]^-1 (Markley & Crassidis 2014 eq. 5.96): NEES averages 3."""
+    [sum a_i (I - b_i b_i^T)]^-1 (Markley & Crassidis 2014 sec. 5.5): NEES averages 3."""
     rng = np.random.default_rng(2)
     truth = Rotation.random(random_state=rng)
     r = rng.normal(size=(5, 3))

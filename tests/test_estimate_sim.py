@@ -68,7 +68,7 @@ def test_nominal_pass_accuracy_and_consistency(nominal_runs):
 
 def test_nominal_passes_nees_inside_chi_square_bounds(nominal_runs):
     """Average NEES of [attitude, gyro bias] over the two runs inside chi2.ppf([0.025, 0.975], 12) / 2
-    = [2.2, 11.7] (Bar-Shalom, Li & Kirubarajan 2001 sec. 5.4; each run counted once, as in
+    = [2.2, 11.7] (Bar-Shalom, Li & Kirubarajan 2001, ch. 5 (memory); each run counted once, as in
     test_estimate.py). Measured: forward 5.1 and 6.5 (mean 5.8), smoothed 6.0 and 5.7 (mean 5.8)."""
     m = len(nominal_runs)
     lo, hi = stats.chi2.ppf([0.025, 0.975], 6 * m) / m
