@@ -297,6 +297,17 @@ def _quantum(x: np.ndarray) -> float:
     return float(d.min()) if d.size else 0.0
 
 
+def _sample_noise(log: SensorLog, spec, order: np.ndarray) -> float | None:
+    """The stated noise as a per-sample standard deviation in the file's unit: the magnetometer's
+    ``noise`` is one already; the gyro's is an angle random walk N (unit/sqrt(Hz)), whose Allan
+    deviation is N / sqrt(tau) (IEEE Std 952-1997), so N sqrt(f) per sample at sample rate f."""
+    noise = getattr(spec, "noise", None)
+    if noise is None or log.name != "gyro":
+        return noise
+    _, period = find_gaps(log.time_utc[order])
+    return float(noise / np.sqrt(period)) if np.isfinite(period) and period > 0 else None
+
+
 def _spikes(book: _Book, order: np.ndarray, noise: float | None, saturated: np.ndarray,
             groups: list[np.ndarray], notes: list[str]) -> np.ndarray:
     """Hampel tests on values, rates and magnitude, per sampling group. Rows with a saturated axis
@@ -399,7 +410,7 @@ def _clean_log(log: SensorLog, mission: Mission) -> tuple[CleanedLog, pd.DataFra
 
     if log.name in ("magnetometer", "gyro") and order.size >= 3:
         groups = _sampling_groups(log, order, mission)
-        order = _spikes(book, order, getattr(spec, "noise", None), saturation(order), groups, notes)
+        order = _spikes(book, order, _sample_noise(log, spec, order), saturation(order), groups, notes)
 
     sat = saturation(order)
     parts = [book.ledger()]

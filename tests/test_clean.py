@@ -385,3 +385,26 @@ def test_simulated_pass_with_every_data_fault(tmp_path, seed, overrides):
     # every log of the simulator's truth starts and ends where the cleaned log does
     assert c.magnetometer.time_utc[0] == sim.time_utc[0]
     assert any(a.code == "clock_rollover" for a in c.anomalies)
+
+
+def test_gyro_angle_random_walk_becomes_per_sample_noise(tmp_path):
+    from recon.clean import _sample_noise
+
+    gyro = """
+[gyro]
+file = "gyro.csv"
+time = { column = "t", format = "unix" }
+columns = ["wx", "wy", "wz"]
+unit = "deg/s"
+sensor_to_body = [[1, 0, 0], [0, 1, 0], [0, 0, 1]]
+noise = 0.004
+"""
+    t = np.arange(40) / 20.0  # 20 Hz
+    (tmp_path / "gyro.csv").write_text("t,wx,wy,wz\n" + "".join(f"{T0 + x:.3f},1,2,3\n" for x in t))
+    m = write_pass(tmp_path, t, np.full((40, 3), 20000.0))
+    (tmp_path / "mission.toml").write_text((tmp_path / "mission.toml").read_text() + gyro)
+    m = load_mission(tmp_path / "mission.toml")
+    log = load_pass(m).gyro
+    # IEEE Std 952-1997: Allan deviation N / sqrt(tau) for angle random walk; tau = 1 / 20 s
+    assert _sample_noise(log, m.gyro, np.arange(40)) == pytest.approx(0.004 * np.sqrt(20.0), rel=1e-9)
+    assert _sample_noise(load_pass(m).magnetometer, m.magnetometer, np.arange(40)) is None
