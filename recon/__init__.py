@@ -1,6 +1,7 @@
 """recon: reconstruct one pass of a magnetically controlled small satellite from its downlinked logs.
 
-The public API for notebooks; the CLI (``recon ...``) calls the same functions.
+The public API for notebooks; the CLI (``recon ...``) calls the same functions. Heavier stages are
+imported on first use, so ``import recon`` stays quick.
 """
 
 from .anomaly import Anomaly
@@ -9,4 +10,23 @@ from .errors import InputError
 
 __version__ = "0.1.0"
 
-__all__ = ["Anomaly", "InputError", "Mission", "load_mission", "__version__"]
+__all__ = [
+    "Anomaly", "InputError", "Mission", "load_mission", "__version__",
+    "load_pass", "clean_pass", "reference_field", "orbit_at", "calibrate_pass", "estimate_attitude",
+    "judge_pass", "run_pass", "inspect_pass", "simulate_pass", "write_aem", "read_aem",
+]
+
+_LAZY = {
+    "load_pass": "load", "clean_pass": "clean", "reference_field": "field", "orbit_at": "orbit",
+    "calibrate_pass": "calibrate", "estimate_attitude": "estimate", "judge_pass": "judge",
+    "run_pass": "pipeline", "inspect_pass": "pipeline", "simulate_pass": "simulate",
+    "write_aem": "aem", "read_aem": "aem",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+    raise AttributeError(f"module 'recon' has no attribute {name!r}")

@@ -149,3 +149,10 @@ def test_cli_usage_error_is_one_line():
     r = subprocess.run([sys.executable, "-m", "recon", "frobnicate"], capture_output=True, text=True, timeout=120)
     assert r.returncode == 2
     assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_public_api_names_resolve():
+    import recon
+
+    for name in recon.__all__:
+        assert getattr(recon, name) is not None, name
