@@ -121,7 +121,7 @@ def _matrix_rows(k: Any, sig: Any, fmt: str = ".1f") -> list[list[str]]:
         for c in range(3):
             val = None if k is None else k[r][c]
             sd = None if sig is None else sig[r][c]
-            cells.append("undetermined" if val is None else f"{_num(val, fmt)} &plusmn; {_num(sd, '.2g')}")
+            cells.append("undetermined" if val is None else f"{_num(val, fmt)} &plusmn; {_num(sd, fmt)}")
         rows.append(cells)
     return rows
 
@@ -130,10 +130,21 @@ def _section_magnetometer(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     cal = s.get("calibration")
     if not cal:
         return "<h2>Magnetometer</h2>" + _skip_note(s, "calibration")
+    head_k, head_s = "crosstalk_nT_per_A", "crosstalk_nT_per_A_sigma"
+    if cal.get("crosstalk_combined_nT_per_A") is not None:
+        head_k, head_s = "crosstalk_combined_nT_per_A", "crosstalk_combined_nT_per_A_sigma"
     parts = ["<h2>Magnetometer</h2>",
-             "<p>Coil crosstalk K (nT per A, magnetometer axes; one column per coil), 1-sigma:</p>",
-             _table(["", "coil x", "coil y", "coil z"],
-                    _matrix_rows(cal.get("crosstalk_nT_per_A"), cal.get("crosstalk_nT_per_A_sigma")))]
+             "<p>Coil crosstalk K (nT per A, magnetometer axes; one column per coil), with 1-sigma. "
+             "This is the estimate removed from the field before the attitude is estimated.</p>",
+             _table(["", "coil x", "coil y", "coil z"], _matrix_rows(cal.get(head_k), cal.get(head_s), ".0f"))]
+    detail = []
+    for key, what in (("crosstalk_nT_per_A", "from the field-magnitude fit against the reference field"),
+                      ("crosstalk_step_nT_per_A", "from the magnetometer steps at coil switching")):
+        if cal.get(key) is not None and key != head_k:
+            detail.append(f"<p>{_e(what)}:</p>" + _table(["", "coil x", "coil y", "coil z"],
+                                                          _matrix_rows(cal.get(key), cal.get(key + "_sigma"), ".0f")))
+    if detail:
+        parts.append("<details><summary>The two independent estimates</summary>" + "".join(detail) + "</details>")
     full = cal.get("contamination_full_current_nT")
     if full is not None:
         parts.append("<p>Contamination at full current, per magnetometer axis (nT): "
@@ -147,12 +158,14 @@ def _section_magnetometer(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     if res:
         parts.append(f"<p>|b| against the reference field, RMS: before {_num(res.get('before'), '.0f')} nT, "
                      f"after {_num(res.get('after'), '.0f')} nT.</p>")
-    agree = cal.get("step_estimate_agrees")
-    if agree is not None:
-        parts.append(f"<p>Independent estimate from current steps {'agrees' if agree else 'does not agree'} "
-                     f"with the fit within uncertainty.</p>")
-    for reason in cal.get("undetermined", []) or []:
-        parts.append(f'<p class="skip">Undetermined: {_e(reason)}</p>')
+    agree = cal.get("crosstalk_agreement") or {}
+    if isinstance(agree, Mapping) and agree.get("agree") is not None:
+        parts.append(f"<p>The two independent crosstalk estimates {'agree' if agree['agree'] else 'do NOT agree'}"
+                     f" within their uncertainty (p = {_num(agree.get('p_value'), '.2g')}).</p>")
+    und = cal.get("undetermined") or {}
+    items = und.items() if isinstance(und, Mapping) else ((None, r) for r in und)
+    for name, reason in items:
+        parts.append(f'<p class="skip">Undetermined{" " + _e(name) if name else ""}: {_e(reason)}</p>')
     parts.append(_figures(figs, "magnetometer"))
     return "".join(parts)
 
