@@ -1,4 +1,4 @@
-"""The anomaly record that every stage emits and the report lists (DESIGN.md "Outputs")."""
+"""The anomaly record that every stage emits and the report lists."""
 
 from __future__ import annotations
 
@@ -25,7 +25,7 @@ class Anomaly:
     Parameters
     ----------
     code : str
-        snake_case code from DESIGN.md (telemetry_gap, coil_polarity_inverted, ...).
+        snake_case code (telemetry_gap, coil_polarity_inverted, ...).
     severity : str
         "info", "warning" or "critical".
     evidence : str

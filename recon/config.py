@@ -1,4 +1,4 @@
-"""Read and check a mission file (TOML, see DESIGN.md "Mission file").
+"""Read and check a mission file (TOML; the keys are listed in DEVELOPERS.md, "Mission file").
 
 Every problem raises :class:`recon.errors.InputError` naming the file, the dotted key, what was
 expected and what was found. Paths in the file are resolved relative to the file. Nothing here reads

@@ -12,7 +12,7 @@ Frames
 ------
 - GCRF: the inertial frame. Here realised with the IAU 2006/2000A precession-nutation and the Earth
   rotation angle (IERS Conventions 2010), through pyerfa's ``c2t06a``; polar motion is neglected
-  (about 10 m at the Earth's surface, DESIGN.md), so ITRF here is the terrestrial intermediate frame.
+  (about 10 m at the Earth's surface), so ITRF here is the terrestrial intermediate frame.
 - TEME: the frame of SGP4's output, as defined in Vallado, Crawford, Hujsak & Kelso (2006), "Revisiting
   Spacetrack Report #3", AIAA 2006-6753, Appendix C: ``r_PEF = R3(GMST82) r_TEME`` with GMST from the
   IAU-82 formula. TEME exists only on the way to ITRF and GCRF.
