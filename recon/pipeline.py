@@ -123,9 +123,9 @@ def _reference(mission: Mission, cleaned, skipped: dict[str, str], progress) -> 
         return None
     from .field import reference_field
 
-    _say(progress, "reference field (IGRF-14 along the orbit)", 0.0)
+    _say(progress, "reference field (IGRF-14)", 0.0)
     ref = reference_field(mission, cleaned.magnetometer.time_utc)
-    _say(progress, "reference field (IGRF-14 along the orbit)", 1.0)
+    _say(progress, "reference field (IGRF-14)", 1.0)
     return ref
 
 
@@ -204,7 +204,8 @@ def _estimate(mission: Mission, cleaned, cal, ref, progress):
         coil_t_utc=None if coils is None else coils.time_utc,
         i_coil_A=None if coils is None else coils.values,
         dipole_per_amp=None if mission.coils is None else mission.coils.dipole_per_amp,
-        r_gcrf_km=ref.r_gcrf_km, progress=progress)
+        r_gcrf_km=ref.r_gcrf_km,
+        progress=None if progress is None else (lambda stage, f: progress(f"attitude: {stage}", f)))
 
 
 def _judge(mission: Mission, cleaned, cal, ref, hist):
