@@ -171,7 +171,8 @@ def field_along_orbit(orbit_spec, time_utc: np.ndarray, *, grid_step_s: float = 
     The model is evaluated on a grid no coarser than ``grid_step_s`` spanning the samples and
     splined (not-a-knot cubic, per GCRF component) to the samples; runs of the grid broken by invalid
     orbit rows are splined separately, and samples no run covers are evaluated directly. With fewer
-    samples than grid points everything is evaluated directly.
+    samples than grid points everything is evaluated directly. Instants outside a position log's or
+    an OEM file's coverage are NaN rows with the reason (an error only when no instant is covered).
 
     Parameters
     ----------
@@ -192,7 +193,7 @@ def field_along_orbit(orbit_spec, time_utc: np.ndarray, *, grid_step_s: float = 
     _check_span(t, source)
     orb = _orbit_dense(orbit_spec, t, dut1_s, source)
     if orb is None:
-        orb = orbit_at(orbit_spec, t, dut1_s=dut1_s, source=source)
+        orb = orbit_at(orbit_spec, t, dut1_s=dut1_s, source=source, outside="nan")
     return field_for_orbit(orbit_spec, orb, grid_step_s=grid_step_s, dut1_s=dut1_s, source=source)
 
 
@@ -207,7 +208,7 @@ def _orbit_dense(orbit_spec, t: np.ndarray, dut1_s: float, source) -> OrbitState
     if n_nodes < 4 or 4 * n_nodes > len(t):
         return None
     nodes = np.linspace(ns[0], ns[-1], n_nodes).round().astype(np.int64)
-    g = orbit_at(orbit_spec, nodes.astype("datetime64[ns]"), dut1_s=dut1_s, source=source)
+    g = orbit_at(orbit_spec, nodes.astype("datetime64[ns]"), dut1_s=dut1_s, source=source, outside="nan")
     if not np.all(g.valid):
         return None
     xg, x = (nodes - ns[0]) / 1e9, (ns - ns[0]) / 1e9
@@ -242,7 +243,7 @@ def field_for_orbit(orbit_spec, orb, *, grid_step_s: float = GRID_STEP_s, dut1_s
         todo = valid.copy()
         if n_grid >= 4 and n_grid < np.count_nonzero(valid):
             grid = np.linspace(t0, t1, n_grid).round().astype(np.int64).astype("datetime64[ns]")
-            g = orbit_at(orbit_spec, grid, dut1_s=dut1_s, source=source)
+            g = orbit_at(orbit_spec, grid, dut1_s=dut1_s, source=source, outside="nan")
             b_grid = igrf_gcrf_nT(grid, g.r_itrf_km, dut1_s=dut1_s, source=source)
             xg = (grid.astype(np.int64) - t0) / 1e9
             x = (ns - t0) / 1e9

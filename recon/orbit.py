@@ -392,20 +392,29 @@ def read_positions(spec: PositionsSpec) -> tuple[np.ndarray, np.ndarray]:
     return t[keep], xyz[keep]
 
 
-def _coverage_error(path: Path, t: np.ndarray, lo: np.datetime64, hi: np.datetime64, what: str) -> None:
-    ok = t[~np.isnat(t)]
-    if len(ok) and (ok.min() < lo or ok.max() > hi):
+def _coverage(path: Path, t: np.ndarray, lo: np.datetime64, hi: np.datetime64, what: str,
+              outside: str = "raise") -> np.ndarray:
+    """(N,) bool: instants outside [lo, hi]. With ``outside="raise"`` any such instant raises; with
+    ``"nan"`` only a set of instants none of which is covered raises (the rows become NaN rows)."""
+    ok = ~np.isnat(t)
+    out = ok & ((t < lo) | (t > hi))
+    if np.any(out) and (outside == "raise" or not np.any(ok & ~out)):
+        tt = t[ok]
         raise InputError(f"expected times within the {what}'s coverage {lo} to {hi} UTC, got times from "
-                         f"{ok.min()} to {ok.max()}", path)
+                         f"{tt.min()} to {tt.max()}", path)
+    return out
 
 
 def orbit_from_positions(spec: PositionsSpec, time_utc: np.ndarray, *, dut1_s: float = 0.0,
-                         max_gap_s: float = MAX_GAP_s) -> OrbitState:
+                         max_gap_s: float = MAX_GAP_s, outside: str = "raise") -> OrbitState:
     """Orbit from a position log (ITRF or GCRF), interpolated in GCRF.
 
     The log's positions are rotated to GCRF at their own times, then each run without a gap longer
     than ``max_gap_s`` is interpolated with a not-a-knot cubic spline (scipy ``CubicSpline``); the
     velocity is the spline's derivative. Instants inside a longer gap are NaN rows with a reason.
+
+    ``outside="nan"`` makes instants before the first or after the last logged position NaN rows
+    with a reason instead of an error (as long as some instant is covered).
 
     Raises
     ------
@@ -414,7 +423,8 @@ def orbit_from_positions(spec: PositionsSpec, time_utc: np.ndarray, *, dut1_s: f
     """
     t, reason = _times(time_utc)
     t_log, p_log = read_positions(spec)
-    _coverage_error(Path(spec.file), t, t_log[0], t_log[-1], "position log")
+    out = _coverage(Path(spec.file), t, t_log[0], t_log[-1], "position log", outside)
+    reason[out] = f"outside the position log's coverage {t_log[0]} to {t_log[-1]} UTC"
     if spec.frame == "itrf":
         q, angle = _earth_orientation(t_log, dut1_s)
         p_log = _apply_t(q, _spin(-angle, p_log))
@@ -440,7 +450,8 @@ def orbit_from_positions(spec: PositionsSpec, time_utc: np.ndarray, *, dut1_s: f
 
 
 # ---------------------------------------------------------------------------------------- OEM
-def orbit_from_oem(path: str | Path, time_utc: np.ndarray, *, dut1_s: float = 0.0) -> OrbitState:
+def orbit_from_oem(path: str | Path, time_utc: np.ndarray, *, dut1_s: float = 0.0,
+                   outside: str = "raise") -> OrbitState:
     """Orbit from a CCSDS OEM file, interpolated per segment as the file names (see :mod:`recon.oem`).
 
     Each segment's states are first expressed in GCRF (Earth-fixed ones with
@@ -457,10 +468,11 @@ def orbit_from_oem(path: str | Path, time_utc: np.ndarray, *, dut1_s: float = 0.
     segments = read_oem(path)
     lo = min(s.start_utc for s in segments)
     hi = max(s.stop_utc for s in segments)
-    _coverage_error(path, t, lo, hi, "OEM file")
+    out = _coverage(path, t, lo, hi, "OEM file", outside)
+    reason[out] = f"outside the OEM file's coverage {lo} to {hi} UTC"
     r = np.full((len(t), 3), np.nan)
     v = np.full((len(t), 3), np.nan)
-    done = np.isnat(t)
+    done = np.isnat(t) | out
     for seg in segments:
         inside = ~done & (t >= seg.start_utc) & (t <= seg.stop_utc)
         if not np.any(inside):
@@ -480,13 +492,13 @@ def orbit_from_oem(path: str | Path, time_utc: np.ndarray, *, dut1_s: float = 0.
             r[inside] = lagrange_interpolate(x_n, r_n, x, seg.degree)
             v[inside] = lagrange_interpolate(x_n, v_n, x, seg.degree)
         done |= inside
-    reason[~done] = "between OEM segments (no ephemeris)"
+    reason[~done & (reason == "")] = "between OEM segments (no ephemeris)"
     return _from_gcrf_nodes(t, reason, r, v, dut1_s, "oem")
 
 
 # ------------------------------------------------------------------------------------ dispatch
 def orbit_at(spec: OrbitSpec, time_utc: np.ndarray, *, dut1_s: float = 0.0,
-             source: str | Path | None = None) -> OrbitState:
+             source: str | Path | None = None, outside: str = "raise") -> OrbitState:
     """The orbit at the given instants, from whichever source the mission file names.
 
     Parameters
@@ -498,6 +510,9 @@ def orbit_at(spec: OrbitSpec, time_utc: np.ndarray, *, dut1_s: float = 0.0,
         UT1 - UTC in s (0 without Earth orientation data: at most 0.9 s of Earth rotation).
     source : str or Path, optional
         The mission file, named in errors about an inline TLE.
+    outside : "raise" or "nan"
+        For a position log or an OEM file: what an instant outside its coverage gives, an error or
+        a NaN row with a reason ("nan" still raises when no instant at all is covered).
 
     Returns
     -------
@@ -506,8 +521,8 @@ def orbit_at(spec: OrbitSpec, time_utc: np.ndarray, *, dut1_s: float = 0.0,
     if spec.tle is not None:
         return orbit_from_tle(spec.tle[0], spec.tle[1], time_utc, dut1_s=dut1_s, file=source)
     if spec.positions is not None:
-        return orbit_from_positions(spec.positions, time_utc, dut1_s=dut1_s)
+        return orbit_from_positions(spec.positions, time_utc, dut1_s=dut1_s, outside=outside)
     if spec.oem is not None:
-        return orbit_from_oem(spec.oem, time_utc, dut1_s=dut1_s)
+        return orbit_from_oem(spec.oem, time_utc, dut1_s=dut1_s, outside=outside)
     raise InputError("expected one of tle, tle_file, positions, oem in [orbit], got none", source,
                      key="orbit")

@@ -129,6 +129,20 @@ def _reference(mission: Mission, cleaned, skipped: dict[str, str], progress) -> 
     return ref
 
 
+def _reference_anomalies(ref) -> list[Anomaly]:
+    """A warning when some magnetometer samples have no reference field (outside the orbit's coverage
+    or in its gaps): they are left out of the calibration fit and the attitude updates."""
+    bad = ~np.isfinite(ref.b_gcrf_nT).all(axis=1)
+    if not np.any(bad):
+        return []
+    reasons = sorted({str(r) for r in ref.reason[bad] if r})
+    k = np.flatnonzero(bad)
+    return [Anomaly("reference_incomplete", "warning",
+                    f"{bad.sum()} of {len(bad)} magnetometer samples ({100 * bad.mean():.1f} %) have no reference "
+                    f"field ({'; '.join(reasons) or 'no orbit position'}); they are not used for the calibration "
+                    f"fit or the attitude updates", ref.time_utc[k[0]], ref.time_utc[k[-1]], value=float(bad.sum()))]
+
+
 def crosstalk_pass(mission_path: Path | str, out_root: Path | str = "reports") -> str:
     """Calibrate the magnetometer of one pass and return the crosstalk table as text."""
     from .calibrate import calibrate_pass, format_crosstalk_table
@@ -215,13 +229,17 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
     m_stb = mission.magnetometer.sensor_to_body
     b_sensor = mag.values @ m_stb  # (M^T b_body^T)^T: raw readings back in sensor axes, nT
     gyro = cleaned.gyro
-    w_cov = hist.smoothed.covariance[:, 3:6, 3:6] if hist.mode == "dynamics" else None
+    # the motion is judged where the rate, the attitude and the reference field all exist
+    sel = (np.isfinite(ref.b_gcrf_nT).all(axis=1) & np.isfinite(ref.r_gcrf_km).all(axis=1)
+           & np.isfinite(hist.w_body_rad_s).all(axis=1) & np.isfinite(hist.q_body_from_gcrf).all(axis=1))
+    w_cov = hist.smoothed.covariance[sel, 3:6, 3:6] if hist.mode == "dynamics" else None
     return judge_pass(
         controller=mission.controller, coils=mission.coils, inertia_kg_m2=mission.inertia_kg_m2,
         mag_sensor_to_body=m_stb, time_mag_utc=mag.time_utc, b_mag_sensor_nT=b_sensor,
         time_coil_utc=cleaned.coils.time_utc, i_coil_A=cleaned.coils.values,
-        time_utc=hist.time_utc, w_body_rad_s=hist.w_body_rad_s, q_body_from_gcrf=hist.q_body_from_gcrf,
-        b_gcrf_nT=ref.b_gcrf_nT, r_gcrf_km=ref.r_gcrf_km, w_cov_rad2_s2=w_cov,
+        time_utc=hist.time_utc[sel], w_body_rad_s=hist.w_body_rad_s[sel],
+        q_body_from_gcrf=hist.q_body_from_gcrf[sel],
+        b_gcrf_nT=ref.b_gcrf_nT[sel], r_gcrf_km=ref.r_gcrf_km[sel], w_cov_rad2_s2=w_cov,
         time_gyro_utc=None if gyro is None else gyro.time_utc,
         w_gyro_body_rad_s=None if gyro is None else gyro.values,
         K_nT_per_A=cal.crosstalk_combined_nT_per_A)
@@ -305,6 +323,8 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     skipped: dict[str, str] = {}
 
     ref = _reference(mission, cleaned, skipped, bar)
+    if ref is not None:
+        anomalies += _reference_anomalies(ref)
     _say(bar, "calibrate magnetometer", 0.0)
     cal = calibrate_pass(mission, cleaned, ref)
     _say(bar, "calibrate magnetometer", 1.0)

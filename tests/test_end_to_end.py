@@ -116,3 +116,21 @@ def test_cli_run_exit_status_reports_critical(runs, tmp_path):
     assert r.returncode == 1, r.stderr
     assert "coil_polarity_inverted" in r.stdout
     assert r.stderr == ""  # no progress bar when not on a terminal
+
+
+def test_pass_longer_than_its_position_log_keeps_going(tmp_path):
+    """A GNSS log that stops a little before the magnetometer: the samples without a position are left
+    out of calibration and attitude updates with a warning, instead of failing the whole pass."""
+    from recon.simulate import simulate_pass
+
+    sim = tmp_path / "sim"
+    simulate_pass("short", seed=3, out_dir=sim, duration_s=180.0)
+    log = sim / "positions.csv"
+    lines = log.read_text().splitlines()
+    log.write_text("\n".join(lines[:-20]) + "\n")  # the last 20 s of positions are missing
+    res = run_pass(sim / "mission.toml", tmp_path / "out", report=False)
+    codes = {a.code for a in res.anomalies}
+    assert "reference_incomplete" in codes
+    assert res.summary["estimate"] is not None
+    frac = [a.value for a in res.anomalies if a.code == "reference_incomplete"][0] / res.summary["estimate"]["samples"]
+    assert 0.05 < frac < 0.2  # ~20 s of 180 s

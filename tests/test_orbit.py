@@ -426,3 +426,21 @@ def test_orbit_at_from_a_mission_file(mission_dir):
     # the demo orbit: ~520 km up, speed ~7.6 km/s (vis-viva for a = 6,900 km: 7.60 km/s)
     assert np.all((st.h_km > 480) & (st.h_km < 560))
     np.testing.assert_allclose(np.linalg.norm(st.v_gcrf_km_s, axis=1), 7.6, atol=0.05)
+
+
+def test_partial_coverage_gives_nan_rows_on_request(tmp_path, demo_truth):
+    """With outside="nan" a pass that runs past the end of the log keeps its covered samples; the rest
+    are NaN rows with a reason. When nothing is covered it is still an error."""
+    st = demo_truth
+    _write_log(tmp_path / "gnss.csv", st.time_utc[:601:10], st.r_itrf_km[:601:10] * 1e3)
+    spec = _positions_spec(tmp_path / "gnss.csv")
+    o = orbit.orbit_from_positions(spec, st.time_utc[[599, 610]], outside="nan")
+    assert o.valid.tolist() == [True, False]
+    assert "outside the position log's coverage" in o.reason[1]
+    assert np.isnan(o.r_gcrf_km[1]).all() and np.isfinite(o.r_gcrf_km[0]).all()
+    with pytest.raises(InputError, match="expected times within the position log"):
+        orbit.orbit_from_positions(spec, st.time_utc[[700, 710]], outside="nan")
+    path = write_oem(tmp_path / "short.oem", st.time_utc[:601:60], st.r_gcrf_km[:601:60],
+                     st.v_gcrf_km_s[:601:60], "DEMO-SAT", "2026-001A")
+    o = orbit.orbit_from_oem(path, st.time_utc[[0, 700]], outside="nan")
+    assert o.valid.tolist() == [True, False] and "outside the OEM file's coverage" in o.reason[1]
