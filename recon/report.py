@@ -38,6 +38,8 @@ def _num(x: Any, fmt: str = ".3g") -> str:
         return "&ndash;"
     if isinstance(x, bool):
         return _e(x)
+    if isinstance(x, int) and fmt.endswith("g"):
+        return _e(f"{x:,}")  # counts are shown whole
     if isinstance(x, int | float):
         return _e(format(x, fmt))
     return _e(x)
