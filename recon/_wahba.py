@@ -4,9 +4,9 @@ A single field vector fixes only two of the three attitude angles at one instant
 gyro carries every body-frame sample back to the window's first instant (``A(t_i) = Delta_i A0``,
 so ``A0 b_ref(t_i) = Delta_i^T b_i``), and because the field direction turns in the inertial frame
 as the satellite moves along its orbit, the pairs ``(Delta_i^T b_i, b_ref(t_i))`` fix A0 completely.
-Davenport's q-method solves the weighted Wahba problem; a small least-squares refinement then
-estimates A0 and a constant gyro bias together, since a bias of 0.2 deg/s integrates to tens of
-degrees over such a window.
+Davenport's q-method solves the weighted Wahba problem; a least-squares refinement from several
+starts about the field direction then estimates A0 and a constant gyro bias together, since a bias
+of 0.2 deg/s integrates to tens of degrees over such a window and the cost has more than one minimum.
 
 References
 ----------
@@ -203,18 +203,34 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
                             t_gyro: np.ndarray, w_gyro: np.ndarray, *, sigma_vec_nT: float,
                             sigma_bias0_rad_s: float, window_s: float = 120.0,
                             max_window_s: float = 600.0, min_turn_deg: float = 15.0,
+                            n_starts: int = 8, first_s: float = 20.0,
                             floor_att_rad: float = np.deg2rad(3.0),
                             floor_bias_rad_s: float = np.deg2rad(0.05)) -> InitialState:
     """Attitude and gyro bias at t_mag[0] from the opening window, no prior needed.
 
     The window is at least ``window_s`` long and is stretched (up to ``max_window_s``) until the
     reference field has turned ``min_turn_deg`` in GCRF, so that the rotation about the field is
-    fixed. Steps: (1) gyro integration with zero bias and Davenport's q-method on the de-rotated
-    pairs; (2) least squares on A0 and a constant bias over the first 30 s, then (3) over the whole
-    window. The starting covariance is the least-squares covariance scaled up by the number of
-    vectors (the field-model error is correlated over the whole window, so the vectors are not
-    independent), floored at ``floor_att_rad`` and ``floor_bias_rad_s`` (common practice, no source:
-    a start a few degrees off is well inside the filter's linear range).
+    fixed. Steps:
+
+    1. Davenport's q-method on the first ``first_s`` seconds, the body vectors carried back with the
+       gyro (zero bias): two angles are good, the rotation about the field is barely determined
+       because the field has hardly turned yet.
+    2. ``n_starts`` starts spread evenly about the reference field direction (GCRF), each refined by
+       least squares on A0 and a constant bias over the whole window.
+    3. The start with the smallest cost wins.
+
+    Step 2 matters: the cost in (A0, bias) has several minima (an error about the field axis traded
+    against a bias that turns the body vectors the other way). A single start, refined first over
+    30 s (where the rotation about the field is not yet determined) and then over the window, ended
+    in a wrong minimum 30-170 deg off in 15 of 120 simulated detumble openings, although its fit was
+    visibly worse (residual 130-310 nT against 100-120 nT at the right one). Eight starts refined
+    directly over the whole window found the right one in all 120; the right basin spans about half
+    the circle about the field, so three to eight of the eight starts end in it.
+
+    The starting covariance is the least-squares covariance scaled up by the number of vectors (the
+    field-model error is correlated over the whole window, so the vectors are not independent),
+    floored at ``floor_att_rad`` and ``floor_bias_rad_s`` (common practice, no source: a start a few
+    degrees off is well inside the filter's linear range).
 
     Parameters
     ----------
@@ -222,6 +238,8 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
     t_gyro : (G,) s; w_gyro : (G, 3) rad/s body
     sigma_vec_nT : float, 1-sigma per axis of one field vector (sensor plus field model), nT
     sigma_bias0_rad_s : float, prior 1-sigma of the gyro bias (weights the bias in the fit)
+    n_starts : int, starts about the field direction (at least 1)
+    first_s : float, length of the q-method window of step 1, s
     """
     t0 = float(t_mag[0])
     w = _window(t_mag, b_ref_nT, t0, window_s, max_window_s, np.deg2rad(min_turn_deg))
@@ -233,28 +251,35 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
     bmag = float(np.median(np.linalg.norm(bq, axis=1)))
     sig_ang = sigma_vec_nT / bmag
 
-    def delta(bias):
-        return integrate_gyro(t_gyro, w_gyro, np.asarray(bias, float), tq)
+    first = np.nonzero(tq <= t0 + min(first_s, w))[0]
+    if len(first) < 2:
+        first = np.arange(min(2, len(tq)))
+    d0 = Rotation.from_quat(integrate_gyro(t_gyro, w_gyro, np.zeros(3), tq[first]))
+    a_first = Rotation.from_quat(davenport_q_method(d0.inv().apply(bq[first]), rq[first], sig_ang).q_body_from_gcrf)
+    axis = rq[first].mean(axis=0)
+    axis = axis / np.linalg.norm(axis)
 
-    d0 = Rotation.from_quat(delta(np.zeros(3)))
-    sol = davenport_q_method(d0.inv().apply(bq), rq, sig_ang)
-    a0 = Rotation.from_quat(sol.q_body_from_gcrf)
-
-    def residuals(p, sel):
-        a = Rotation.from_rotvec(-p[:3]) * a0
+    def residuals(p, sel, a_ref):
+        a = Rotation.from_rotvec(-p[:3]) * a_ref
         dq = Rotation.from_quat(integrate_gyro(t_gyro, w_gyro, p[3:], tq[sel]))
         pred = (dq * a).apply(rq[sel])
         res = ((pred - bq[sel]) / sigma_vec_nT).ravel()
         return np.r_[res, p[3:] / sigma_bias0_rad_s]
 
-    p = np.zeros(6)
-    short = np.nonzero(tq <= t0 + min(30.0, w))[0]
-    for sel in (short, np.arange(len(tq))):
-        if len(sel) < 4:
-            continue
-        fit = least_squares(residuals, p, args=(sel,), method="lm", x_scale=np.r_[np.full(3, 0.05),
-                                                                                   np.full(3, 1e-3)])
-        p = fit.x
+    whole = np.arange(len(tq))
+    costs = []
+    best = None
+    for j in range(max(int(n_starts), 1)):
+        # A0 R_axis(phi) leaves A0 r unchanged for r along the axis: the same first-window fit, another
+        # rotation about the field
+        a_ref = a_first * Rotation.from_rotvec(axis * 2.0 * np.pi * j / max(int(n_starts), 1))
+        fit = least_squares(residuals, np.zeros(6), args=(whole, a_ref), method="lm",
+                            x_scale=np.r_[np.full(3, 0.05), np.full(3, 1e-3)])
+        costs.append(float(fit.cost))
+        if best is None or fit.cost < best[0].cost:
+            best = (fit, a_ref)
+    fit, a0 = best
+    p = fit.x
     jac = fit.jac
     try:
         cov = np.linalg.inv(jac.T @ jac)
@@ -267,8 +292,10 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
     s_b = np.minimum(np.maximum(np.nan_to_num(s_b, nan=sigma_bias0_rad_s, posinf=sigma_bias0_rad_s),
                                 floor_bias_rad_s), sigma_bias0_rad_s)
     q0 = (Rotation.from_rotvec(-p[:3]) * a0).as_quat()
-    rms = float(np.sqrt(np.mean(residuals(p, np.arange(len(tq)))[:-3] ** 2)) * sigma_vec_nT)
-    return InitialState(q0 if q0[3] >= 0 else -q0, p[3:].copy(), s_att, s_b, "q-method+gyro-bias-lsq", w,
-                        {"vectors": int(len(tq)), "residual_rms_nT": rms,
+    rms = float(np.sqrt(np.mean(residuals(p, whole, a0)[:-3] ** 2)) * sigma_vec_nT)
+    agree = int(sum(c <= 1.01 * costs[int(np.argmin(costs))] for c in costs))
+    return InitialState(q0 if q0[3] >= 0 else -q0, p[3:].copy(), s_att, s_b, "multi-start q-method+gyro-bias-lsq", w,
+                        {"vectors": int(len(tq)), "residual_rms_nT": rms, "starts": len(costs),
+                         "starts_at_best": agree,
                          "field_turn_deg": float(np.rad2deg(np.arccos(np.clip(
                              rq[0] @ rq[-1] / np.linalg.norm(rq[0]) / np.linalg.norm(rq[-1]), -1, 1))))})
