@@ -6,7 +6,7 @@ must be explained by a small, nearly constant bias. A gyro stuck at one value, o
 output does not follow the field's motion is declared dead (anomaly ``gyro_dead``) and the pass is
 reconstructed in dynamics mode: attitude and body rate propagated with Euler's equations under the
 logged coil dipole and the gravity-gradient torque, corrected by the magnetometer only, as in Psiaki,
-Martel & Pal (1990). A step in the kinematic bias between windows is a ``gyro_bias_jump``.
+Martel & Pal (1990). A step in the bias of a live gyro is found in :mod:`recon._bias_step`.
 
 References
 ----------
@@ -32,7 +32,7 @@ from ._wahba import InitialState, davenport_q_method, initial_state_with_gyro
 from .allan import white_noise_from_differences
 from .anomaly import Anomaly
 
-__all__ = ["GyroCheck", "check_gyro", "BiasStep", "find_bias_step", "step_mean_dipole", "coil_log_with_off_windows",
+__all__ = ["GyroCheck", "check_gyro", "step_mean_dipole", "coil_log_with_off_windows",
            "local_slope", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
 
 _NS = 1_000_000_000
@@ -201,111 +201,6 @@ def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body
                                     f"satellite turns too slowly to test the output against the field.",
                              float(t_gyro[0]), float(t_gyro[-1]))
     return GyroCheck(True, "gyro not stuck; the satellite turns too slowly for a kinematic test.")
-
-
-@dataclass(frozen=True)
-class BiasStep:
-    """A step in the gyro bias found from the kinematic bias of successive windows.
-
-    Attributes
-    ----------
-    t_s : float, time of the step (s since the epoch)
-    delta_rad_s : (3,) change of bias, body frame
-    z : (3,) significance per axis (change over its 1-sigma)
-    before_rad_s, after_rad_s : (3,) mean kinematic bias on each side
-    window_s : float
-    """
-
-    t_s: float
-    delta_rad_s: np.ndarray
-    z: np.ndarray
-    before_rad_s: np.ndarray
-    after_rad_s: np.ndarray
-    window_s: float
-
-    def anomaly(self, t_epoch_ns: int) -> Anomaly:
-        ax = int(np.argmax(np.abs(self.z)))
-        d = np.rad2deg(self.delta_rad_s)
-        t = _at(t_epoch_ns, self.t_s)
-        half = np.timedelta64(int(self.window_s * _NS), "ns")
-        return Anomaly("gyro_bias_jump", "warning",
-                       f"gyro bias stepped by ({d[0]:+.3f}, {d[1]:+.3f}, {d[2]:+.3f}) deg/s (body x, y, z) "
-                       f"near {np.datetime_as_string(t, unit='s')}Z: kinematic bias from gyro versus field motion "
-                       f"{np.rad2deg(self.before_rad_s[ax]):+.3f} deg/s before and "
-                       f"{np.rad2deg(self.after_rad_s[ax]):+.3f} deg/s after on axis {'xyz'[ax]} "
-                       f"({abs(self.z[ax]):.0f} sigma, {self.window_s:.0f} s windows). The filter was rerun with "
-                       f"the bias free to move at that instant.",
-                       t - half, t + half, axis="xyz"[ax], value=float(d[ax]))
-
-
-def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, q_body_from_gcrf: np.ndarray,
-                   t_gyro: np.ndarray, w_gyro: np.ndarray, bias_walk_rad_s_sqrt_s: float, *,
-                   window_s: float = 30.0, z_min: float = 8.0, min_step_rad_s: float = 0.02 * _DEG,
-                   min_windows: int = 4) -> BiasStep | None:
-    """Look for one step in the gyro bias.
-
-    In each ``window_s`` window, ``beta`` solves ``db/dt - A db_ref/dt + w_g x b = -[b x] beta`` in
-    least squares (A from the smoothed attitude). The best single split of the window series is the
-    one with the largest change of mean bias over its standard error (inflated by the bias random
-    walk over the pass); it is reported when that exceeds ``z_min`` on some axis and the change is
-    larger than ``min_step_rad_s`` and than five times the random walk's spread over the pass.
-
-    Returns
-    -------
-    BiasStep or None
-    """
-    bdot = local_slope(t_mag, b_body_nT, 1.0)
-    rdot = local_slope(t_mag, b_ref_nT, 1.0)
-    a_rdot = Rotation.from_quat(q_body_from_gcrf).apply(np.nan_to_num(rdot))
-    wg = _gyro_at(t_gyro, w_gyro, t_mag, 1.0)
-    e = bdot - a_rdot + np.cross(wg, b_body_nT)
-    ok = np.all(np.isfinite(e), axis=1)
-    edges = np.arange(t_mag[0], t_mag[-1] + window_s, window_s)
-    est, var, tc = [], [], []
-    # slopes of neighbouring samples share data: use every tenth sample as roughly independent
-    for a, b in zip(edges[:-1], edges[1:], strict=False):
-        sel = np.nonzero(ok & (t_mag >= a) & (t_mag < b))[0][::10]
-        if len(sel) < 6:
-            continue
-        bb = b_body_nT[sel]
-        m = np.zeros((len(sel), 3, 3))
-        m[:, 0, 1], m[:, 0, 2], m[:, 1, 2] = bb[:, 2], -bb[:, 1], bb[:, 0]
-        m[:, 1, 0], m[:, 2, 0], m[:, 2, 1] = -bb[:, 2], bb[:, 1], -bb[:, 0]  # -[b x]
-        mm = m.reshape(-1, 3)
-        y = e[sel].ravel()
-        ntn = mm.T @ mm
-        if np.linalg.cond(ntn) > 1e8:
-            continue
-        beta = np.linalg.solve(ntn, mm.T @ y)
-        res = y - mm @ beta
-        s2 = float(res @ res) / max(len(y) - 3, 1)
-        est.append(beta)
-        var.append(np.diag(np.linalg.inv(ntn)) * s2)
-        tc.append(0.5 * (a + b))
-    if len(est) < 2 * min_windows:
-        return None
-    est, var, tc = np.array(est), np.array(var), np.array(tc)
-    wgt = 1.0 / var
-    span = tc[-1] - tc[0]
-    rw = bias_walk_rad_s_sqrt_s ** 2 * span / 3.0
-    best = None
-    for k in range(min_windows, len(est) - min_windows + 1):
-        w0, w1 = wgt[:k], wgt[k:]
-        m0 = (w0 * est[:k]).sum(0) / w0.sum(0)
-        m1 = (w1 * est[k:]).sum(0) / w1.sum(0)
-        # robust spread: the scatter of the windows about their side's mean, not only the formal one
-        v0 = np.maximum(1.0 / w0.sum(0), np.var(est[:k], axis=0) / k)
-        v1 = np.maximum(1.0 / w1.sum(0), np.var(est[k:], axis=0) / (len(est) - k))
-        z = (m1 - m0) / np.sqrt(v0 + v1 + rw)
-        score = np.max(np.abs(z))
-        if best is None or score > best[0]:
-            best = (score, k, m1 - m0, z, m0, m1)
-    score, k, delta, z, m0, m1 = best
-    big = np.abs(delta) > max(min_step_rad_s, 5.0 * np.sqrt(bias_walk_rad_s_sqrt_s ** 2 * span))
-    if score < z_min or not np.any(big & (np.abs(z) >= z_min)):
-        return None
-    t_step = 0.5 * (tc[k - 1] + tc[k])
-    return BiasStep(float(t_step), delta, z, m0, m1, window_s)
 
 
 def step_mean_dipole(t_steps: np.ndarray, t_coil: np.ndarray | None, i_coil_A: np.ndarray | None,

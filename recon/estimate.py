@@ -47,6 +47,7 @@ from scipy import stats
 
 from . import _dynamics_filter as dyn
 from . import _mekf_core as core
+from ._bias_step import BiasStep, find_bias_step
 from ._wahba import InitialState, initial_state_with_gyro
 from .allan import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
 from .anomaly import Anomaly
@@ -577,14 +578,25 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
     run = run_filter(core.MODE_GYRO, t, u, is_mag, z, r, prm, init, out_idx, len(mag_pos))
     anomalies = []
     # gyro bias jump: look for a step in the gyro-versus-field kinematic bias; if found, rerun with
-    # the bias allowed to move at that instant
-    step = dyn.find_bias_step(tms[ok_u], bb_u[ok_u], br_u[ok_u], run.q_s[mag_pos][ok_u], tgs, wg,
+    # the bias allowed to move where it stepped
+    def find_step(run_):
+        return find_bias_step(tms[ok_u], bb_u[ok_u], br_u[ok_u], run_.q_s[mag_pos][ok_u], tgs, wg,
                               noise.gyro_bias_walk_rad_s_sqrt_s)
+
+    step = find_step(run)
     if step is not None:
-        report("rerun after gyro bias jump", 0.6)
-        k = int(np.searchsorted(t, step.t_s))
-        u[max(k - 1, 0), 4] = float(np.sum((2.0 * step.delta_rad_s) ** 2))
-        run = run_filter(core.MODE_GYRO, t, u, is_mag, z, r, prm, init, out_idx, len(mag_pos))
+        report("rerun after gyro bias jump", 0.5)
+        run = run_filter(core.MODE_GYRO, t, bias_step_inputs(t, u, step), is_mag, z, r, prm, init, out_idx,
+                         len(mag_pos))
+        # the first run's attitude drifts after an unmodelled step, and that attitude enters the
+        # kinematic bias through A db_ref/dt: measure the step again on the rerun's attitude
+        again = find_step(run)
+        if again is not None:
+            if not step.t_lo_s <= again.t_s <= step.t_hi_s:
+                report("rerun after gyro bias jump", 0.75)
+                run = run_filter(core.MODE_GYRO, t, bias_step_inputs(t, u, again), is_mag, z, r, prm, init,
+                                 out_idx, len(mag_pos))
+            step = again
         anomalies.append(step.anomaly(t_epoch))
     width = max(float(rate_window_s), dt_g)
     w_out = _box_mean_zoh(tgs, wg, tms, width)
@@ -602,6 +614,35 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
                             "sigma_att0_deg": (init.sigma_att_rad * DEG_PER_RAD).tolist(),
                             "magnetometer_rows_before_gyro": int(first),
                             "smoother_steps_not_pd": run.smoother_bad, **init.detail})
+
+
+def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray:
+    """Per-step gyro inputs with the bias free to move over the step's time interval.
+
+    The extra bias variance ``|2 delta|^2`` (rad/s)^2 per axis (twice the found change, so the filter
+    is not held to the estimate) is spread over the propagation intervals that overlap
+    ``[t_lo_s, t_hi_s]`` in proportion to the overlap, a random walk confined to the interval in
+    which the step happened; an interval of zero length puts it all on the propagation that ends at
+    the step.
+
+    Parameters
+    ----------
+    t : (K,) s, step times; u : (K, 5) per-step gyro inputs (column 4: extra bias variance)
+    step : BiasStep
+
+    Returns
+    -------
+    (K, 5) copy of u with column 4 filled
+    """
+    out = u.copy()
+    total = float(np.sum((2.0 * step.delta_rad_s) ** 2))
+    overlap = np.clip(np.minimum(t[1:], step.t_hi_s) - np.maximum(t[:-1], step.t_lo_s), 0.0, None)
+    if overlap.sum() > 1e-9:
+        out[:-1, 4] += total * overlap / float(overlap.sum())
+    else:
+        k = int(np.clip(np.searchsorted(t, step.t_s), 1, len(t) - 1))
+        out[k - 1, 4] += total
+    return out
 
 
 def consistency_anomaly(hist: AttitudeHistory, min_fraction: float = 0.85,

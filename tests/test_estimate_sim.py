@@ -100,14 +100,14 @@ def test_dead_gyro_pass_uses_dynamics_mode():
 
 def test_bias_jump_pass():
     """Scenario gyro_bias_jump: +0.5 deg/s on the gyro x axis (body x here) half-way. Measured (seed 1):
-    found as +0.497 deg/s at 09:27:00; smoothed 0.23 deg RMS after 10 minutes."""
+    found as +0.492 deg/s, interval [899.0, 901.0] s; smoothed 0.26 deg RMS after 10 minutes."""
     sp = simulate_pass("gyro_bias_jump", 1, None, duration_s=DURATION_S)
     h = estimate_attitude(sp.time_utc, **_inputs(sp))
     jumps = [a for a in h.anomalies if a.code == "gyro_bias_jump"]
     assert len(jumps) == 1 and jumps[0].axis == "x"
     assert jumps[0].value == pytest.approx(0.5, abs=0.05)
-    t_mid = (jumps[0].start_utc - sp.time_utc[0]) / np.timedelta64(1, "s") + 30.0
-    assert abs(t_mid - 0.5 * DURATION_S) <= 30.0
+    start, stop = ((t - sp.time_utc[0]) / np.timedelta64(1, "s") for t in (jumps[0].start_utc, jumps[0].stop_utc))
+    assert start <= 0.5 * DURATION_S <= stop and stop - start <= 4.0
     att, _ = _errors(h.smoothed, sp, sp.t_s > 600.0)
     assert att <= 0.6
 
