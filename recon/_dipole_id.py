@@ -22,6 +22,12 @@ sampling. Between consecutive switching instants ``int [B x] C i dt = [(F(b) - F
 the antiderivative of a cubic spline through the body-frame field, so the duty cycle and any latency
 enter exactly; ``w x J w`` and the gravity-gradient torque are integrated through their own splines.
 
+Rate bias. Optionally the rate history is allowed a slowly varying bias e(t), piecewise linear in
+time (``rate_bias_knot_s``). With ``w = w_hist - e`` the gyroscopic term, to first order in e, moves
+``J e(t_j) + int G(w_hist) e dt`` to the right-hand side (G the Jacobian of ``w x J w``), which is
+linear in the knot values. A gyro bias left wrong by the attitude estimator enters the equation
+exactly this way, and a latency could otherwise imitate part of it.
+
 Uncertainty. Weights come from the rate covariance when it is given (``J P J^T`` per instant); the
 covariance of the solution is scaled by the residual variance (chi-square per degree of freedom)
 and, when consecutive residuals are positively correlated, by the AR(1) variance inflation
@@ -54,7 +60,8 @@ from scipy.stats import chi2
 from .constants import MU_EARTH_m3_s2
 
 __all__ = ["DipoleFit", "identify_dipole", "applied_current_A", "scan_actuation_latency", "classify_coil",
-           "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY"]
+           "rate_bias_knots_s", "rate_bias_evidence", "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY",
+           "RATE_BIAS_KNOT_S"]
 
 # Systematic floor on each estimated dipole, as a fraction of the nominal diagonal: an attitude
 # error of ~3 deg turns the modelled torque by sin(3 deg) = 0.05 of itself, and the reference field
@@ -63,6 +70,13 @@ __all__ = ["DipoleFit", "identify_dipole", "applied_current_A", "scan_actuation_
 MODEL_FLOOR_FRACTION = 0.05
 # Intervals whose whitened residual has chi-square(3) tail probability below this are dropped once.
 OUTLIER_PROBABILITY = 1e-4
+# Knot spacing of the rate history's optional bias (see identify_dipole), s. The bias a smoother
+# leaves in a gyro-based rate moves with the gyro's bias walk and with how fast the field direction
+# turns in body axes, over minutes rather than seconds; knots ten 30-s segments apart keep its
+# unknowns from competing with the per-segment initial momenta. On simulated passes knots every
+# 150 s, 300 s, 600 s and a single straight line over the pass gave the same latencies and
+# polarities (common practice, no source).
+RATE_BIAS_KNOT_S = 300.0
 
 
 @dataclass(frozen=True)
@@ -84,6 +98,9 @@ class DipoleFit:
     ar1 : float, lag-1 autocorrelation of the whitened residuals
     wrss : float, weighted residual sum of squares (before scaling)
     latency_s : float, actuation latency assumed for the applied current
+    rate_bias_knots_s : (K,) knots of the rate history's piecewise-linear bias, s, or None
+    rate_bias_rad_s : (K, 3) that bias at the knots (history minus motion), rad/s, body frame, or None
+    rate_bias_sigma_rad_s : (K, 3) its least-squares 1-sigma, rad/s, or None
     """
 
     C: np.ndarray
@@ -97,6 +114,9 @@ class DipoleFit:
     ar1: float
     wrss: float
     latency_s: float
+    rate_bias_knots_s: np.ndarray | None = None
+    rate_bias_rad_s: np.ndarray | None = None
+    rate_bias_sigma_rad_s: np.ndarray | None = None
 
 
 def _cross_matrices(v: np.ndarray) -> np.ndarray:
@@ -115,6 +135,8 @@ class _Motion:
     F_B: CubicSpline       # antiderivative of B (T s)
     F_gyro: CubicSpline    # antiderivative of w x J w (N m s)
     F_gg: CubicSpline | None
+    F_w: CubicSpline       # antiderivative of w (rad)
+    F_tw: CubicSpline      # antiderivative of t w (rad s)
     t_s: np.ndarray
     P: np.ndarray | None
 
@@ -130,8 +152,9 @@ def _motion(t_s, w_body_rad_s, b_body_nT, inertia, r_body_km, w_cov) -> _Motion:
         rn = np.linalg.norm(r, axis=1, keepdims=True)
         tau_gg = 3.0 * MU_EARTH_m3_s2 / rn ** 5 * np.cross(r, r @ inertia.T)
         F_gg = CubicSpline(t, tau_gg).antiderivative()
-    return _Motion(CubicSpline(t, w), CubicSpline(t, b_T).antiderivative(),
-                   CubicSpline(t, gyro).antiderivative(), F_gg, t, w_cov)
+    w_spline = CubicSpline(t, w)
+    return _Motion(w_spline, CubicSpline(t, b_T).antiderivative(), CubicSpline(t, gyro).antiderivative(), F_gg,
+                   w_spline.antiderivative(), CubicSpline(t, t[:, None] * w).antiderivative(), t, w_cov)
 
 
 def _gated(t: np.ndarray, ticks: np.ndarray, before: float, after: float) -> np.ndarray:
@@ -210,6 +233,51 @@ def _interval_left_side(mot: _Motion, t_eval: np.ndarray) -> np.ndarray:
     return y
 
 
+def rate_bias_knots_s(t0_s: float, t1_s: float, knot_spacing_s: float | None) -> np.ndarray | None:
+    """Knots of the piecewise-linear rate bias: evenly spaced over ``[t0, t1]``, at most
+    ``knot_spacing_s`` apart, at least two (a straight line); None when ``knot_spacing_s`` is None."""
+    if knot_spacing_s is None:
+        return None
+    n = max(int(np.ceil((t1_s - t0_s) / knot_spacing_s - 1e-9)), 1) + 1
+    return np.linspace(t0_s, t1_s, n)
+
+
+def _rate_bias_regressors(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray, knots: np.ndarray):
+    """Regressors of a piecewise-linear rate bias ``e(t) = sum_k phi_k(t) e_k`` (hat functions on
+    ``knots``) in the levels form of the integrated equation.
+
+    The rate history is ``w_hist = w + e``. Euler's equation in the true rate, expanded to first
+    order in e (the gyroscopic term ``g(w) = w x J w`` has Jacobian ``G(w) = [w x] J - [(J w) x]``),
+    moves the bias to the right-hand side as ``J e(t_j) + int_s^t_j G(w_hist) e dt``; with G linear
+    in w, ``int G(w) phi_k dt = G(int phi_k w dt)``.
+
+    Returns
+    -------
+    A_int : (n - 1, 3, 3 K) the integral part over each interval between evaluation instants
+    A_lev : (n, 3, 3 K) the level part ``J phi_k(t_j)`` at each instant
+    """
+    nk = len(knots)
+    inside = knots[(knots > t_eval[0]) & (knots < t_eval[-1])]
+    ev = np.unique(np.concatenate([t_eval, inside]))
+    a, b = ev[:-1], ev[1:]
+    mid = 0.5 * (a + b)
+    W0 = mot.F_w(b) - mot.F_w(a)                     # int w dt over the cell, rad
+    W1 = mot.F_tw(b) - mot.F_tw(a)                   # int t w dt, rad s
+    m = np.clip(np.searchsorted(knots, mid, side="right") - 1, 0, nk - 2)
+    k0, k1 = knots[m], knots[m + 1]
+    h = (k1 - k0)[:, None]
+    Wk = ((k1[:, None] * W0 - W1) / h, (W1 - k0[:, None] * W0) / h)   # int phi_m w dt, int phi_m+1 w dt
+    cell_int = np.searchsorted(t_eval, mid, side="right") - 1
+    A_int = np.zeros((len(t_eval) - 1, 3, 3 * nk))
+    for W, kk in zip(Wk, (m, m + 1), strict=True):
+        G = _cross_matrices(W) @ inertia - _cross_matrices(W @ inertia.T)
+        for c in range(3):
+            np.add.at(A_int, (cell_int, slice(None), 3 * kk + c), G[:, :, c])
+    phi = np.column_stack([np.interp(t_eval, knots, np.eye(nk)[k]) for k in range(nk)])   # (n, K)
+    A_lev = (phi[:, :, None, None] * inertia[None, None, :, :]).transpose(0, 2, 1, 3).reshape(len(t_eval), 3, 3 * nk)
+    return A_int, A_lev
+
+
 def _segments(valid_interval: np.ndarray, segment_points: int) -> np.ndarray:
     """Segment label of each evaluation instant (-1: in no segment). A segment is a run of at most
     ``segment_points`` instants joined by valid intervals."""
@@ -230,7 +298,7 @@ def _segments(valid_interval: np.ndarray, segment_points: int) -> np.ndarray:
 
 
 def _design(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s, i_coil_A, latency_s, gate,
-            max_hold_s, residual_dipole, torque_bias, segment_points):
+            max_hold_s, residual_dipole, torque_bias, segment_points, knots=None):
     """Levels form of the integrated equation within each segment (start instant s)::
 
         J w(t_j) + int_s^t_j (w x J w - tau_gg) dt = J w(s) + A_j theta + e_j
@@ -242,6 +310,12 @@ def _design(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s, i_c
         blocks.append(A_m)
     if torque_bias:
         blocks.append(np.broadcast_to(np.eye(3) * np.diff(t_eval)[:, None, None], (len(t_eval) - 1, 3, 3)))
+    A_lev = None
+    if knots is not None:
+        A_e, A_lev = _rate_bias_regressors(mot, t_eval, inertia, knots)
+        blocks.append(A_e)
+        width_before = sum(blk.shape[2] for blk in blocks[:-1])
+        A_lev = np.concatenate([np.zeros((len(t_eval), 3, width_before)), A_lev], axis=2)
     A_int = np.concatenate(blocks, axis=2)
     g_int = _interval_left_side(mot, t_eval)
     ok &= np.all(np.isfinite(g_int), axis=1) & np.all(np.isfinite(A_int), axis=(1, 2))
@@ -255,6 +329,8 @@ def _design(mot: _Motion, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s, i_c
     starts = np.nonzero(used & np.r_[True, label[1:] != label[:-1]])[0]
     first[used] = starts[label[used]]
     A = A_cum - A_cum[first]
+    if A_lev is not None:
+        A = A + A_lev - A_lev[first]
     y = mot.w(t_eval) @ inertia.T + g_cum - g_cum[first]
     return y, A, label
 
@@ -336,6 +412,7 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
                     gate: tuple[np.ndarray, float, float] | None = None, max_hold_s: float = 2.5,
                     residual_dipole: bool = True, torque_bias: bool = True, segment_points: int = 31,
                     reject_outliers: bool = True, jackknife_blocks: int = 10,
+                    rate_bias_knot_s: float | None = None,
                     _motion_cache: _Motion | None = None) -> DipoleFit | None:
     """Least-squares estimate of the coils' dipole-per-amp matrix C from the motion.
 
@@ -378,6 +455,9 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
         jackknife one over this many blocks of consecutive segments (0: least squares only). The
         jackknife catches what the least-squares variance cannot: estimates carried by a few
         instants (coils switching in lock-step) and model errors that vary along the pass.
+    rate_bias_knot_s : float or None
+        Also estimate a slowly varying bias of the rate history (piecewise linear, knots at most
+        this far apart, see :func:`rate_bias_knots_s`); None: the rate history is taken as unbiased.
 
     Returns
     -------
@@ -395,8 +475,9 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
     te = te[(te >= mot.t_s[0]) & (te <= mot.t_s[-1])]
     if len(te) < 3:
         return None
+    knots = rate_bias_knots_s(te[0], te[-1], rate_bias_knot_s)
     y, A, label = _design(mot, te, J, t_coil_s, i_coil_A, latency_s, gate, max_hold_s, residual_dipole,
-                          torque_bias, segment_points)
+                          torque_bias, segment_points, knots)
     Winv = _whiteners(mot, te, J)
     p = A.shape[2]
     keep = label >= 0
@@ -462,12 +543,19 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
         k += 3
     if torque_bias:
         d = theta[k:k + 3]
-    return DipoleFit(C, C_sigma, cov, m_r, d, int(keep.sum()), n_drop, s2, rho, wrss, float(latency_s))
+        k += 3
+    e = e_sig = None
+    if knots is not None:
+        e = theta[k:].reshape(-1, 3)
+        e_sig = np.sqrt(np.clip(var[k:], 0, None)).reshape(-1, 3)
+    return DipoleFit(C, C_sigma, cov, m_r, d, int(keep.sum()), n_drop, s2, rho, wrss, float(latency_s),
+                     knots, e, e_sig)
 
 
 def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s, i_coil_A, t_eval_s,
                            period_s: float, *, max_latency_periods: int = 5, r_body_km=None,
-                           w_cov_rad2_s2=None, gate=None, max_hold_s: float = 2.5
+                           w_cov_rad2_s2=None, gate=None, max_hold_s: float = 2.5,
+                           rate_bias_knot_s: float | None = None
                            ) -> tuple[DipoleFit | None, np.ndarray, np.ndarray]:
     """Find the actuation latency that best explains the motion (profile least squares).
 
@@ -477,10 +565,16 @@ def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s
     use the same instants (those valid for every trial) and no outlier rejection, so their weighted
     residual sums of squares compare directly.
 
+    A current cannot flow before it is commanded, so the latency is sought among the trials of zero
+    and more. The negative trials (down to one period) are a check on the time tags: they are
+    refined the same way when one of them fits best, and a profile whose minimum lies there says
+    that the coil log's times, or the rate history's, are in error (see ``judge``).
+
     Returns
     -------
     best : DipoleFit or None
-    latencies_s : (L,) trial latencies, s
+        The best fit among the trials of zero or positive latency.
+    latencies_s : (L,) trial latencies, s, sorted (negative ones included)
     wrss : (L,) weighted residual sum of squares of each trial (NaN where the fit failed)
     """
     J = np.asarray(inertia_kg_m2, float)
@@ -502,7 +596,7 @@ def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s
     def fit(L: float) -> DipoleFit | None:
         return identify_dipole(t_s, w_body_rad_s, b_body_nT, J, t_coil_s, i_coil_A, b2, latency_s=L,
                                gate=gate, max_hold_s=max_hold_s, reject_outliers=False, jackknife_blocks=0,
-                               _motion_cache=mot)
+                               rate_bias_knot_s=rate_bias_knot_s, _motion_cache=mot)
 
     trials: dict[float, DipoleFit | None] = {}
     for L in period_s * np.arange(-1, max_latency_periods + 1):
@@ -517,17 +611,55 @@ def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s
             if not any(abs(L - x) < 1e-9 for x in trials):
                 trials[L] = fit(L)
 
+    def best_of(causal: bool) -> float:
+        return min((L for L in trials if (L >= -1e-9) == causal), key=lambda L: score(trials[L]))
+
     # the profile can be shallow and bumpy between whole periods: search the two periods around the
-    # best whole-period trial in quarter periods, then the best of those in tenths
-    refine(min(trials, key=lambda L: score(trials[L])), 1.0, 0.25)
-    refine(min(trials, key=lambda L: score(trials[L])), 0.2, 0.1)
+    # best whole-period trial in quarter periods, then the best of those in tenths; the best causal
+    # trial always, the best acausal one too when it beats it
+    for half_width, step in ((1.0, 0.25), (0.2, 0.1)):
+        refine(best_of(True), half_width, step)
+        if score(trials[best_of(False)]) < score(trials[best_of(True)]):
+            refine(best_of(False), half_width, step)
     lat = np.array(sorted(trials))
-    wr = np.array([score(trials[L]) if trials[L] is not None else np.nan for L in lat])
+    wr = np.array([score(trials[L]) for L in lat])
     wr[~np.isfinite(wr)] = np.nan
-    if np.all(np.isnan(wr)):
+    best = best_of(True)
+    if not np.isfinite(score(trials[best])):
         return None, lat, wr
-    best = float(lat[int(np.nanargmin(wr))])
     return trials[best], lat, wr
+
+
+def rate_bias_evidence(fit_without: DipoleFit | None, fit_with: DipoleFit | None) -> tuple[bool, float, float]:
+    """Does the motion need a bias in the rate history? Schwarz's criterion on two nested fits.
+
+    The bias model is chosen when its chi-square gain over the unbiased model exceeds ``k ln(m)``,
+    with k its extra unknowns and m the scalar equations (three per instant). The chi-square unit
+    is the bias fit's residual variance with its AR(1) inflation (as for the latency profile).
+
+    Parameters
+    ----------
+    fit_without, fit_with : DipoleFit or None
+        The same instants fitted without and with the rate bias (for example the best fits of two
+        latency scans).
+
+    Returns
+    -------
+    needed : bool
+    delta_chi2 : float, chi-square gained by the bias unknowns (NaN when either fit is missing)
+    penalty : float, k ln(m) (NaN when either fit is missing)
+
+    References
+    ----------
+    Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461-464.
+    """
+    if fit_without is None or fit_with is None or fit_with.rate_bias_rad_s is None:
+        return False, float("nan"), float("nan")
+    infl = (1 + fit_with.ar1) / (1 - fit_with.ar1) if 0 < fit_with.ar1 < 0.99 else 1.0
+    unit = fit_with.chi2_per_dof * infl
+    gain = (fit_without.wrss - fit_with.wrss) / unit if unit > 0 else float("inf")
+    penalty = fit_with.rate_bias_rad_s.size * float(np.log(3 * fit_with.n_intervals))
+    return bool(gain > penalty), float(gain), penalty
 
 
 def classify_coil(c_est: float, c_sigma: float, c_nominal: float) -> tuple[str, float, float, float]:

@@ -7,7 +7,11 @@ Four independent lines of evidence, each from plain arrays:
    limit-to-limit chatter).
 2. Dipole identification (:mod:`recon._dipole_id`): each coil's effective dipole per amp from the
    motion (Euler's equation, least squares), hence polarity, response and gain, plus the actuation
-   latency that best explains the motion.
+   latency that best explains the motion. The latency is sought from zero up (a current cannot flow
+   before its command; a motion that insists on a negative one points to wrong time tags), and a
+   slowly varying bias of the rate history is estimated alongside where Schwarz's criterion asks
+   for it (a wrong gyro bias mimics a torque through the gyroscopic term, and a latency can imitate
+   part of that torque).
 3. Physical effect (:mod:`recon._effect`): the kinetic-energy (B-dot) or momentum-error
    (cross-product) trend against what the configured law should have achieved along the same
    trajectory, and the sign of the magnetic torque's power.
@@ -26,6 +30,7 @@ Avanzini, G. and Giulietti, F. (2012). Magnetic detumbling of a rigid spacecraft
 Control, and Dynamics 35(4), 1326-1334, doi:10.2514/1.53074.
 Markley, F. L. and Crassidis, J. L. (2014). Fundamentals of Spacecraft Attitude Determination and
 Control. Springer, sec. 3.3 and 7.5.
+Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461-464.
 """
 
 from __future__ import annotations
@@ -100,7 +105,7 @@ THRESHOLDS: dict[str, float] = {
     "LATENCY_DELTA_CHI2": LATENCY_DELTA_CHI2, "DETUMBLE_SLOW_FACTOR": DETUMBLE_SLOW_FACTOR,
     "EXPECTED_MIN_CHANGE": EXPECTED_MIN_CHANGE, "TREND_SIGMAS": eff.TREND_SIGMAS,
     "TREND_MIN_CHANGE": eff.TREND_MIN_CHANGE, "SEGMENT_POINTS": SEGMENT_POINTS, "MIN_SEGMENTS": MIN_SEGMENTS,
-    "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS,
+    "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS, "RATE_BIAS_KNOT_S": dip.RATE_BIAS_KNOT_S,
 }
 
 
@@ -178,7 +183,9 @@ class ControllerJudgement:
     residual_dipole_Am2 : (3,) constant dipole identified alongside C
     replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
         (NaN where the law could not be replayed)
-    extras : diagnostics (latency profile, effect figures), not part of the summary
+    extras : diagnostics, not part of the summary: latency profile (trial latencies and weighted
+        residual sums), ``latency`` (best causal latency, ranges, causality check), ``rate_bias`` (whether
+        the rate history's bias was estimated, its chi-square gain and penalty, knot values), effect figures
     """
 
     law: str
@@ -389,22 +396,35 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     # 2. dipole identification and actuation latency -------------------------------------------
     n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
     fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
+    lat_info, rate_bias = None, None
     if n_seg >= MIN_SEGMENTS:
-        scan_fit, lat_trials, lat_wrss = dip.scan_actuation_latency(
+        # The rate history may carry a slowly varying bias (a gyro bias the estimator got wrong); through
+        # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
+        # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
+        scans = {kn: dip.scan_actuation_latency(
             t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
-            r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T)
+            r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T, rate_bias_knot_s=kn)
+            for kn in (None, dip.RATE_BIAS_KNOT_S)}
+        used, gain, penalty = dip.rate_bias_evidence(scans[None][0], scans[dip.RATE_BIAS_KNOT_S][0])
+        knot = dip.RATE_BIAS_KNOT_S if used else None
+        scan_fit, lat_trials, lat_wrss = scans[knot]
         lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else 0.0
         fit = dip.identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
-                                  latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS)
-    else:
-        lat_info = None
+                                  latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
+                                  rate_bias_knot_s=knot)
+        rate_bias = {"used": used and fit is not None and fit.rate_bias_rad_s is not None,
+                     "delta_chi2": gain, "penalty": penalty}
+        if rate_bias["used"]:
+            rate_bias.update(knots_s=fit.rate_bias_knots_s.tolist(), rad_s=fit.rate_bias_rad_s.tolist(),
+                             sigma_rad_s=fit.rate_bias_sigma_rad_s.tolist())
     i_applied = dip.applied_current_A(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
                                       max_hold_s=2.5 * T)
     axes = _axes(ctx, fit, cmp_, chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
-        lat_info["determined"] = False  # no coil identified: the motion says nothing about timing
+        # no coil identified: the motion says nothing about timing, in either direction
+        lat_info["determined"] = lat_info["acausal"] = False
 
     # 3. physical effect -----------------------------------------------------------------------
     C_used = C_nom.copy()
@@ -427,8 +447,9 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                                              i_seen_at_tick_A=seen, max_current_A=imax,
                                              delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
 
-    anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks))
-    verdict = _verdict(ctx, axes, anomalies, reasons, cmp_)
+    anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks),
+                                   rate_bias)
+    verdict = _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info)
     lag = cmp_.lag_s if cmp_ is not None else None
     act = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else None
     total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
@@ -451,6 +472,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         replay_time_utc=epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
         replay_i_A=i_rep,
         extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
+                "latency": lat_info, "rate_bias": rate_bias,
                 "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
                 "n_ticks": int(len(ticks)), "n_segments": n_seg},
     )
@@ -467,26 +489,39 @@ class _Context:
 
 
 def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | None:
-    """Best latency, its 3-sigma range (profile chi-square within 9; the 1-sigma one within 1) and
-    the chi-square excess of zero latency, in units of the best fit's scaled residual variance.
+    """Best latency of zero or more, its 3-sigma range (profile chi-square within 9 of the best
+    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, and the check
+    of causality, all in units of the best fit's scaled residual variance.
+
+    A current cannot act before its command, so the latency is bounded below by zero and its range
+    is the bounded profile's. The negative trials test the time tags instead: when the best of them
+    beats the best causal trial by ``LATENCY_DELTA_CHI2`` or more, the motion says, at 3 sigma, that
+    the torque came before the logged command, and the latency is left undetermined ("acausal").
 
     The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
     model errors (attitude error) make them optimistic, so decisions use the 3-sigma range."""
-    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss)):
+    causal = lat >= -1e-9
+    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss[causal])):
         return None
     infl = (1 + scan_fit.ar1) / (1 - scan_fit.ar1) if 0 < scan_fit.ar1 < 0.99 else 1.0
     unit = scan_fit.chi2_per_dof * infl
-    d = (wrss - np.nanmin(wrss)) / unit
-    dd = np.nan_to_num(d, nan=np.inf)
+    d = (wrss - np.nanmin(wrss[causal])) / unit
+    dd = np.where(causal, np.nan_to_num(d, nan=np.inf), np.inf)
     inside = lat[dd <= 1.0]
     wide = lat[dd <= LATENCY_DELTA_CHI2]
     d0 = d[np.argmin(np.abs(lat))] if np.min(np.abs(lat)) < 1e-9 else np.nan
     lo, hi = float(wide.min()), float(wide.max())
+    # chi-square gained by letting the torque come before its command, and where it is best
+    neg = ~causal & np.isfinite(d)
+    gain = float(max(-np.min(d[neg]), 0.0)) if neg.any() else 0.0
+    acausal = gain >= LATENCY_DELTA_CHI2
     return {"latency_s": float(scan_fit.latency_s), "interval_s": (lo, hi), "delta_chi2_zero": float(d0),
             "interval_1sigma_s": (float(inside.min()), float(inside.max())),
-            # determined: the 3-sigma set (profile chi-square within 9) spans at most two periods,
-            # i.e. the latency is known to within about one period
-            "determined": bool(wide.max() - wide.min() <= 2.0 * period_s + 1e-9)}
+            "acausal": acausal, "acausal_delta_chi2": gain,
+            "acausal_latency_s": float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
+            # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
+            # at most two periods, i.e. the latency is known to within about one period
+            "determined": bool(not acausal and wide.max() - wide.min() <= 2.0 * period_s + 1e-9)}
 
 
 def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
@@ -599,6 +634,15 @@ def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
                            f"({cmp_.lag_s / T:.1f} control periods)", value=cmp_.lag_s))
     if lat_info is None:
         return
+    if lat_info["acausal"]:
+        La, g = lat_info["acausal_latency_s"], lat_info["acausal_delta_chi2"]
+        text = (f"the motion is best explained with the coil currents acting {-La:.2f} s before their logged "
+                f"command time (profile chi-square {g:.0f} below the best delay of zero or more, 3 sigma at "
+                f"{LATENCY_DELTA_CHI2:.0f}); a current cannot flow before it is commanded, so the time tags of the "
+                "coil log or of the rate history are in error, and the actuation latency is not judged")
+        out.append(_an(ctx, "actuation_before_command", "info", text, value=La))
+        reasons.append(text)
+        return
     L, (lo, hi), d0 = lat_info["latency_s"], lat_info["interval_s"], lat_info["delta_chi2_zero"]
     if lat_info["determined"] and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
         out.append(_an(ctx, "command_latency", "warning",
@@ -678,7 +722,23 @@ def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
                        f"{100 * cf:.0f} % of ticks in this pass", value=lg))
 
 
-def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks):
+def _rate_bias_findings(ctx, rate_bias, out) -> None:
+    """An info record when the identification needed a bias in the rate history: the rate other
+    tools read from this pass (attitude.csv) carries it too. Only the collective evidence is quoted:
+    the bias is well determined where the body turns fast (the gyroscopic term is proportional to
+    the rate) and poorly where it has slowed, so single knot values would mislead."""
+    if not rate_bias or not rate_bias["used"]:
+        return
+    n = int(np.size(rate_bias["rad_s"]))
+    out.append(_an(
+        ctx, "rate_history_biased", "info",
+        f"the motion is explained better when the rate history may carry a slowly varying bias (chi-square "
+        f"gain {rate_bias['delta_chi2']:.0f} for {n} unknowns, against the Schwarz penalty "
+        f"{rate_bias['penalty']:.0f}): the reconstructed rate and gyro bias deserve a check; the coils and "
+        "the latency were judged with that bias estimated alongside", value=rate_bias["delta_chi2"]))
+
+
+def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks, rate_bias=None):
     out: list[Anomaly] = []
     reasons: list[str] = []
     if ctx.law == "none":
@@ -688,16 +748,20 @@ def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ti
     _command_findings(ctx, axes, cmp_, lat_info, out, reasons)
     _effect_findings(ctx, effect, out, reasons)
     _feedback_findings(ctx, effect, loop, chatter, out)
+    _rate_bias_findings(ctx, rate_bias, out)
     return out, reasons
 
 
-def _verdict(ctx, axes, anomalies, reasons, cmp_) -> str:
+def _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info=None) -> str:
     """"not_as_intended" on any critical or warning finding other than saturation (an operating
     regime, not a fault); otherwise "as_intended" only when every coil's polarity and every axis's
-    commands were checked; "undetermined" (with ``reasons``) when anything could not be."""
+    commands were checked and the motion's timing is causal; "undetermined" (with ``reasons``) when
+    anything could not be."""
     if any(a.severity in ("critical", "warning") and a.code != "controller_saturated" for a in anomalies):
         return "not_as_intended"
     if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
+        return "undetermined"
+    if lat_info is not None and lat_info["acausal"]:
         return "undetermined"
     if not all(_command_verified(cmp_, a) for a in range(3)):
         return "undetermined"

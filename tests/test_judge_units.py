@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -13,7 +14,7 @@ from recon import _replay as rep
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.constants import MU_EARTH_km3_s2
 from recon.errors import InputError
-from recon.judge import judge_pass
+from recon.judge import _latency_profile, judge_pass
 
 C_NOM = np.diag([1.5, 1.5, 1.1])
 IMAX = np.array([0.12, 0.12, 0.12])
@@ -141,6 +142,48 @@ def test_classify_coil(est, sig, expect):
     assert s == pytest.approx(np.hypot(sig / 1.5, dip.MODEL_FLOOR_FRACTION))
     if expect == "inverted":   # -1.46 +- 0.05 on 1.5: |r| / s = 0.973 / 0.0583 = 16.7 sigma from zero
         assert conf == pytest.approx(0.97333 / np.hypot(0.05 / 1.5, 0.05), rel=1e-4)
+
+
+# ------------------------------------------------------------------------------------ latency profile
+PROFILE_LAT_S = np.array([-1.0, -0.5, 0.0, 0.5, 1.0, 2.0, 3.0])
+
+
+def _profile(chi2_units, ar1=0.0, chi2_per_dof=2.0, latency_s=1.0):
+    """A hand-made latency profile: weighted residual sums ``base + unit * chi2_units`` with the unit
+    the judge derives, chi2_per_dof (1 + ar1) / (1 - ar1)."""
+    fit = SimpleNamespace(ar1=ar1, chi2_per_dof=chi2_per_dof, latency_s=latency_s)
+    return fit, PROFILE_LAT_S, 1000.0 + chi2_per_dof * np.asarray(chi2_units, float)
+
+
+def test_latency_profile_causal_minimum_and_ranges():
+    # Minimum at +1 s; within 9 of it (3 sigma): 0.5, 1, 2 s; within 1: 1 s only; zero delay
+    # sits 12 above. The negative trials lie above the causal minimum: nothing acausal.
+    info = _latency_profile(*_profile([30, 20, 12, 3, 0, 4, 40]), 1.0)
+    assert info["latency_s"] == 1.0
+    assert info["interval_s"] == (0.5, 2.0)
+    assert info["interval_1sigma_s"] == (1.0, 1.0)
+    assert info["delta_chi2_zero"] == pytest.approx(12.0, rel=1e-12)
+    assert not info["acausal"] and info["acausal_delta_chi2"] == 0.0
+    assert info["determined"]
+
+
+def test_latency_profile_torque_before_command_is_acausal():
+    # The best trial is -1 s, 15 below the best causal one (zero delay): beyond the 3-sigma limit of
+    # 9, so the latency is undetermined and the acausal trial is named. The causal range starts at
+    # zero: a negative latency is never reported as the latency.
+    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], latency_s=0.0), 1.0)
+    assert info["acausal"] and info["acausal_delta_chi2"] == pytest.approx(15.0, rel=1e-12)
+    assert info["acausal_latency_s"] == -1.0
+    assert info["latency_s"] == 0.0 and info["interval_s"] == (0.0, 0.0)   # +0.5 s sits 10 above
+    assert not info["determined"]
+
+
+def test_latency_profile_ar1_inflation_weakens_the_evidence():
+    # The same sums with correlated residuals (rho = 0.5: variance inflation (1 + rho)/(1 - rho) = 3,
+    # Bayley and Hammersley 1946): the acausal gain is 15 / 3 = 5 < 9, not enough to reject causality.
+    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], ar1=0.5, latency_s=0.0), 1.0)
+    assert info["acausal_delta_chi2"] == pytest.approx(5.0, rel=1e-12)
+    assert not info["acausal"]
 
 
 # ---------------------------------------------------------------------------------------- effect
