@@ -32,7 +32,7 @@ from ._wahba import InitialState, davenport_q_method, initial_state_with_gyro
 from .allan import white_noise_from_differences
 from .anomaly import Anomaly
 
-__all__ = ["GyroCheck", "check_gyro", "step_mean_dipole", "coil_log_with_off_windows",
+__all__ = ["GyroCheck", "check_gyro", "step_mean_dipole", "coil_log_with_off_windows", "carry_back_with_dynamics",
            "local_slope", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
 
 _NS = 1_000_000_000
@@ -377,6 +377,56 @@ def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
                                              "starts": n_starts})
 
 
+def carry_back_with_dynamics(init: InitialState, t: np.ndarray, k0: int, m_steps: np.ndarray, b_ref: np.ndarray,
+                             r_km: np.ndarray, prm: np.ndarray) -> InitialState:
+    """An opening (attitude, body rate) solved at ``t[k0]``, moved back to ``t[0]`` with Euler's equations.
+
+    RK4 runs backwards over the rows (two sub-steps per interval) under the logged dipole and the
+    gravity gradient. Over the gap ``g`` the attitude sigma grows, the same about every axis, to
+    ``sqrt(max sigma_att^2 + (max sigma_w g)^2 + s_w^2 g^3 / 3)`` and the rate sigma to
+    ``sqrt(sigma_w^2 + s_w^2 g)``, with ``s_w`` the white unmodelled torque over the smallest principal
+    inertia.
+
+    Parameters
+    ----------
+    init : InitialState at t[k0] (v is the body rate, rad/s)
+    t : (K,) s; k0 : int; m_steps : (K, 3) A m^2 held over each interval; b_ref : (K, 3) nT GCRF (finite);
+    r_km : (K, 3) km GCRF; prm : filter parameters (inertia, torque noise)
+
+    Returns
+    -------
+    InitialState at t[0] (``detail["carried_back_s"]`` = the gap)
+    """
+    gap = float(t[k0] - t[0])
+    if k0 <= 0 or gap <= 0.0:
+        return InitialState(init.q_body_from_gcrf, init.v, init.sigma_att_rad, init.sigma_v, init.method,
+                            init.window_s, {**init.detail, "carried_back_s": 0.0})
+    idx = np.arange(k0, -1, -1)
+    m_back = np.empty((len(idx), 3))
+    m_back[:-1] = m_steps[idx[1:]]  # backward interval [t_j+1, t_j] holds the dipole of interval j
+    m_back[-1] = m_steps[0]
+    qs, ws = propagate_rigid_body(np.asarray(init.q_body_from_gcrf, float), np.asarray(init.v, float),
+                                  t[idx], m_back, b_ref[idx], r_km[idx], prm, 2)
+    j_min = float(np.linalg.eigvalsh(prm[core.P_J:core.P_J + 9].reshape(3, 3)).min())
+    s_w = prm[core.P_SIGTAU] / j_min
+    s_att = np.sqrt(np.max(init.sigma_att_rad ** 2) + (np.max(init.sigma_v) * gap) ** 2 + s_w ** 2 * gap ** 3 / 3.0)
+    s_rate = np.sqrt(init.sigma_v ** 2 + s_w ** 2 * gap)
+    q = qs[-1]
+    return InitialState(q if q[3] >= 0 else -q, ws[-1].copy(), np.full(3, s_att), s_rate, init.method,
+                        init.window_s, {**init.detail, "carried_back_s": gap})
+
+
+def _fill_rows(t: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Copy of x (N, 3) with non-finite rows linearly interpolated in t (held beyond the ends)."""
+    good = np.all(np.isfinite(x), axis=1)
+    if good.all() or not good.any():
+        return x.copy()
+    out = x.copy()
+    for ax in range(x.shape[1]):
+        out[~good, ax] = np.interp(t[~good], t[good], x[good, ax])
+    return out
+
+
 def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
                       init_window_s, report, gyro=None):
     """Dynamics-mode reconstruction on the magnetometer time stamps; returns an AttitudeHistory.
@@ -390,15 +440,14 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     t = (tm - t_epoch) / _NS
     noise, src = est._resolve_noise(noise, bb[ok_rows], None, None)
     prm = est._params(noise, 0.0, inertia)
-    r = br.copy()
-    if not ok_rows.all():  # fill rows without a usable reference by interpolation (propagation only)
-        for ax in range(3):
-            r[:, ax] = np.interp(t, t[ok_rows], br[ok_rows, ax])
+    # rows without a reference (no orbit position) are not used for updates; for the torque in the
+    # propagation their field and position are interpolated from the neighbouring rows
+    r = _fill_rows(t, br)
     z = np.nan_to_num(bb)
     ct = None if coil_t_utc is None else (np.asarray(coil_t_utc).astype("datetime64[ns]").astype(np.int64)
                                           - t_epoch) / _NS
     m_steps = step_mean_dipole(t, ct, i_coil_A, dipole_per_amp)
-    r_km = np.zeros((len(t), 3)) if r_gcrf_km is None else np.nan_to_num(np.asarray(r_gcrf_km, float))
+    r_km = np.zeros((len(t), 3)) if r_gcrf_km is None else np.nan_to_num(_fill_rows(t, np.asarray(r_gcrf_km, float)))
     u = _dyn_inputs(t, m_steps, r_km)
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
     report("initialisation", 0.05)
@@ -420,6 +469,8 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     if init is None:
         init = initial_state_dynamics(t[ok_rows], bb[ok_rows], br[ok_rows], m_steps[ok_rows], r_km[ok_rows],
                                       prm, sig_vec, window_s=init_window_s)
+    # both starts are solved at the first usable row; the filter starts at t[0]
+    init = carry_back_with_dynamics(init, t, int(np.argmax(ok_rows)), m_steps, r, r_km, prm)
     report("forward filter and smoother", 0.2)
     out_idx = np.arange(len(t), dtype=np.int64)
     run = est.run_filter(core.MODE_DYNAMICS, t, u, ok_rows.copy(), z, r, prm, init, out_idx, len(t))

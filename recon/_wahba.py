@@ -33,7 +33,7 @@ from scipy.spatial.transform import Rotation
 from . import _mekf_core as core
 
 __all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion", "InitialState",
-           "initial_state_with_gyro", "integrate_gyro"]
+           "initial_state_with_gyro", "integrate_gyro", "carry_back_with_gyro"]
 
 
 def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
@@ -299,3 +299,36 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
                          "starts_at_best": agree,
                          "field_turn_deg": float(np.rad2deg(np.arccos(np.clip(
                              rq[0] @ rq[-1] / np.linalg.norm(rq[0]) / np.linalg.norm(rq[-1]), -1, 1))))})
+
+
+def carry_back_with_gyro(init: InitialState, t_from_s: float, t_to_s: float, t_gyro: np.ndarray,
+                         w_gyro: np.ndarray, arw_rad_sqrt_s: float) -> InitialState:
+    """An opening state solved at ``t_from_s``, moved back to ``t_to_s <= t_from_s`` along the gyro.
+
+    The filter starts at its first step, which can come before the first usable magnetometer row
+    (its field or its reference field missing); the state there is the solved attitude carried back
+    with the gyro less the solved bias, ``A(t_to) = Delta^T A(t_from)`` (``Delta`` from
+    :func:`integrate_gyro`). Over the gap ``g`` the attitude sigma grows, the same about every axis
+    because the body axes turn in between, to ``sqrt(max sigma_att^2 + (max sigma_bias g)^2 + arw^2 g)``.
+
+    Parameters
+    ----------
+    init : InitialState at t_from_s (v is the gyro bias, rad/s body)
+    t_from_s, t_to_s : float, s on the gyro's time axis
+    t_gyro : (G,) s; w_gyro : (G, 3) rad/s body
+    arw_rad_sqrt_s : float, angle random walk, rad/sqrt(s)
+
+    Returns
+    -------
+    InitialState at t_to_s (``detail["carried_back_s"]`` = the gap)
+    """
+    gap = float(t_from_s - t_to_s)
+    if gap <= 0.0:
+        return InitialState(init.q_body_from_gcrf, init.v, init.sigma_att_rad, init.sigma_v, init.method,
+                            init.window_s, {**init.detail, "carried_back_s": 0.0})
+    d = Rotation.from_quat(integrate_gyro(t_gyro, w_gyro, np.asarray(init.v, float),
+                                          np.array([t_to_s, t_from_s]))[-1])
+    q = (d.inv() * Rotation.from_quat(init.q_body_from_gcrf)).as_quat()
+    s = np.sqrt(np.max(init.sigma_att_rad ** 2) + (np.max(init.sigma_v) * gap) ** 2 + arw_rad_sqrt_s ** 2 * gap)
+    return InitialState(q if q[3] >= 0 else -q, init.v, np.full(3, s), init.sigma_v, init.method, init.window_s,
+                        {**init.detail, "carried_back_s": gap})

@@ -48,7 +48,7 @@ from scipy import stats
 from . import _dynamics_filter as dyn
 from . import _mekf_core as core
 from ._bias_step import BiasStep, find_bias_step
-from ._wahba import InitialState, initial_state_with_gyro
+from ._wahba import InitialState, carry_back_with_gyro, initial_state_with_gyro
 from .allan import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
 from .anomaly import Anomaly
 from .constants import DEG_PER_RAD, NT_PER_UNIT, RAD_S_PER_UNIT, MU_EARTH_m3_s2
@@ -447,7 +447,10 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         Calibrated magnetometer (bias, soft iron and coil crosstalk removed). Non-finite rows are
         not used for updates.
     b_ref_gcrf_nT : (N, 3) nT, GCRF
-        Reference (model) field at the magnetometer time stamps.
+        Reference (model) field at the magnetometer time stamps. Non-finite rows (no orbit position
+        for that sample) are not used for updates either. The opening attitude is solved at the first
+        row where both are finite and carried back to the filter's start along the gyro (or Euler's
+        equations in dynamics mode); ``init["carried_back_s"]`` says how far.
     gyro_t_utc : (G,) datetime64[ns], optional
     w_gyro_body_rad_s : (G, 3) rad/s, body frame, optional
         Gyro rate (sensor-to-body rotation applied); non-finite rows are treated as missing.
@@ -460,7 +463,8 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         time stamp to the next; dipole_per_amp : (3, 3) A m^2/A, nominal C (m_body = C i).
         Used by dynamics mode for the magnetic torque; absent coils mean zero dipole.
     r_gcrf_km : (N, 3) km, GCRF, optional
-        Position at the magnetometer time stamps, for the gravity-gradient torque (dynamics mode).
+        Position at the magnetometer time stamps, for the gravity-gradient torque (dynamics mode);
+        non-finite rows are interpolated from their neighbours.
     init_window_s : float
         Minimum length of the opening window for the attitude initialisation, s.
     rate_window_s : float
@@ -500,10 +504,14 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         if inertia_kg_m2.shape != (3, 3):
             raise InputError(f"expected a 3x3 inertia, got shape {inertia_kg_m2.shape}", key="inertia_kg_m2")
 
+    if r_gcrf_km is not None:
+        r_gcrf_km = _vectors(r_gcrf_km, len(tm), "r_gcrf_km")
+    # a row is used for an update only when both its field and its reference field are finite (a
+    # reference row is NaN where the orbit has no position)
     ok_rows = np.all(np.isfinite(bb), axis=1) & np.all(np.isfinite(br), axis=1)
     if ok_rows.sum() < 10:
-        raise InputError(f"expected at least 10 finite magnetometer rows, got {int(ok_rows.sum())}",
-                         key="b_body_nT")
+        raise InputError(f"expected at least 10 magnetometer rows with a finite field and reference field, got "
+                         f"{int(ok_rows.sum())}", key="b_body_nT")
     t_epoch = tm[0]
     anomalies: list[Anomaly] = []
     reason = ""
@@ -574,6 +582,8 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
     report("initialisation", 0.05)
     init = initial_state_with_gyro(tms[ok_u], bb_u[ok_u], br_u[ok_u], tgs, wg, sigma_vec_nT=sig_vec,
                                    sigma_bias0_rad_s=noise.gyro_bias0_rad_s, window_s=init_window_s)
+    # the opening is solved at the first usable row; the filter starts at t = 0
+    init = carry_back_with_gyro(init, float(tms[ok_u][0]), 0.0, tgs, wg, noise.gyro_arw_rad_sqrt_s)
     report("forward filter and smoother", 0.1)
     run = run_filter(core.MODE_GYRO, t, u, is_mag, z, r, prm, init, out_idx, len(mag_pos))
     anomalies = []
