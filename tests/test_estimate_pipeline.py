@@ -98,7 +98,7 @@ def test_pipeline_bias_jump_and_nominal(scenario, seed, tmp_path):
 @pytest.mark.parametrize("scenario", ["gyro_bias_jump", "nominal"])
 @pytest.mark.parametrize("seed", range(11, 21))
 def test_pipeline_bias_jump_and_nominal_ten_seeds(scenario, seed, tmp_path):
-    """Measured on seeds 11-20: every jump on x, +0.491 to +0.511 deg/s, found at 899.5-900.6 s (true
+    """Measured on seeds 11-20: every jump on x, +0.491 to +0.511 deg/s, found at 899.6-900.6 s (true
     900 s) inside its reported interval; attitude 0.29-1.15 deg RMS after 10 min in both scenarios; NIS
     inside 0.947-0.952; no gyro_bias_jump or filter_inconsistent on any nominal pass. Before: jumps
     missed on seeds 11, 14 and 20, sizes 0.428-0.503, attitude 15-72 deg RMS on four of the twenty."""
