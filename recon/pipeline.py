@@ -229,8 +229,11 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
     m_stb = mission.magnetometer.sensor_to_body
     b_sensor = mag.values @ m_stb  # (M^T b_body^T)^T: raw readings back in sensor axes, nT
     gyro = cleaned.gyro
-    # the motion is judged where the rate, the attitude and the reference field all exist
-    sel = (np.isfinite(ref.b_gcrf_nT).all(axis=1) & np.isfinite(ref.r_gcrf_km).all(axis=1)
+    # the history's rows are magnetometer instants (possibly fewer than the log's): align the reference
+    # field by time, then judge the motion where the rate, the attitude and the reference all exist
+    k = np.clip(np.searchsorted(ref.time_utc, hist.time_utc), 0, len(ref.time_utc) - 1)
+    b_ref, r_ref = ref.b_gcrf_nT[k], ref.r_gcrf_km[k]
+    sel = ((ref.time_utc[k] == hist.time_utc) & np.isfinite(b_ref).all(axis=1) & np.isfinite(r_ref).all(axis=1)
            & np.isfinite(hist.w_body_rad_s).all(axis=1) & np.isfinite(hist.q_body_from_gcrf).all(axis=1))
     w_cov = hist.smoothed.covariance[sel, 3:6, 3:6] if hist.mode == "dynamics" else None
     return judge_pass(
@@ -239,7 +242,7 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
         time_coil_utc=cleaned.coils.time_utc, i_coil_A=cleaned.coils.values,
         time_utc=hist.time_utc[sel], w_body_rad_s=hist.w_body_rad_s[sel],
         q_body_from_gcrf=hist.q_body_from_gcrf[sel],
-        b_gcrf_nT=ref.b_gcrf_nT[sel], r_gcrf_km=ref.r_gcrf_km[sel], w_cov_rad2_s2=w_cov,
+        b_gcrf_nT=b_ref[sel], r_gcrf_km=r_ref[sel], w_cov_rad2_s2=w_cov,
         time_gyro_utc=None if gyro is None else gyro.time_utc,
         w_gyro_body_rad_s=None if gyro is None else gyro.values,
         K_nT_per_A=cal.crosstalk_combined_nT_per_A)
