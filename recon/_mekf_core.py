@@ -135,10 +135,9 @@ def _rot_step_into(v0, v1, v2, q, out):
 
 
 @njit(cache=True)
-def attitude_matrix(q):
-    """A(q) with ``A @ v_gcrf = v_body`` (scipy ``as_matrix``)."""
+def _attitude_matrix_into(q, a):
+    """Write A(q) into the (3, 3) array ``a`` (see :func:`attitude_matrix`)."""
     x, y, z, w = q[0], q[1], q[2], q[3]
-    a = np.empty((3, 3))
     a[0, 0] = w * w + x * x - y * y - z * z
     a[0, 1] = 2.0 * (x * y - z * w)
     a[0, 2] = 2.0 * (x * z + y * w)
@@ -148,6 +147,13 @@ def attitude_matrix(q):
     a[2, 0] = 2.0 * (x * z - y * w)
     a[2, 1] = 2.0 * (y * z + x * w)
     a[2, 2] = w * w - x * x - y * y + z * z
+
+
+@njit(cache=True)
+def attitude_matrix(q):
+    """A(q) with ``A @ v_gcrf = v_body`` (scipy ``as_matrix``)."""
+    a = np.empty((3, 3))
+    _attitude_matrix_into(q, a)
     return a
 
 
@@ -553,16 +559,7 @@ def _update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx)
     ``(I - K H) P (I - K H)^T + K R K^T``, evaluated as ``P - K (H P) - (K (H P))^T + K S K^T``, which
     is the same expression multiplied out (valid for any gain K) at a third of the cost.
     """
-    x, y, zq, w = q[0], q[1], q[2], q[3]
-    a[0, 0] = w * w + x * x - y * y - zq * zq
-    a[0, 1] = 2.0 * (x * y - zq * w)
-    a[0, 2] = 2.0 * (x * zq + y * w)
-    a[1, 0] = 2.0 * (x * y + zq * w)
-    a[1, 1] = w * w - x * x + y * y - zq * zq
-    a[1, 2] = 2.0 * (y * zq - x * w)
-    a[2, 0] = 2.0 * (x * zq - y * w)
-    a[2, 1] = 2.0 * (y * zq + x * w)
-    a[2, 2] = w * w - x * x - y * y + zq * zq
+    _attitude_matrix_into(q, a)
     r0 = b_ref[0] + db[0]
     r1 = b_ref[1] + db[1]
     r2 = b_ref[2] + db[2]
