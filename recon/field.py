@@ -34,7 +34,7 @@ from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
 from . import frames
 from .errors import InputError
-from .orbit import OrbitState, gcrf_to_itrf, itrf_to_gcrf, orbit_at
+from .orbit import OrbitState, _from_gcrf_nodes, itrf_to_gcrf, orbit_at
 
 __all__ = ["ReferenceField", "reference_field", "field_along_orbit", "field_for_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
            "GRID_STEP_s", "DATE_BLOCK_s", "IGRF14_START_UTC", "IGRF14_STOP_UTC"]
@@ -213,12 +213,8 @@ def _orbit_dense(orbit_spec, t: np.ndarray, dut1_s: float, source) -> OrbitState
         return None
     xg, x = (nodes - ns[0]) / 1e9, (ns - ns[0]) / 1e9
     spline = CubicHermiteSpline(xg, g.r_gcrf_km, g.v_gcrf_km_s, axis=0)
-    r_gcrf = spline(x)
-    v_gcrf = spline(x, 1)
-    r_itrf = gcrf_to_itrf(t, r_gcrf, dut1_s)
-    lat, lon, h = frames.itrf_to_geodetic(r_itrf)
     reason = np.full(len(t), "", dtype=g.reason.dtype)
-    return OrbitState(t, r_gcrf, v_gcrf, r_itrf, lat, lon, h, reason, g.source)
+    return _from_gcrf_nodes(t, reason, spline(x), spline(x, 1), dut1_s, g.source)
 
 
 def field_for_orbit(orbit_spec, orb, *, grid_step_s: float = GRID_STEP_s, dut1_s: float = 0.0,
