@@ -26,9 +26,9 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from recon._magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
-from recon._steps import fit_crosstalk_steps
-from recon._twostep import linear_calibration
+from recon.calibrate.linear import linear_calibration
+from recon.calibrate.magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
+from recon.calibrate.steps import fit_crosstalk_steps
 
 SEED = 20260714
 REPEATS = 3

@@ -22,9 +22,9 @@ import numpy as np
 from filterpy.kalman import ExtendedKalmanFilter
 from scipy.spatial.transform import Rotation
 
-from recon import _mekf_core as core
-from recon._wahba import InitialState
-from recon.estimate import NoiseModel, _params, run_filter
+from recon.estimate import mekf_core as core
+from recon.estimate.attitude import NoiseModel, _params, run_filter
+from recon.estimate.initial import InitialState
 
 DEG = np.pi / 180.0
 

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError
+from .core.errors import InputError
 
 __all__ = [
     "TimeSpec", "SensorSpec", "CoilSpec", "ControllerSpec", "PositionsSpec", "OrbitSpec",

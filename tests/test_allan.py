@@ -7,7 +7,7 @@ import allantools
 import numpy as np
 import pytest
 
-from recon.allan import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
+from recon.estimate.noise import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
 
 FS_HZ = 10.0
 

@@ -13,9 +13,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
-from recon._magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
-from recon._steps import fit_crosstalk_steps
-from recon._twostep import linear_calibration
+from recon.calibrate.linear import linear_calibration
+from recon.calibrate.magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
+from recon.calibrate.steps import fit_crosstalk_steps
 
 I_MAX_A = 0.12
 NOISE_nT = 30.0
@@ -276,7 +276,7 @@ def test_step_response_closed_loop_needs_the_controller_samples_skipped():
 # ---------------------------------------------------------------------------------------- invariants
 def test_analytic_jacobian_matches_finite_differences():
     # the fit's analytic Jacobian (dP = -P dS P) against central differences of the residual
-    from recon._magfit import _jacobian
+    from recon.calibrate.magfit import _jacobian
 
     p = synthetic_pass(6, n=50)
     x = params_from_matrices(p["bias"], p["S"], p["K"])

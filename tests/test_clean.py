@@ -11,11 +11,11 @@ import pytest
 from scipy.spatial.transform import Rotation
 from scipy.stats import norm
 
-from recon import _hampel
-from recon.clean import clean_pass, find_gaps, format_inspect_table, write_ledger
+from recon.clean import hampel as _hampel
+from recon.clean.logs import clean_pass, find_gaps, format_inspect_table, write_ledger
 from recon.config import load_mission
-from recon.errors import InputError
-from recon.load import load_pass
+from recon.core.errors import InputError
+from recon.load.logs import load_pass
 
 HEAD = """\
 [pass]
@@ -388,7 +388,7 @@ def test_simulated_pass_with_every_data_fault(tmp_path, seed, overrides):
 
 
 def test_gyro_angle_random_walk_becomes_per_sample_noise(tmp_path):
-    from recon.clean import _sample_noise
+    from recon.clean.logs import _sample_noise
 
     gyro = """
 [gyro]

@@ -12,8 +12,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from recon.aem import read_aem
 from recon.pipeline import run_pass
+from recon.report.aem import read_aem
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLES = sorted(p.parent for p in (REPO / "sample_telemetry").glob("*/mission.toml"))

@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from recon._bias_step import BiasStep, find_bias_step, pooled_bias
-from recon.estimate import bias_step_inputs
+from recon.estimate.attitude import bias_step_inputs
+from recon.estimate.bias_step import BiasStep, find_bias_step, pooled_bias
 
 DEG = np.pi / 180.0
 BIAS_WALK = 1e-4 * DEG  # rad/s/sqrt(s), the filter's default

@@ -13,9 +13,9 @@ import pytest
 from scipy import stats
 from test_estimate_truth import attitude_error_rad
 
-from recon._dynamics_filter import coil_log_with_off_windows
-from recon._wahba import initial_state_with_gyro
-from recon.estimate import NoiseModel, estimate_attitude
+from recon.estimate.attitude import NoiseModel, estimate_attitude
+from recon.estimate.dynamics_mode import coil_log_with_off_windows
+from recon.estimate.initial import initial_state_with_gyro
 from recon.simulate.api import simulate_pass
 
 DEG = np.pi / 180.0

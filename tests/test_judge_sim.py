@@ -25,10 +25,10 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from recon import _dipole_id as dip
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
-from recon.frames import body_from_gcrf
-from recon.judge import THRESHOLDS, judge_pass
+from recon.core.frames import body_from_gcrf
+from recon.judge.dipole import identify as dip
+from recon.judge.judgement import THRESHOLDS, judge_pass
 from recon.simulate import simulate_pass
 
 FAST_SEEDS = (0, 1)

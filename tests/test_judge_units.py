@@ -8,13 +8,13 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from recon import _dipole_id as dip
-from recon import _effect as eff
-from recon import _replay as rep
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
-from recon.constants import MU_EARTH_km3_s2
-from recon.errors import InputError
-from recon.judge import _latency_profile, judge_pass
+from recon.core.constants import MU_EARTH_km3_s2
+from recon.core.errors import InputError
+from recon.judge import effect as eff
+from recon.judge import replay as rep
+from recon.judge.dipole import identify as dip
+from recon.judge.judgement import _latency_profile, judge_pass
 
 C_NOM = np.diag([1.5, 1.5, 1.1])
 IMAX = np.array([0.12, 0.12, 0.12])

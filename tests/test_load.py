@@ -10,10 +10,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from recon._timescales import gps_seconds_to_utc, iso_to_utc, ticks_to_utc, unix_seconds_to_utc, unwrap_ticks
 from recon.config import load_mission
-from recon.errors import InputError
-from recon.load import load_log, load_pass
+from recon.core.errors import InputError
+from recon.load.logs import load_log, load_pass
+from recon.load.timescales import gps_seconds_to_utc, iso_to_utc, ticks_to_utc, unix_seconds_to_utc, unwrap_ticks
 
 HEAD = """\
 [pass]
@@ -356,7 +356,7 @@ def test_ticks_log_through_load_with_rollover(tmp_path):
 def test_iso_fast_byte_path_agrees_with_pandas_path():
     # the fixed-width numpy parse of the bytes and pandas' ISO 8601 parse of the text must agree,
     # field by field, on valid and invalid times alike
-    from recon._timescales import iso_bytes_to_utc
+    from recon.load.timescales import iso_bytes_to_utc
 
     rng = np.random.default_rng(5)
     base = np.datetime64("2026-07-14T09:12:00", "ns")

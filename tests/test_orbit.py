@@ -9,10 +9,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from recon import frames, orbit
 from recon.config import OrbitSpec, PositionsSpec, TimeSpec
-from recon.errors import InputError
-from recon.oem import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
+from recon.core import frames
+from recon.core.errors import InputError
+from recon.orbit import sources as orbit
+from recon.orbit.oem import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
 
 AUTH = Path(__file__).parent / "authorities"
 

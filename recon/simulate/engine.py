@@ -24,8 +24,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ..errors import InputError
-from ..frames import body_from_gcrf, q_from_rotation
+from ..core.errors import InputError
+from ..core.frames import body_from_gcrf, q_from_rotation
 from .controller import bdot_dipole_Am2, coils_gated, cross_product_dipole_Am2, currents_from_dipole_A
 from .dynamics import propagate
 from .environment import build_environment, invented_tle, orbit_positions_km

@@ -25,8 +25,8 @@ import ppigrf
 from scipy.interpolate import CubicSpline
 from sgp4.api import Satrec
 
-from ..errors import InputError
-from ..frames import itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
+from ..core.errors import InputError
+from ..core.frames import itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
 
 __all__ = ["Environment", "tle_checksum", "format_tle", "invented_tle", "orbit_positions_km",
            "igrf_gcrf_nT", "unmodelled_field_nT", "build_environment"]

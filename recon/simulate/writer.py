@@ -45,7 +45,7 @@ from pathlib import Path
 import erfa
 import numpy as np
 
-from ..constants import GPS_EPOCH_UTC, NT_PER_UNIT
+from ..core.constants import GPS_EPOCH_UTC, NT_PER_UNIT
 from .datafaults import inject
 
 __all__ = ["render", "write_files", "TRUTH_COLUMNS"]

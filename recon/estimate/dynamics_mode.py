@@ -27,10 +27,10 @@ from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from . import _mekf_core as core
-from ._wahba import InitialState, davenport_q_method, initial_state_with_gyro
-from .allan import white_noise_from_differences
-from .anomaly import Anomaly
+from ..core.anomaly import Anomaly
+from . import mekf_core as core
+from .initial import InitialState, davenport_q_method, initial_state_with_gyro
+from .noise import white_noise_from_differences
 
 __all__ = ["GyroCheck", "check_gyro", "step_mean_dipole", "coil_log_with_off_windows", "carry_back_with_dynamics",
            "local_slope", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
@@ -434,7 +434,7 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     When a gyro log exists whose early part is alive (dead only later in the pass), that part seeds
     the initial attitude and rate; otherwise the start is found from the magnetometer alone.
     """
-    from . import estimate as est  # one-way at run time: estimate owns the result types
+    from . import attitude as est  # one-way at run time: estimate owns the result types
 
     t_epoch = tm[0]
     t = (tm - t_epoch) / _NS

@@ -32,13 +32,13 @@ from typing import Any
 
 import numpy as np
 
-from ._agreement import combine_crosstalk, compare_crosstalk
-from ._calreport import format_crosstalk_table, summary_block
-from ._currents import controller_samples, effective_current
-from ._magfit import AXES, PARAM_NAMES, MagFit, fit_magnetometer, matrices_from_params, nominal_params
-from ._steps import StepFit, fit_crosstalk_steps
-from .anomaly import Anomaly
-from .constants import NT_PER_UNIT
+from ..core.anomaly import Anomaly
+from ..core.coils import controller_samples, effective_current
+from ..core.constants import NT_PER_UNIT
+from .agreement import combine_crosstalk, compare_crosstalk
+from .magfit import AXES, PARAM_NAMES, MagFit, fit_magnetometer, matrices_from_params, nominal_params
+from .steps import StepFit, fit_crosstalk_steps
+from .summary import format_crosstalk_table, summary_block
 
 __all__ = ["Calibration", "calibrate_pass", "calibrate_arrays", "effective_current", "format_crosstalk_table",
            "compare_crosstalk", "combine_crosstalk"]

@@ -45,14 +45,14 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from . import _dynamics_filter as dyn
-from . import _mekf_core as core
-from ._bias_step import BiasStep, find_bias_step
-from ._wahba import InitialState, carry_back_with_gyro, initial_state_with_gyro
-from .allan import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
-from .anomaly import Anomaly
-from .constants import DEG_PER_RAD, NT_PER_UNIT, RAD_S_PER_UNIT, MU_EARTH_m3_s2
-from .errors import InputError
+from ..core.anomaly import Anomaly
+from ..core.constants import DEG_PER_RAD, NT_PER_UNIT, RAD_S_PER_UNIT, MU_EARTH_m3_s2
+from ..core.errors import InputError
+from . import dynamics_mode as dyn
+from . import mekf_core as core
+from .bias_step import BiasStep, find_bias_step
+from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
+from .noise import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
 
 __all__ = ["NoiseModel", "Track", "AttitudeHistory", "estimate_attitude", "write_attitude_csv", "gyro_noise_figures"]
 

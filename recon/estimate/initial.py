@@ -30,7 +30,7 @@ from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from . import _mekf_core as core
+from . import mekf_core as core
 
 __all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion", "InitialState",
            "initial_state_with_gyro", "integrate_gyro", "carry_back_with_gyro"]

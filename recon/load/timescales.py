@@ -22,7 +22,7 @@ import erfa
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from .constants import GPS_EPOCH_UTC
+from ..core.constants import GPS_EPOCH_UTC
 
 __all__ = [
     "TAI_MINUS_GPS_s", "EARLIEST_UTC", "LATEST_UTC",

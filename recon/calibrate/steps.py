@@ -57,7 +57,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ._twostep import SYM_INDEX
+from .linear import SYM_INDEX
 
 __all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
 

@@ -32,9 +32,9 @@ import numpy as np
 import ppigrf
 from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
-from . import frames
-from .errors import InputError
-from .orbit import OrbitState, _from_gcrf_nodes, itrf_to_gcrf, orbit_at
+from ..core import frames
+from ..core.errors import InputError
+from ..orbit.sources import OrbitState, _from_gcrf_nodes, itrf_to_gcrf, orbit_at
 
 __all__ = ["ReferenceField", "reference_field", "field_along_orbit", "field_for_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
            "GRID_STEP_s", "DATE_BLOCK_s", "IGRF14_START_UTC", "IGRF14_STOP_UTC"]

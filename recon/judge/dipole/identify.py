@@ -57,7 +57,7 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.stats import chi2
 
-from .constants import MU_EARTH_m3_s2
+from ...core.constants import MU_EARTH_m3_s2
 
 __all__ = ["DipoleFit", "identify_dipole", "applied_current_A", "scan_actuation_latency", "classify_coil",
            "rate_bias_knots_s", "rate_bias_evidence", "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY",

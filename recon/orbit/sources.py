@@ -29,10 +29,10 @@ import pandas as pd
 from scipy.interpolate import CubicSpline
 from sgp4.api import SGP4_ERRORS, Satrec
 
-from . import frames
-from .config import OrbitSpec, PositionsSpec, TimeSpec
-from .constants import GPS_EPOCH_UTC, OMEGA_EARTH_rad_s
-from .errors import InputError
+from ..config import OrbitSpec, PositionsSpec, TimeSpec
+from ..core import frames
+from ..core.constants import GPS_EPOCH_UTC, OMEGA_EARTH_rad_s
+from ..core.errors import InputError
 from .oem import hermite_interpolate, lagrange_interpolate, read_oem, write_oem
 
 __all__ = [

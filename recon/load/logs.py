@@ -30,11 +30,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import _timescales as ts
-from ._csvscan import Scan, read_log_bytes, scan_bytes
-from .config import CoilSpec, Mission, SensorSpec, TimeSpec
-from .constants import A_PER_UNIT, NT_PER_UNIT, RAD_S_PER_UNIT
-from .errors import InputError
+from ..config import CoilSpec, Mission, SensorSpec, TimeSpec
+from ..core.constants import A_PER_UNIT, NT_PER_UNIT, RAD_S_PER_UNIT
+from ..core.errors import InputError
+from . import timescales as ts
+from .csvscan import Scan, read_log_bytes, scan_bytes
 
 __all__ = [
     "LEDGER_COLUMNS", "SensorLog", "LoadedPass", "load_pass", "load_log", "ledger_frame",

@@ -35,7 +35,7 @@ from pathlib import Path
 import erfa
 import numpy as np
 
-from .errors import InputError
+from ..core.errors import InputError
 
 __all__ = ["OemSegment", "read_oem", "write_oem", "lagrange_interpolate", "hermite_interpolate",
            "parse_ccsds_time"]

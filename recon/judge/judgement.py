@@ -40,13 +40,13 @@ from typing import Any
 
 import numpy as np
 
-from . import _dipole_id as dip
-from . import _effect as eff
-from . import _replay as rep
-from .anomaly import Anomaly
-from .config import CoilSpec, ControllerSpec
-from .errors import InputError
-from .frames import body_from_gcrf
+from ..config import CoilSpec, ControllerSpec
+from ..core.anomaly import Anomaly
+from ..core.errors import InputError
+from ..core.frames import body_from_gcrf
+from . import effect as eff
+from . import replay as rep
+from .dipole import identify as dip
 
 __all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass", "THRESHOLDS"]
 

@@ -38,8 +38,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ._wahba import scipy_from_shuster_quaternion
-from .errors import InputError
+from ..core.errors import InputError
+from ..estimate.initial import scipy_from_shuster_quaternion
 
 __all__ = ["AemSegment", "Aem", "format_aem", "write_aem", "read_aem", "ATTITUDE_TYPES"]
 

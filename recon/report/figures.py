@@ -14,7 +14,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .report import Figure  # noqa: E402
+from .html import Figure  # noqa: E402
 
 __all__ = ["quality_timeline", "field_magnitude", "attitude_uncertainty", "rates", "gyro_bias",
            "commands", "kinetic_energy", "ground_track"]

@@ -40,8 +40,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ._dynamics_filter import _gyro_at, local_slope
-from .anomaly import Anomaly
+from ..core.anomaly import Anomaly
+from .dynamics_mode import _gyro_at, local_slope
 
 __all__ = ["BiasStep", "find_bias_step", "kinematic_residual", "window_biases", "pooled_bias"]
 

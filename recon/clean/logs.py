@@ -34,11 +34,11 @@ from dataclasses import dataclass, fields
 import numpy as np
 import pandas as pd
 
-from . import _hampel
-from ._cleanreport import format_inspect_table, stage_anomalies, write_ledger
-from .anomaly import Anomaly
-from .config import Mission
-from .load import LEDGER_COLUMNS, LoadedPass, SensorLog, empty_ledger, ledger_frame
+from ..config import Mission
+from ..core.anomaly import Anomaly
+from ..load.logs import LEDGER_COLUMNS, LoadedPass, SensorLog, empty_ledger, ledger_frame
+from . import hampel as _hampel
+from .findings import format_inspect_table, stage_anomalies, write_ledger
 
 __all__ = [
     "CleanedLog", "CleanedPass", "clean_pass", "clean_log", "find_gaps", "format_inspect_table",
@@ -433,7 +433,7 @@ def _clean_log(log: SensorLog, mission: Mission) -> tuple[CleanedLog, pd.DataFra
 
 def _amps_per_file_unit(spec) -> np.ndarray:
     """A per file unit for each coil (duty: max_current_A; A or mA: the unit factor)."""
-    from .constants import A_PER_UNIT
+    from ..core.constants import A_PER_UNIT
 
     if spec.unit == "duty":
         return np.asarray(spec.max_current_A, dtype=float)
@@ -457,7 +457,7 @@ def clean_pass(loaded: LoadedPass, mission: Mission) -> CleanedPass:
     InputError
         When cleaning leaves a log with no rows (for example a pass window that misses the data).
     """
-    from .errors import InputError
+    from ..core.errors import InputError
 
     cleaned: dict[str, CleanedLog | None] = {"magnetometer": None, "gyro": None, "coils": None}
     parts = [loaded.ledger] if len(loaded.ledger) else []

@@ -11,8 +11,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .anomaly import Anomaly
-from .constants import NT_PER_UNIT
+from ..core.anomaly import Anomaly
+from ..core.constants import NT_PER_UNIT
 
 __all__ = [
     "LEO_FIELD_MIN_nT", "LEO_FIELD_MAX_nT", "ROWS_DROPPED_WARN_FRACTION", "STUCK_MIN_SAMPLES",

@@ -57,7 +57,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import least_squares
 
-from ._twostep import SYM_INDEX, linear_calibration, six_from_sym, sym_from_six
+from .linear import SYM_INDEX, linear_calibration, six_from_sym, sym_from_six
 
 __all__ = ["MagFit", "fit_magnetometer", "PARAM_NAMES", "AXES", "residual_nT", "nominal_params",
            "params_from_matrices", "matrices_from_params"]
