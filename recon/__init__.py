@@ -5,8 +5,7 @@ imported on first use, so ``import recon`` stays quick.
 """
 
 from .config import Mission, load_mission
-from .core.anomaly import Anomaly
-from .core.errors import InputError
+from .core import Anomaly, InputError
 
 __version__ = "0.1.0"
 

@@ -9,7 +9,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from .core.errors import InputError
+from .core import InputError
 
 EXIT_OK, EXIT_CRITICAL, EXIT_BAD_INPUT = 0, 1, 2
 

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .core.errors import InputError
+from .core import InputError
 
 __all__ = [
     "TimeSpec", "SensorSpec", "CoilSpec", "ControllerSpec", "PositionsSpec", "OrbitSpec",

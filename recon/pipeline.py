@@ -15,8 +15,7 @@ from typing import Any
 import numpy as np
 
 from .config import Mission, load_mission
-from .core.anomaly import Anomaly
-from .core.errors import InputError
+from .core import Anomaly, InputError
 
 __all__ = ["PassResult", "InspectResult", "run_pass", "inspect_pass", "crosstalk_pass", "write_json"]
 

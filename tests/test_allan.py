@@ -7,7 +7,8 @@ import allantools
 import numpy as np
 import pytest
 
-from recon.estimate.noise import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
+from recon.core.signal import white_noise_from_differences
+from recon.estimate.noise import gyro_noise_from_adev, overlapping_adev
 
 FS_HZ = 10.0
 

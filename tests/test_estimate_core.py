@@ -11,7 +11,8 @@ from scipy.spatial.transform import Rotation
 
 from recon.estimate import mekf_core as core
 from recon.estimate.attitude import NoiseModel, _params
-from recon.estimate.initial import davenport_q_method, scipy_from_shuster_quaternion
+from recon.core.frames import scipy_from_shuster_quaternion
+from recon.estimate.initial import davenport_q_method
 
 INERTIA = np.array([[0.021, 0.0004, 0.0], [0.0004, 0.023, 0.0002], [0.0, 0.0002, 0.0071]])
 # float64 round-off after a few hundred operations on numbers of order 1: agreement "to 1e-12"

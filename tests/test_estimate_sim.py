@@ -14,7 +14,7 @@ from scipy import stats
 from test_estimate_truth import attitude_error_rad
 
 from recon.estimate.attitude import NoiseModel, estimate_attitude
-from recon.estimate.dynamics_mode import coil_log_with_off_windows
+from recon.core.coils import current_log_with_off_windows
 from recon.estimate.initial import initial_state_with_gyro
 from recon.simulate.api import simulate_pass
 
@@ -28,7 +28,7 @@ def _inputs(sp):
     b_body = b_sensor @ mag.sensor_to_body.T
     w_body = sp.w_gyro_meas_sensor_rad_s @ sp.gyro.sensor_to_body.T
     cfg = sp.config
-    tc, ic = coil_log_with_off_windows(sp.tick_time_utc, sp.i_cmd_A, *cfg.off_window_s)
+    tc, ic = current_log_with_off_windows(sp.tick_time_utc, sp.i_cmd_A, *cfg.off_window_s)
     noise = NoiseModel(mag_nT=mag.noise_nT, gyro_arw_rad_sqrt_s=sp.gyro.arw_rad_sqrt_s,
                        gyro_bias_walk_rad_s_sqrt_s=sp.gyro.rrw_rad_s_sqrt_s)
     return dict(b_body_nT=b_body, b_ref_gcrf_nT=sp.b_igrf_gcrf_nT, gyro_t_utc=sp.gyro_time_utc,

@@ -32,9 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from ..core.anomaly import Anomaly
-from ..core.coils import controller_samples, effective_current
-from ..core.constants import NT_PER_UNIT
+from ..core import NS_PER_S, NT_PER_UNIT, Anomaly, controller_samples, effective_current
 from .agreement import combine_crosstalk, compare_crosstalk
 from .magfit import AXES, PARAM_NAMES, MagFit, fit_magnetometer, matrices_from_params, nominal_params
 from .steps import StepFit, fit_crosstalk_steps
@@ -43,7 +41,6 @@ from .summary import format_crosstalk_table, summary_block
 __all__ = ["Calibration", "calibrate_pass", "calibrate_arrays", "effective_current", "format_crosstalk_table",
            "compare_crosstalk", "combine_crosstalk"]
 
-_NS = 1_000_000_000
 # Crosstalk is called significant when an element is beyond 3 sigma of zero AND its field at full
 # current exceeds 5 x the magnetometer noise (common practice, no source).
 SIGNIFICANCE_SIGMA = 3.0
@@ -137,7 +134,7 @@ class Calibration:
 
 # ------------------------------------------------------------------------------------------ helpers
 def _seconds(t, t0) -> np.ndarray:
-    return (np.asarray(t, dtype="datetime64[ns]").astype(np.int64) - np.int64(t0)).astype(float) / _NS
+    return (np.asarray(t, dtype="datetime64[ns]").astype(np.int64) - np.int64(t0)).astype(float) / NS_PER_S
 
 
 def _reference_magnitude(reference, time_utc: np.ndarray) -> np.ndarray:

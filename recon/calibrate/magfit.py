@@ -57,6 +57,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import least_squares
 
+from ..core import robust_scale
 from .linear import SYM_INDEX, linear_calibration, six_from_sym, sym_from_six
 
 __all__ = ["MagFit", "fit_magnetometer", "PARAM_NAMES", "AXES", "residual_nT", "nominal_params",
@@ -195,10 +196,6 @@ class MagFit:
     fixed: dict[str, float] = field(default_factory=dict)
 
 
-def _robust_scale(r: np.ndarray) -> float:
-    return float(1.4826 * np.median(np.abs(r - np.median(r))))
-
-
 def fit_magnetometer(m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.ndarray | None = None,
                      *, t_s: np.ndarray | None = None, max_current_A: np.ndarray | None = None,
                      noise_nT: float | None = None, fixed: dict[str, float] | None = None,
@@ -293,7 +290,7 @@ def fit_magnetometer(m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.nda
     if not lin.positive_definite or np.abs(lin.soft_iron - np.eye(3)).max() > MAX_SOFT_IRON_DEVIATION:
         # an implausible linear soft iron: start also from the nominal sensor with the linear bias
         starts.append(np.where(free, np.r_[p_lin[:3], nominal[3:]], hold))
-    f_scale = max(min(_robust_scale(residual_nT(p0, m, h, i)) for p0 in starts), noise_nT or 0.0, 1e-3)
+    f_scale = max(min(robust_scale(residual_nT(p0, m, h, i)) for p0 in starts), noise_nT or 0.0, 1e-3)
 
     converged = True
     # screen at the first guess (nominal soft iron when the linear one is implausible), so that a
@@ -413,7 +410,7 @@ def _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s, conside
     sensitivity of the least-squares estimate to an error in the held values (Tapley, Schutz & Born
     2004, Statistical Orbit Determination, sec. 6.3, consider covariance)."""
     r = residual_nT(p, m, h, i)
-    med, scale = np.median(r), _robust_scale(r)
+    med, scale = np.median(r), robust_scale(r)
     inliers = np.abs(r - med) <= OUTLIER_FENCE * max(scale, 1e-9)
     n_free = int(free.sum())
     dof = max(int(inliers.sum()) - n_free, 1)

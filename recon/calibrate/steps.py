@@ -57,6 +57,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial.transform import Rotation
 
+from ..core import robust_scale
 from .linear import SYM_INDEX
 
 __all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
@@ -223,7 +224,7 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     for _ in range(2):
         theta, rss, xt, yt = _ols_segments(x, y, trend, seg, n_seg, use)
         r_norm = np.linalg.norm(yt - xt @ theta, axis=1)
-        scale = 1.4826 * np.median(np.abs(r_norm[use] - np.median(r_norm[use])))
+        scale = robust_scale(r_norm[use])
         new_use = r_norm <= np.median(r_norm[use]) + OUTLIER_FENCE * max(scale, 1e-9)
         if np.array_equal(new_use, use):
             break

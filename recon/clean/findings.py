@@ -11,8 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..core.anomaly import Anomaly
-from ..core.constants import NT_PER_UNIT
+from ..core import NT_PER_UNIT, Anomaly, utc_texts
 
 __all__ = [
     "LEO_FIELD_MIN_nT", "LEO_FIELD_MAX_nT", "ROWS_DROPPED_WARN_FRACTION", "STUCK_MIN_SAMPLES",
@@ -36,10 +35,6 @@ STUCK_MIN_SAMPLES = 50
 STUCK_MIN_FRACTION = 0.05
 
 _AXES = "xyz"
-
-
-def _iso(t) -> str:
-    return str(np.datetime64(t, "ms")) + "Z"
 
 
 def _body_axis(log, mission, a: int) -> str | None:
@@ -231,7 +226,7 @@ def write_ledger(path: Path | str, ledger: pd.DataFrame) -> None:
     """
     df = ledger.sort_values(["file", "line", "sensor", "action", "reason"], kind="stable").copy()
     t = df["time_utc"].to_numpy(dtype="datetime64[ns]")
-    txt = np.where(np.isnat(t), "", np.char.add(np.datetime_as_string(t, unit="us"), "Z"))
+    txt = utc_texts(t, unit="us")
     df["time_utc"] = txt.astype(object)
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)

@@ -41,6 +41,8 @@ import numba
 import numpy as np
 from scipy.stats import norm
 
+from ..core import robust_scale
+
 __all__ = [
     "MAD_TO_SIGMA", "HALF_WIDTH", "FALSE_ALARMS_PER_LOG", "window_bounds", "moving_median_mad",
     "moving_median_mad_reference", "hampel_threshold", "hampel_flags", "noise_sigma", "spike_flags",
@@ -239,7 +241,7 @@ def noise_sigma(x: np.ndarray, segment_start: np.ndarray) -> float:
     d2 = (x[:-2] - 2.0 * x[1:-1] + x[2:])[ok]
     if d2.size == 0:
         return 0.0
-    return float(MAD_TO_SIGMA * np.median(np.abs(d2)) / np.sqrt(6.0))
+    return float(robust_scale(d2, about_zero=True) / np.sqrt(6.0))
 
 
 def hampel_flags(x: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: float, floor):

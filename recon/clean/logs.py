@@ -35,7 +35,7 @@ import numpy as np
 import pandas as pd
 
 from ..config import Mission
-from ..core.anomaly import Anomaly
+from ..core import Anomaly, utc_text
 from ..load.logs import LEDGER_COLUMNS, LoadedPass, SensorLog, empty_ledger, ledger_frame
 from . import hampel as _hampel
 from .findings import format_inspect_table, stage_anomalies, write_ledger
@@ -130,16 +130,12 @@ class CleanedPass:
                 "flagged": {str(k): int(v) for k, v in sorted(flagged.items())},
                 "gaps": int(len(g.gaps)),
                 "saturated": int(g.saturated.any(axis=1).sum()),
-                "start_utc": _iso(g.time_utc[0]) if len(g) else None,
-                "stop_utc": _iso(g.time_utc[-1]) if len(g) else None,
+                "start_utc": utc_text(g.time_utc[0]) if len(g) else None,
+                "stop_utc": utc_text(g.time_utc[-1]) if len(g) else None,
                 "median_rate_hz": (float(1.0 / g.median_period_s)
                                    if np.isfinite(g.median_period_s) and g.median_period_s > 0 else None),
             }
         return out
-
-
-def _iso(t: np.datetime64) -> str:
-    return str(np.datetime64(t, "ms")) + "Z"
 
 
 # ------------------------------------------------------------------------------------------ gaps
@@ -229,8 +225,8 @@ def _window(book: _Book, mission: Mission) -> None:
     if mission.stop is not None:
         out |= t > np.datetime64(mission.stop, "ns")
     if out.any():
-        win = f"[{_iso(mission.start) if mission.start is not None else '...'}, " \
-              f"{_iso(mission.stop) if mission.stop is not None else '...'}]"
+        win = f"[{utc_text(mission.start) if mission.start is not None else '...'}, " \
+              f"{utc_text(mission.stop) if mission.stop is not None else '...'}]"
         book.drop(np.flatnonzero(out), "outside_window", f"outside the pass window {win}")
 
 
@@ -433,7 +429,7 @@ def _clean_log(log: SensorLog, mission: Mission) -> tuple[CleanedLog, pd.DataFra
 
 def _amps_per_file_unit(spec) -> np.ndarray:
     """A per file unit for each coil (duty: max_current_A; A or mA: the unit factor)."""
-    from ..core.constants import A_PER_UNIT
+    from ..core import A_PER_UNIT
 
     if spec.unit == "duty":
         return np.asarray(spec.max_current_A, dtype=float)
@@ -457,7 +453,7 @@ def clean_pass(loaded: LoadedPass, mission: Mission) -> CleanedPass:
     InputError
         When cleaning leaves a log with no rows (for example a pass window that misses the data).
     """
-    from ..core.errors import InputError
+    from ..core import InputError
 
     cleaned: dict[str, CleanedLog | None] = {"magnetometer": None, "gyro": None, "coils": None}
     parts = [loaded.ledger] if len(loaded.ledger) else []

@@ -7,15 +7,11 @@ from typing import Any
 
 import numpy as np
 
+from .timetext import utc_text
+
 __all__ = ["Anomaly", "SEVERITIES"]
 
 SEVERITIES = ("info", "warning", "critical")
-
-
-def _utc_text(t: np.datetime64 | None) -> str | None:
-    if t is None or np.isnat(np.datetime64(t, "ns")):
-        return None
-    return str(np.datetime64(t, "ms")) + "Z"
 
 
 @dataclass(frozen=True)
@@ -54,8 +50,8 @@ class Anomaly:
         d: dict[str, Any] = {"code": self.code, "severity": self.severity}
         if self.axis is not None:
             d["axis"] = self.axis
-        d["start_utc"] = _utc_text(self.start_utc)
-        d["stop_utc"] = _utc_text(self.stop_utc)
+        d["start_utc"] = utc_text(self.start_utc)
+        d["stop_utc"] = utc_text(self.stop_utc)
         if self.value is not None:
             d["value"] = float(self.value)
         d["evidence"] = self.evidence

@@ -21,7 +21,11 @@ RAD_S_PER_UNIT = {"rad/s": 1.0, "deg/s": 3.141592653589793 / 180.0}
 A_PER_UNIT = {"A": 1.0, "mA": 1.0e-3}  # "duty" is handled in load: duty x max_current_A
 
 NT_PER_T = 1.0e9
+# Angles: one name per direction, so that a module never has to guess what "_DEG" meant
 DEG_PER_RAD = 180.0 / 3.141592653589793
+RAD_PER_DEG = 3.141592653589793 / 180.0
+# Time stamps are datetime64[ns]: nanoseconds per second
+NS_PER_S = 1_000_000_000
 
 # GPS time origin (ICD-GPS-200: 1980-01-06T00:00:00 UTC, when GPS - UTC = 0)
 GPS_EPOCH_UTC = "1980-01-06T00:00:00"

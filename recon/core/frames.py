@@ -38,7 +38,7 @@ __all__ = [
     "rotation_from_q", "q_from_rotation", "body_from_gcrf",
     "utc_to_jd", "jd_tt", "jd_ut1", "gmst82_rad",
     "teme_to_itrf_matrix", "itrf_to_gcrf_matrix", "teme_to_gcrf_matrix",
-    "itrf_to_geodetic", "geodetic_to_itrf", "ned_to_itrf_matrix",
+    "itrf_to_geodetic", "geodetic_to_itrf", "ned_to_itrf_matrix", "scipy_from_shuster_quaternion",
 ]
 
 _NS_PER_DAY = 86_400 * 1_000_000_000
@@ -164,3 +164,30 @@ def ned_to_itrf_matrix(lat_rad: np.ndarray, lon_rad: np.ndarray) -> np.ndarray:
     m[..., :, 1] = np.stack([-so, co, np.zeros_like(lat)], axis=-1)  # east
     m[..., :, 2] = np.stack([-cl * co, -cl * so, -sl], axis=-1)  # down
     return m
+
+
+def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
+    """The one place where another quaternion convention is converted into recon's (and back).
+
+    Shuster's convention, used by Markley & Crassidis (2014, ch. 2 (memory)) and by CCSDS 504.0-B-2
+    (annex F2, the ADM quaternion "from frame A to frame B"), writes the attitude matrix of a
+    scalar-last quaternion as ``A = (q4^2 - |q|^2) I + 2 q q^T - 2 q4 [q x]``; scipy (recon's
+    convention, this module) has ``+ 2 w [v x]``. The same attitude matrix therefore has
+    conjugate quaternions in the two conventions, and this conversion is its own inverse.
+
+    Parameters
+    ----------
+    q_shuster : (..., 4) scalar-last quaternion in Shuster's convention (or scipy's, to go back)
+
+    Returns
+    -------
+    (..., 4) scalar-last quaternion in the other convention, scalar part >= 0
+
+    References
+    ----------
+    Shuster, M. D. (1993). A survey of attitude representations. J. Astronaut. Sci. 41(4), 439-517
+    (memory).
+    """
+    q = np.array(q_shuster, dtype=float, copy=True)
+    q[..., :3] *= -1.0
+    return np.where(q[..., 3:4] < 0, -q, q)

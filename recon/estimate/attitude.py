@@ -45,18 +45,27 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from ..core.anomaly import Anomaly
-from ..core.constants import DEG_PER_RAD, NT_PER_UNIT, RAD_S_PER_UNIT, MU_EARTH_m3_s2
-from ..core.errors import InputError
+from ..core import (
+    DEG_PER_RAD,
+    NS_PER_S,
+    NT_PER_UNIT,
+    RAD_S_PER_UNIT,
+    Anomaly,
+    InputError,
+    MU_EARTH_m3_s2,
+    held_mean,
+    local_slope,
+    utc_text,
+    white_noise_from_differences,
+)
 from . import dynamics_mode as dyn
 from . import mekf_core as core
 from .bias_step import BiasStep, find_bias_step
 from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
-from .noise import gyro_noise_from_adev, overlapping_adev, white_noise_from_differences
+from .noise import gyro_noise_from_adev, overlapping_adev
 
 __all__ = ["NoiseModel", "Track", "AttitudeHistory", "estimate_attitude", "write_attitude_csv", "gyro_noise_figures"]
 
-_NS = 1_000_000_000
 
 
 @dataclass(frozen=True)
@@ -220,8 +229,8 @@ class AttitudeHistory:
             "mode": self.mode,
             "mode_reason": self.mode_reason,
             "samples": int(len(self.time_utc)),
-            "start_utc": _utc(self.time_utc[0]) if len(self.time_utc) else None,
-            "stop_utc": _utc(self.time_utc[-1]) if len(self.time_utc) else None,
+            "start_utc": utc_text(self.time_utc[0], "us") if len(self.time_utc) else None,
+            "stop_utc": utc_text(self.time_utc[-1], "us") if len(self.time_utc) else None,
             "accuracy": {
                 "attitude_3sigma_deg_median": float(np.median(att3)),
                 "attitude_3sigma_deg_max": float(np.max(att3)),
@@ -239,10 +248,6 @@ class AttitudeHistory:
             "noise_source": dict(self.noise_source),
             "init": {k: (float(v) if isinstance(v, np.floating) else v) for k, v in self.init.items()},
         }
-
-
-def _utc(t) -> str:
-    return str(np.datetime64(t, "us")) + "Z"
 
 
 # ------------------------------------------------------------------------------------ input checks
@@ -285,7 +290,7 @@ def _resolve_noise(noise: NoiseModel, b_body_nT: np.ndarray, w_gyro: np.ndarray 
         src["gyro_arw_rad_sqrt_s"] = "given"
     if w_gyro is not None:
         if noise.rate_hold_accel_rad_s2 is None:
-            wdot = dyn.local_slope(t_gyro_s, w_gyro, 1.0)
+            wdot = local_slope(t_gyro_s, w_gyro, 1.0)
             ok = np.all(np.isfinite(wdot), axis=1)
             kw["rate_hold_accel_rad_s2"] = max(float(np.sqrt(np.mean(wdot[ok] ** 2))), 1e-6)
             src["rate_hold_accel_rad_s2"] = "data"
@@ -390,23 +395,6 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
     bad = core.smoother_pass(mode, t, u, r, prm, q_f, v_f, db_f, p_f, out_idx, q_s, v_s, db_s, p_s6,
                              np.empty((0, n, n)))
     return _Run(t, q_f, v_f, db_f, p_f, nis, q_s, v_s, db_s, p_s6, int(bad))
-
-
-def _box_mean_zoh(tg: np.ndarray, wg: np.ndarray, tq: np.ndarray, width: float) -> np.ndarray:
-    """Mean over [tq - width/2, tq + width/2] of the gyro signal held from each sample to the next."""
-    dt = np.diff(tg)
-    cum = np.vstack([np.zeros(3), np.cumsum(wg[:-1] * dt[:, None], axis=0)])  # integral at tg
-
-    def integral(x):
-        j = np.clip(np.searchsorted(tg, x, side="right") - 1, 0, len(tg) - 1)
-        return cum[j] + wg[j] * (x - tg[j])[:, None]
-
-    lo = np.maximum(tq - width / 2, tg[0])
-    hi = np.minimum(tq + width / 2, tg[-1])
-    span = np.maximum(hi - lo, 1e-12)
-    out = (integral(hi) - integral(lo)) / span[:, None]
-    j = np.clip(np.searchsorted(tg, tq, side="right") - 1, 0, len(tg) - 1)
-    return np.where((hi - lo)[:, None] > 0, out, wg[j])
 
 
 def _track(run: _Run, smoothed: bool, sel: np.ndarray, mode: int, prm: np.ndarray,
@@ -518,7 +506,7 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
     use_gyro = have_gyro and mode != "dynamics"
     check = None
     if have_gyro:
-        check = dyn.check_gyro((tg - t_epoch) / _NS, wg, (tm[ok_rows] - t_epoch) / _NS, bb[ok_rows],
+        check = dyn.check_gyro((tg - t_epoch) / NS_PER_S, wg, (tm[ok_rows] - t_epoch) / NS_PER_S, bb[ok_rows],
                                noise.gyro_arw_rad_sqrt_s)
         if not check.usable:
             use_gyro = mode == "gyro"
@@ -556,13 +544,13 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
     t_epoch = tm[first]
     tm_u = tm[first:]
     bb_u, br_u, ok_u = bb[first:], br[first:], ok_rows[first:]
-    dt_g = dt_g_ns / _NS
-    noise, src = _resolve_noise(noise, bb_u[ok_u], wg, (tg - tg[0]) / _NS)
+    dt_g = dt_g_ns / NS_PER_S
+    noise, src = _resolve_noise(noise, bb_u[ok_u], wg, (tg - tg[0]) / NS_PER_S)
     prm = _params(noise, dt_g, None)
     # step grid: every gyro sample and every magnetometer sample in [t_epoch, last mag]
     tg_in = tg[(tg >= t_epoch) & (tg <= tm_u[-1])]
     steps = np.union1d(tg_in, tm_u)
-    t = (steps - t_epoch) / _NS
+    t = (steps - t_epoch) / NS_PER_S
     mag_pos = np.searchsorted(steps, tm_u)
     is_mag = np.zeros(len(steps), bool)
     is_mag[mag_pos[ok_u]] = True
@@ -570,7 +558,7 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
     r = np.zeros((len(steps), 3))
     z[mag_pos] = np.nan_to_num(bb_u)
     r[mag_pos] = np.nan_to_num(br_u)
-    tgs = (tg - t_epoch) / _NS
+    tgs = (tg - t_epoch) / NS_PER_S
     j = np.clip(np.searchsorted(tg, steps, side="right") - 1, 0, len(tg) - 1)
     u = np.zeros((len(steps), 5))
     u[:, :3] = wg[j]
@@ -609,7 +597,7 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
             step = again
         anomalies.append(step.anomaly(t_epoch))
     width = max(float(rate_window_s), dt_g)
-    w_out = _box_mean_zoh(tgs, wg, tms, width)
+    w_out = held_mean(tgs, wg, tms, width)
     extra = noise.gyro_arw_rad_sqrt_s ** 2 / width
     sm = _track(run, True, mag_pos, core.MODE_GYRO, prm, w_out, extra)
     fw = _track(run, False, mag_pos, core.MODE_GYRO, prm, w_out, extra)
@@ -619,7 +607,7 @@ def _estimate_gyro(tm, bb, br, ok_rows, tg, wg, noise: NoiseModel, init_window_s
     return AttitudeHistory(times.astype("datetime64[ns]"), sm, fw, nis, tm_u[ok_u].astype("datetime64[ns]"),
                            "gyro", "", tuple(anomalies), noise, src,
                            {"method": init.method, "window_s": init.window_s,
-                            "t0_utc": _utc(np.datetime64(int(t_epoch), "ns")),
+                            "t0_utc": utc_text(np.datetime64(int(t_epoch), "ns"), "us"),
                             "bias0_dps": (init.v * DEG_PER_RAD).tolist(),
                             "sigma_att0_deg": (init.sigma_att_rad * DEG_PER_RAD).tolist(),
                             "magnetometer_rows_before_gyro": int(first),
@@ -670,14 +658,14 @@ def consistency_anomaly(hist: AttitudeHistory, min_fraction: float = 0.85,
     dof = hist.nis_dof
     if frac >= min_fraction and dof / 2 <= mean <= 2 * dof:
         return None
-    t = (hist.nis_time_utc - hist.nis_time_utc[0]).astype(np.int64) / _NS
+    t = (hist.nis_time_utc - hist.nis_time_utc[0]).astype(np.int64) / NS_PER_S
     edges = np.arange(0.0, t[-1] + window_s, window_s)
     which = np.clip(np.searchsorted(edges, t, side="right") - 1, 0, len(edges) - 1)
     sums = np.bincount(which, hist.nis, len(edges))
     counts = np.bincount(which, None, len(edges))
     means = np.where(counts > 0, sums / np.maximum(counts, 1), -np.inf)
     w = int(np.argmax(means))
-    start = hist.nis_time_utc[0] + np.timedelta64(int(edges[w] * _NS), "ns")
+    start = hist.nis_time_utc[0] + np.timedelta64(int(edges[w] * NS_PER_S), "ns")
     lo, hi = hist.nis_interval()
     return Anomaly("filter_inconsistent", "warning",
                    f"{100 * frac:.0f} % of {len(hist.nis)} magnetometer innovations fall inside their 95 % "
@@ -685,7 +673,7 @@ def consistency_anomaly(hist: AttitudeHistory, min_fraction: float = 0.85,
                    f"{100 * min_fraction:.0f} %); mean NIS {mean:.2f} for {dof} degrees of freedom; worst "
                    f"{window_s:.0f} s window mean {means[w]:.1f}. The stated attitude uncertainty is not "
                    f"trustworthy: check calibration, time tags and noise levels.",
-                   start, start + np.timedelta64(int(window_s * _NS), "ns"), value=frac)
+                   start, start + np.timedelta64(int(window_s * NS_PER_S), "ns"), value=frac)
 
 
 def write_attitude_csv(path: str | Path, hist: AttitudeHistory) -> Path:

@@ -40,17 +40,14 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ..core.anomaly import Anomaly
-from .dynamics_mode import _gyro_at, local_slope
+from ..core import NS_PER_S, RAD_PER_DEG, Anomaly, local_slope, window_mean
 
 __all__ = ["BiasStep", "find_bias_step", "kinematic_residual", "window_biases", "pooled_bias"]
 
-_NS = 1_000_000_000
-_DEG = np.pi / 180.0
 
 
 def _at(t_epoch_ns: int, t_s: float) -> np.datetime64:
-    return np.datetime64(int(t_epoch_ns + round(t_s * _NS)), "ns")
+    return np.datetime64(int(t_epoch_ns + round(t_s * NS_PER_S)), "ns")
 
 
 def _minus_cross_matrix(b: np.ndarray) -> np.ndarray:
@@ -77,7 +74,7 @@ def kinematic_residual(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
     rdot = local_slope(t_mag, b_ref_nT, half_width_s)
     a_rdot = Rotation.from_quat(q_body_from_gcrf).apply(np.nan_to_num(rdot))
     a_rdot[~np.all(np.isfinite(rdot), axis=1)] = np.nan
-    wg = _gyro_at(t_gyro, w_gyro, t_mag, half_width_s)
+    wg = window_mean(t_gyro, w_gyro, t_mag, half_width_s)
     return bdot - a_rdot + np.cross(wg, b_body_nT)
 
 
@@ -209,7 +206,7 @@ def _refine_time(t_mag: np.ndarray, b_body_nT: np.ndarray, e: np.ndarray, before
 
 def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, q_body_from_gcrf: np.ndarray,
                    t_gyro: np.ndarray, w_gyro: np.ndarray, bias_walk_rad_s_sqrt_s: float, *,
-                   window_s: float = 30.0, z_min: float = 8.0, min_step_rad_s: float = 0.02 * _DEG,
+                   window_s: float = 30.0, z_min: float = 8.0, min_step_rad_s: float = 0.02 * RAD_PER_DEG,
                    min_windows: int = 4, half_width_s: float = 1.0) -> BiasStep | None:
     """Look for one step in the gyro bias.
 

@@ -27,57 +27,25 @@ from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from ..core.anomaly import Anomaly
+from ..core import (
+    NS_PER_S,
+    RAD_PER_DEG,
+    Anomaly,
+    local_slope,
+    mean_dipole_over_steps,
+    white_noise_from_differences,
+    window_mean,
+)
 from . import mekf_core as core
 from .initial import InitialState, davenport_q_method, initial_state_with_gyro
-from .noise import white_noise_from_differences
 
-__all__ = ["GyroCheck", "check_gyro", "step_mean_dipole", "coil_log_with_off_windows", "carry_back_with_dynamics",
-           "local_slope", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
+__all__ = ["GyroCheck", "check_gyro", "carry_back_with_dynamics", "estimate_dynamics", "initial_state_dynamics",
+           "propagate_rigid_body"]
 
-_NS = 1_000_000_000
-_DEG = np.pi / 180.0
 
 
 def _at(t_epoch_ns: int, t_s: float) -> np.datetime64:
-    return np.datetime64(int(t_epoch_ns + round(t_s * _NS)), "ns")
-
-
-def local_slope(t: np.ndarray, x: np.ndarray, half_width_s: float) -> np.ndarray:
-    """Least-squares slope of x over [t - h, t + h] at every sample (first-order Savitzky-Golay).
-
-    Parameters
-    ----------
-    t : (N,) s increasing; x : (N, k); half_width_s : h, s
-    """
-    x = np.asarray(x, float).reshape(len(t), -1)
-    lo = np.searchsorted(t, t - half_width_s, side="left")
-    hi = np.searchsorted(t, t + half_width_s, side="right")
-    c1 = np.r_[0.0, np.cumsum(t)]
-    c2 = np.r_[0.0, np.cumsum(t * t)]
-    cx = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(x, axis=0)])
-    ctx = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(t[:, None] * x, axis=0)])
-    n = (hi - lo).astype(float)
-    st = c1[hi] - c1[lo]
-    stt = c2[hi] - c2[lo]
-    sx = cx[hi] - cx[lo]
-    stx = ctx[hi] - ctx[lo]
-    den = n * stt - st * st
-    with np.errstate(invalid="ignore", divide="ignore"):
-        slope = (n[:, None] * stx - st[:, None] * sx) / den[:, None]
-    return np.where((den > 0)[:, None], slope, np.nan)
-
-
-def _gyro_at(t_gyro: np.ndarray, w_gyro: np.ndarray, t: np.ndarray, half_width_s: float) -> np.ndarray:
-    """Mean gyro reading over [t - h, t + h] (samples inside; nearest sample if none)."""
-    lo = np.searchsorted(t_gyro, t - half_width_s, side="left")
-    hi = np.searchsorted(t_gyro, t + half_width_s, side="right")
-    c = np.vstack([np.zeros((1, 3)), np.cumsum(w_gyro, axis=0)])
-    n = hi - lo
-    near = np.clip(np.searchsorted(t_gyro, t), 0, len(t_gyro) - 1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = (c[hi] - c[lo]) / n[:, None]
-    return np.where((n > 0)[:, None], mean, w_gyro[near])
+    return np.datetime64(int(t_epoch_ns + round(t_s * NS_PER_S)), "ns")
 
 
 def _longest_constant_run(t: np.ndarray, x: np.ndarray) -> tuple[float, float, int]:
@@ -130,7 +98,7 @@ class GyroCheck:
 
 def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body_nT: np.ndarray,
                arw_rad_sqrt_s: float | None, *, stuck_min_s: float = 30.0, stuck_min_fraction: float = 0.1,
-               window_s: float = 60.0, max_bias_rad_s: float = 2.0 * _DEG,
+               window_s: float = 60.0, max_bias_rad_s: float = 2.0 * RAD_PER_DEG,
                min_explained: float = 0.5, noise_factor: float = 20.0) -> GyroCheck:
     """Is the gyro alive? Three tests, any one failing makes it dead.
 
@@ -160,7 +128,7 @@ def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body
                          s0, float(t_gyro[-1]) if s1 >= t_gyro[-1] - 1.0 else s1, ax, None)
     # kinematic test
     bdot = local_slope(t_mag, b_body_nT, 1.0)
-    wg = _gyro_at(t_gyro, w_gyro, t_mag, 1.0)
+    wg = window_mean(t_gyro, w_gyro, t_mag, 1.0)
     ok = np.all(np.isfinite(bdot), axis=1)
     bmag = np.linalg.norm(b_body_nT, axis=1)
     floor = 3.0 * 0.0025 * bmag  # three times the field's own turning rate in a polar LEO
@@ -201,61 +169,6 @@ def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body
                                     f"satellite turns too slowly to test the output against the field.",
                              float(t_gyro[0]), float(t_gyro[-1]))
     return GyroCheck(True, "gyro not stuck; the satellite turns too slowly for a kinematic test.")
-
-
-def step_mean_dipole(t_steps: np.ndarray, t_coil: np.ndarray | None, i_coil_A: np.ndarray | None,
-                     dipole_per_amp: np.ndarray | None) -> np.ndarray:
-    """Mean coil dipole over each step [t_k, t_k+1], body frame, A m^2, (K, 3).
-
-    Each logged current is held until the next log row (zero before the first); the dipole is
-    ``m = C i``. The last step repeats the one before it.
-    """
-    k = len(t_steps)
-    if t_coil is None or i_coil_A is None or dipole_per_amp is None or len(t_coil) == 0:
-        return np.zeros((k, 3))
-    i = np.nan_to_num(np.asarray(i_coil_A, float))
-    m = i @ np.asarray(dipole_per_amp, float).T
-    dt = np.diff(t_coil)
-    cum = np.vstack([np.zeros(3), np.cumsum(m[:-1] * dt[:, None], axis=0)])
-
-    def integral(x):
-        j = np.searchsorted(t_coil, x, side="right") - 1
-        jj = np.clip(j, 0, len(t_coil) - 1)
-        val = cum[jj] + m[jj] * (x - t_coil[jj])[:, None]
-        return np.where((j >= 0)[:, None], val, 0.0)
-
-    ints = integral(np.asarray(t_steps, float))
-    out = np.zeros((k, 3))
-    h = np.diff(t_steps)
-    out[:-1] = (ints[1:] - ints[:-1]) / h[:, None]
-    out[-1] = out[-2] if k > 1 else 0.0
-    return out
-
-
-def coil_log_with_off_windows(tick_utc: np.ndarray, i_cmd_A: np.ndarray, before_s: float,
-                              after_s: float) -> tuple[np.ndarray, np.ndarray]:
-    """Coil current as a held-value log when the coils are off around every control tick.
-
-    With windowed magnetometer sampling the command of tick k flows from ``tick_k + after`` to
-    ``tick_k+1 - before`` and nothing flows inside ``[tick - before, tick + after]``. The result
-    lists (time, current) rows whose held values reproduce that profile, for :func:`step_mean_dipole`.
-
-    Parameters
-    ----------
-    tick_utc : (K,) datetime64[ns]; i_cmd_A : (K, 3) A; before_s, after_s : s
-
-    Returns
-    -------
-    t_utc : (2K,) datetime64[ns]; i_A : (2K, 3) A
-    """
-    ticks = np.asarray(tick_utc).astype("datetime64[ns]").astype(np.int64)
-    i = np.asarray(i_cmd_A, float)
-    t = np.empty(2 * len(ticks), np.int64)
-    t[0::2] = ticks - int(round(before_s * _NS))
-    t[1::2] = ticks + int(round(after_s * _NS))
-    out = np.zeros((2 * len(ticks), 3))
-    out[1::2] = i
-    return t.astype("datetime64[ns]"), out
 
 
 def _dyn_inputs(t: np.ndarray, m_steps: np.ndarray, r_km: np.ndarray) -> np.ndarray:
@@ -299,7 +212,7 @@ def propagate_rigid_body(q0, w0, t, m_body, b_ref, r_km, prm, nsub):
 def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, m_steps: np.ndarray,
                            r_km: np.ndarray, prm: np.ndarray, sigma_vec_nT: float, *,
                            window_s: float = 120.0, n_starts: int = 12,
-                           floor_att_rad: float = 5.0 * _DEG, floor_rate_rad_s: float = 0.05 * _DEG
+                           floor_att_rad: float = 5.0 * RAD_PER_DEG, floor_rate_rad_s: float = 0.05 * RAD_PER_DEG
                            ) -> InitialState:
     """Attitude and body rate at t[0] from the magnetometer alone (no gyro).
 
@@ -366,7 +279,7 @@ def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
     try:
         cov = np.linalg.inv(best.jac.T @ best.jac) * len(sub)
     except np.linalg.LinAlgError:
-        cov = np.diag(np.r_[np.full(3, np.pi ** 2), np.full(3, (1.0 * _DEG) ** 2)])
+        cov = np.diag(np.r_[np.full(3, np.pi ** 2), np.full(3, (1.0 * RAD_PER_DEG) ** 2)])
     q0 = (Rotation.from_rotvec(-best.x[:3]) * a_best).as_quat()
     d = np.nan_to_num(np.sqrt(np.clip(np.diag(cov), 0.0, None)), nan=np.pi, posinf=np.pi)
     s_att = np.maximum(d[:3], floor_att_rad)
@@ -437,7 +350,7 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     from . import attitude as est  # one-way at run time: estimate owns the result types
 
     t_epoch = tm[0]
-    t = (tm - t_epoch) / _NS
+    t = (tm - t_epoch) / NS_PER_S
     noise, src = est._resolve_noise(noise, bb[ok_rows], None, None)
     prm = est._params(noise, 0.0, inertia)
     # rows without a reference (no orbit position) are not used for updates; for the torque in the
@@ -445,8 +358,8 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     r = _fill_rows(t, br)
     z = np.nan_to_num(bb)
     ct = None if coil_t_utc is None else (np.asarray(coil_t_utc).astype("datetime64[ns]").astype(np.int64)
-                                          - t_epoch) / _NS
-    m_steps = step_mean_dipole(t, ct, i_coil_A, dipole_per_amp)
+                                          - t_epoch) / NS_PER_S
+    m_steps = mean_dipole_over_steps(t, ct, i_coil_A, dipole_per_amp)
     r_km = np.zeros((len(t), 3)) if r_gcrf_km is None else np.nan_to_num(_fill_rows(t, np.asarray(r_gcrf_km, float)))
     u = _dyn_inputs(t, m_steps, r_km)
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
@@ -454,7 +367,7 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
     init = None
     if gyro is not None:
         tg, wg, check = gyro
-        tgs = (tg - t_epoch) / _NS
+        tgs = (tg - t_epoch) / NS_PER_S
         dead0 = check.dead_start_s if check is not None and check.dead_start_s is not None else None
         if dead0 is not None and dead0 - tgs[0] > init_window_s + 60.0 and tgs[0] <= t[0] + 1.0:
             alive = tgs < dead0
@@ -463,7 +376,7 @@ def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A,
                                          sigma_bias0_rad_s=noise.gyro_bias0_rad_s, window_s=init_window_s,
                                          max_window_s=min(600.0, dead0 - tgs[0]))
             w0 = wg[alive][tgs[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
-            s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * _DEG) ** 2)
+            s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * RAD_PER_DEG) ** 2)
             init = InitialState(gi.q_body_from_gcrf, w0, gi.sigma_att_rad, s_w,
                                 "gyro-seeded (gyro alive before it died)", gi.window_s, gi.detail)
     if init is None:

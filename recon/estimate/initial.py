@@ -30,37 +30,11 @@ from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
+from ..core import scipy_from_shuster_quaternion
 from . import mekf_core as core
 
-__all__ = ["WahbaSolution", "davenport_q_method", "scipy_from_shuster_quaternion", "InitialState",
+__all__ = ["WahbaSolution", "davenport_q_method", "InitialState",
            "initial_state_with_gyro", "integrate_gyro", "carry_back_with_gyro"]
-
-
-def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
-    """The one place where another quaternion convention is converted into recon's (and back).
-
-    Shuster's convention, used by Markley & Crassidis (2014, ch. 2 (memory)) and by CCSDS 504.0-B-2
-    (annex F2, the ADM quaternion "from frame A to frame B"), writes the attitude matrix of a
-    scalar-last quaternion as ``A = (q4^2 - |q|^2) I + 2 q q^T - 2 q4 [q x]``; scipy (recon's
-    convention, :mod:`recon.frames`) has ``+ 2 w [v x]``. The same attitude matrix therefore has
-    conjugate quaternions in the two conventions, and this conversion is its own inverse.
-
-    Parameters
-    ----------
-    q_shuster : (..., 4) scalar-last quaternion in Shuster's convention (or scipy's, to go back)
-
-    Returns
-    -------
-    (..., 4) scalar-last quaternion in the other convention, scalar part >= 0
-
-    References
-    ----------
-    Shuster, M. D. (1993). A survey of attitude representations. J. Astronaut. Sci. 41(4), 439-517
-    (memory).
-    """
-    q = np.array(q_shuster, dtype=float, copy=True)
-    q[..., :3] *= -1.0
-    return np.where(q[..., 3:4] < 0, -q, q)
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["overlapping_adev", "GyroNoiseFigures", "gyro_noise_from_adev", "white_noise_from_differences"]
+__all__ = ["overlapping_adev", "GyroNoiseFigures", "gyro_noise_from_adev"]
 
 FLICKER_FLOOR_FACTOR = 0.664  # sigma_min = 0.664 B for bias instability, sqrt(2 ln2 / pi) (memory)
 
@@ -116,23 +116,3 @@ def gyro_noise_from_adev(taus: np.ndarray, adev: np.ndarray, slope_tolerance: fl
     rrw = float(np.exp(np.mean(la[rrw_pts] - 0.5 * (lt[rrw_pts] - np.log(3.0))))) if rrw_pts.any() else None
     k = int(np.argmin(a))
     return GyroNoiseFigures(arw, float(a[k] / FLICKER_FLOOR_FACTOR), rrw, float(t[k]))
-
-
-def white_noise_from_differences(x: np.ndarray) -> float:
-    """Per-sample white-noise sigma of a smooth signal plus white noise, from second differences.
-
-    For white noise the second difference has variance 6 sigma^2; a smooth signal sampled fast
-    contributes almost nothing. The spread is the median absolute deviation scaled by 1.4826 (the
-    normal-distribution consistency factor), so spikes and steps do not inflate it. With several
-    columns the result is the rms over columns.
-
-    Parameters
-    ----------
-    x : (N,) or (N, k) samples (finite)
-    """
-    a = np.asarray(x, dtype=float)
-    a = a.reshape(len(a), -1)
-    d2 = a[2:] - 2.0 * a[1:-1] + a[:-2]
-    mad = np.median(np.abs(d2 - np.median(d2, axis=0)), axis=0)
-    s = 1.4826 * mad / np.sqrt(6.0)
-    return float(np.sqrt(np.mean(s ** 2)))

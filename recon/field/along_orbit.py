@@ -32,8 +32,7 @@ import numpy as np
 import ppigrf
 from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
-from ..core import frames
-from ..core.errors import InputError
+from ..core import DEG_PER_RAD, InputError, frames
 from ..orbit.sources import OrbitState, _from_gcrf_nodes, itrf_to_gcrf, orbit_at
 
 __all__ = ["ReferenceField", "reference_field", "field_along_orbit", "field_for_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
@@ -49,7 +48,6 @@ DATE_BLOCK_s = 6 * 3600.0
 # IGRF-14 spans 1900.0 to 2030.0 (Alken et al. 2025); ppigrf only prints when asked outside it
 IGRF14_START_UTC = np.datetime64("1900-01-01T00:00:00", "ns")
 IGRF14_STOP_UTC = np.datetime64("2030-01-01T00:00:00", "ns")
-_DEG = 180.0 / np.pi
 
 
 @dataclass(frozen=True)
@@ -116,7 +114,7 @@ def igrf_itrf_nT(r_itrf_km: np.ndarray, date: np.datetime64) -> np.ndarray:
     if not np.any(ok):
         return out
     lat, lon, h = frames.itrf_to_geodetic(r[ok])
-    b_e, b_n, b_u = ppigrf.igrf(lon * _DEG, lat * _DEG, h, _py_datetime(date))
+    b_e, b_n, b_u = ppigrf.igrf(lon * DEG_PER_RAD, lat * DEG_PER_RAD, h, _py_datetime(date))
     ned = np.stack([b_n[0], b_e[0], -b_u[0]], axis=-1)
     out[ok] = np.einsum("nij,nj->ni", frames.ned_to_itrf_matrix(lat, lon), ned)
     return out
@@ -255,7 +253,7 @@ def field_for_orbit(orbit_spec, orb, *, grid_step_s: float = GRID_STEP_s, dut1_s
         if np.any(todo):
             b[todo] = igrf_gcrf_nT(t[todo], orb.r_itrf_km[todo], dut1_s=dut1_s, source=source)
     return ReferenceField(time_utc=t, b_gcrf_nT=b, r_gcrf_km=orb.r_gcrf_km, r_itrf_km=orb.r_itrf_km,
-                          lat_deg=orb.lat_rad * _DEG, lon_deg=orb.lon_rad * _DEG, h_km=orb.h_km,
+                          lat_deg=orb.lat_rad * DEG_PER_RAD, lon_deg=orb.lon_rad * DEG_PER_RAD, h_km=orb.h_km,
                           reason=orb.reason)
 
 

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core.constants import MU_EARTH_km3_s2
+from ..core import MU_EARTH_km3_s2
 
 __all__ = ["Trend", "assess_effect", "kinetic_energy_J", "magnetic_power_W", "block_log_trend", "expected_log_trend",
            "trend_label", "mean_motion_rad_s", "geomagnetic_inclination_rad", "near_optimal_gain_Nms",

@@ -41,9 +41,7 @@ from typing import Any
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core.anomaly import Anomaly
-from ..core.errors import InputError
-from ..core.frames import body_from_gcrf
+from ..core import Anomaly, InputError, applied_current, body_from_gcrf, control_ticks, held_values, tick_phase
 from . import effect as eff
 from . import replay as rep
 from .dipole import identify as dip
@@ -367,11 +365,10 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     if controller.first_tick is not None:
         first = float((np.datetime64(controller.first_tick, "ns") - epoch).astype(np.int64) / 1e9)
     else:  # the tick phase from the coil log's own time stamps (circular mean)
-        ang = 2 * np.pi * np.mod(t_coil, T) / T
-        first = float(np.mod(np.arctan2(np.sin(ang).mean(), np.cos(ang).mean()), 2 * np.pi) / (2 * np.pi) * T)
+        first = tick_phase(t_coil, T)
     lo, hi = max(t[0], t_coil[0]), min(t[-1], t_coil[-1] + T)
-    ticks = rep.control_ticks_s(lo, hi, T, first)
-    gate = (rep.control_ticks_s(lo - T, hi + T, T, first), *window) if window is not None else None
+    ticks = control_ticks(lo, hi, T, first)
+    gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
     ctx = _Context(law, T, C_nom, imax, span, coils.mag_sampling)
 
@@ -383,14 +380,14 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     elif law == "cross_product":
         if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
             tg = _seconds("time_gyro_utc", time_gyro_utc, epoch)
-            w_tick = rep.hold_values(tg, _arr("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks)
+            w_tick = held_values(tg, _arr("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks, tol=1e-9)
         else:
             w_tick = np.column_stack([np.interp(ticks, t, w[:, a]) for a in range(3)])
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
         i_rep = rep.replay_cross_product_A(b_tick, w_tick, J, target, controller.gain, C_nom, imax)
     cmp_ = rep.compare_commands(ticks, i_rep, t_coil, i_coil, imax, T) if law != "none" else None
     logged_tick = (cmp_.logged_A if cmp_ is not None
-                   else rep.hold_values(t_coil, i_coil, ticks + 0.5 * T, max_age_s=2 * T))
+                   else held_values(t_coil, i_coil, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
     chatter = rep.chatter_fraction(logged_tick, imax)
 
     # 2. dipole identification and actuation latency -------------------------------------------
@@ -419,7 +416,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         if rate_bias["used"]:
             rate_bias.update(knots_s=fit.rate_bias_knots_s.tolist(), rad_s=fit.rate_bias_rad_s.tolist(),
                              sigma_rad_s=fit.rate_bias_sigma_rad_s.tolist())
-    i_applied = dip.applied_current_A(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+    i_applied = applied_current(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
                                       max_hold_s=2.5 * T)
     axes = _axes(ctx, fit, cmp_, chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
@@ -431,7 +428,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     for a, ax in enumerate(axes):
         if fit is not None and ax.polarity != "undetermined":
             C_used[:, a] = fit.C[:, a]
-    i_rep_applied = dip.applied_current_A(t, ticks, np.nan_to_num(i_rep), gate=gate, max_hold_s=2.5 * T)
+    i_rep_applied = applied_current(t, ticks, np.nan_to_num(i_rep), gate=gate, max_hold_s=2.5 * T)
     target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
     effect = eff.assess_effect(law, controller.gain, t, w, b_body, J, i_applied, i_rep_applied, C_used, C_nom,
                                target_momentum_Nms=target, r_gcrf_km=r_gcrf,
@@ -442,7 +439,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     if law == "bdot" and K is not None:
         L_act = fit.latency_s if fit is not None else 0.0
         seen = (np.zeros((len(ticks), 3)) if coils.mag_sampling == "coils_off" else
-                dip.applied_current_A(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
+                applied_current(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
         loop = rep.assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
                                              i_seen_at_tick_A=seen, max_current_A=imax,
                                              delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))

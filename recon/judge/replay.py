@@ -24,9 +24,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..core import held_values
+
 __all__ = [
     "SATURATION_LEVEL", "NEAR_LIMIT_LEVEL", "INFORMATIVE_LEVEL",
-    "control_ticks_s", "hold_values", "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
+    "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
     "CommandComparison", "compare_commands", "chatter_fraction", "crosstalk_loop_gain",
     "assess_crosstalk_feedback",
 ]
@@ -42,42 +44,6 @@ NEAR_LIMIT_LEVEL = 0.90
 # A replayed command counts towards the gain ratio from 1 % of the limit: a thousand times the
 # drive's micro-amp resolution, so rounding cannot move the ratio by more than 0.1 %.
 INFORMATIVE_LEVEL = 0.01
-
-
-def control_ticks_s(t_start_s: float, t_stop_s: float, period_s: float, first_tick_s: float) -> np.ndarray:
-    """Control tick instants ``first_tick + k period`` inside ``[t_start, t_stop]``, s (K,)."""
-    k0 = int(np.ceil((t_start_s - first_tick_s) / period_s - 1e-9))
-    k1 = int(np.floor((t_stop_s - first_tick_s) / period_s + 1e-9))
-    if k1 < k0:
-        return np.zeros(0)
-    return first_tick_s + period_s * np.arange(k0, k1 + 1, dtype=float)
-
-
-def hold_values(t_log_s: np.ndarray, values: np.ndarray, t_query_s: np.ndarray,
-                max_age_s: float | None = None) -> np.ndarray:
-    """Zero-order hold: the last logged value at or before each query time.
-
-    Parameters
-    ----------
-    t_log_s : (M,) sorted sample times, s
-    values : (M, ...) logged values
-    t_query_s : (Q,) query times, s
-    max_age_s : float, optional
-        NaN where the last sample is older than this (a gap in the log).
-
-    Returns
-    -------
-    (Q, ...) array, NaN before the first sample
-    """
-    t_log_s = np.asarray(t_log_s, float)
-    values = np.asarray(values, float)
-    idx = np.searchsorted(t_log_s, np.asarray(t_query_s, float) + 1e-9, side="right") - 1
-    out = values[np.clip(idx, 0, len(values) - 1)].copy()
-    bad = idx < 0
-    if max_age_s is not None:
-        bad |= (np.asarray(t_query_s, float) - t_log_s[np.clip(idx, 0, len(values) - 1)]) > max_age_s
-    out[bad] = np.nan
-    return out
 
 
 def tick_samples_nT(t_mag_s: np.ndarray, b_mag_body_nT: np.ndarray, ticks_s: np.ndarray, *,
@@ -285,7 +251,7 @@ def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.n
     # the logged command belonging to each tick: the log in the middle of its hold interval
     L = 0.0 if lag is None else lag
     t_q = ticks + L + 0.5 * period_s
-    logged = hold_values(t_log, i_log, t_q, max_age_s=max_age)
+    logged = held_values(t_log, i_log, t_q, tol=1e-9, max_age=max_age)
     logged[t_q > t_log[-1] + float(np.median(np.diff(t_log)))] = np.nan  # past the end of the log
     both = np.isfinite(rep) & np.isfinite(logged)
     sat = (np.abs(logged) >= SATURATION_LEVEL * imax) | (np.abs(rep) >= SATURATION_LEVEL * imax)

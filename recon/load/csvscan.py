@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core.errors import InputError
+from ..core import InputError
 
 __all__ = ["Scan", "scan_bytes", "read_log_bytes", "REASON_BLANK", "REASON_GARBAGE", "REASON_FIELDS"]
 

@@ -31,8 +31,7 @@ import numpy as np
 import pandas as pd
 
 from ..config import CoilSpec, Mission, SensorSpec, TimeSpec
-from ..core.constants import A_PER_UNIT, NT_PER_UNIT, RAD_S_PER_UNIT
-from ..core.errors import InputError
+from ..core import A_PER_UNIT, NT_PER_UNIT, RAD_S_PER_UNIT, InputError
 from . import timescales as ts
 from .csvscan import Scan, read_log_bytes, scan_bytes
 

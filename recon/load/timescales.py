@@ -22,7 +22,7 @@ import erfa
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from ..core.constants import GPS_EPOCH_UTC
+from ..core import GPS_EPOCH_UTC, NS_PER_S
 
 __all__ = [
     "TAI_MINUS_GPS_s", "EARLIEST_UTC", "LATEST_UTC",
@@ -39,7 +39,6 @@ EARLIEST_UTC = np.datetime64("1970-01-01T00:00:00", "ns")
 LATEST_UTC = np.datetime64("2200-01-01T00:00:00", "ns")
 
 _NAT = np.datetime64("NaT", "ns")
-_NS = 1_000_000_000
 _GPS_EPOCH_NS = np.datetime64(GPS_EPOCH_UTC, "ns").astype(np.int64)
 
 
@@ -53,15 +52,15 @@ def _seconds_to_ns(origin_ns: int, seconds: np.ndarray) -> np.ndarray:
     """
     s = np.asarray(seconds, dtype=float)
     out = np.full(s.shape, _NAT)
-    lo = (EARLIEST_UTC.astype(np.int64) - origin_ns) / _NS
-    hi = (LATEST_UTC.astype(np.int64) - origin_ns) / _NS
+    lo = (EARLIEST_UTC.astype(np.int64) - origin_ns) / NS_PER_S
+    hi = (LATEST_UTC.astype(np.int64) - origin_ns) / NS_PER_S
     ok = np.isfinite(s) & (s >= lo) & (s < hi)
     v = s[ok]
     whole = np.floor(v)
-    ulp_ns = np.spacing(np.abs(v)) * _NS
+    ulp_ns = np.spacing(np.abs(v)) * NS_PER_S
     step_ns = 10.0 ** np.ceil(np.log10(np.maximum(ulp_ns, 1.0)))
-    frac_ns = (np.rint((v - whole) * _NS / step_ns) * step_ns).astype(np.int64)
-    out[ok] = (origin_ns + whole.astype(np.int64) * _NS + frac_ns).astype("datetime64[ns]")
+    frac_ns = (np.rint((v - whole) * NS_PER_S / step_ns) * step_ns).astype(np.int64)
+    out[ok] = (origin_ns + whole.astype(np.int64) * NS_PER_S + frac_ns).astype("datetime64[ns]")
     return out
 
 
@@ -143,7 +142,7 @@ def _fixed_iso(chars: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
                                 day[first].astype(np.int64))
     days = np.repeat(run_days, np.diff(np.r_[first, n]))
     sod = hour.astype(np.int64) * 3600 + minute * 60 + second
-    ns = (days * 86_400 + sod) * _NS + frac_ns
+    ns = (days * 86_400 + sod) * NS_PER_S + frac_ns
     return np.where(ok, ns, 0), ok
 
 
@@ -203,7 +202,7 @@ def unix_seconds_to_utc(unix_s: np.ndarray) -> np.ndarray:
 
 def _tai_minus_utc_s(utc_ns: np.ndarray) -> np.ndarray:
     """TAI - UTC in whole seconds on the UTC dates of ``utc_ns`` (int64 ns), from ``erfa.dat``."""
-    day = np.floor_divide(utc_ns, 86_400 * _NS)
+    day = np.floor_divide(utc_ns, 86_400 * NS_PER_S)
     uniq, inv = np.unique(day, return_inverse=True)
     d = uniq.astype("datetime64[D]")
     year = d.astype("datetime64[Y]").astype(np.int64) + 1970
@@ -239,14 +238,14 @@ def gps_seconds_to_utc(gps_s: np.ndarray) -> np.ndarray:
     g = np.asarray(gps_s, dtype=float)
     ok = np.isfinite(g) & (g >= 0)
     # TAI instant written as if it were a UTC label: ahead of UTC by TAI - UTC (about 19-37 s)
-    tai = _seconds_to_ns(int(_GPS_EPOCH_NS) + TAI_MINUS_GPS_s * _NS, np.where(ok, g, np.nan))
+    tai = _seconds_to_ns(int(_GPS_EPOCH_NS) + TAI_MINUS_GPS_s * NS_PER_S, np.where(ok, g, np.nan))
     out = np.full(g.shape, _NAT)
     good = ~np.isnat(tai)
     if not good.any():
         return out
     tai_ns = tai[good].astype(np.int64)
-    first = tai_ns - _tai_minus_utc_s(tai_ns) * _NS
-    utc_ns = tai_ns - _tai_minus_utc_s(first) * _NS
+    first = tai_ns - _tai_minus_utc_s(tai_ns) * NS_PER_S
+    utc_ns = tai_ns - _tai_minus_utc_s(first) * NS_PER_S
     out[good] = utc_ns.astype("datetime64[ns]")
     return out
 

@@ -35,13 +35,12 @@ from pathlib import Path
 import erfa
 import numpy as np
 
-from ..core.errors import InputError
+from ..core import NS_PER_S, InputError
 
 __all__ = ["OemSegment", "read_oem", "write_oem", "lagrange_interpolate", "hermite_interpolate",
            "parse_ccsds_time"]
 
 _NS_PER_DAY = 86_400 * 1_000_000_000
-_NS_PER_S = 1_000_000_000
 _UNIX_EPOCH_JD = 2440587.5
 TT_MINUS_TAI_s = 32.184  # IAU 1991 Resolution A4
 TAI_MINUS_GPS_s = 19.0  # ICD-GPS-200: GPS time = TAI - 19 s
@@ -114,7 +113,7 @@ def _to_utc_ns(label_ns: np.ndarray, system: str) -> np.ndarray:
     if system == "UTC":
         return label_ns
     shift_s = {"TAI": 0.0, "TT": TT_MINUS_TAI_s, "GPS": -TAI_MINUS_GPS_s}[system]
-    tai_ns = label_ns - np.int64(round(shift_s * _NS_PER_S))
+    tai_ns = label_ns - np.int64(round(shift_s * NS_PER_S))
     u1, u2 = erfa.taiutc(*_ns_to_jd(tai_ns))
     utc_ns = _jd_to_ns(u1, u2)
     # erfa's UTC quasi-JD stretches a leap-second day to 86401 s: undo that for datetime64
@@ -142,11 +141,11 @@ def parse_ccsds_time(text: str) -> np.datetime64:
         base = np.datetime64(f"{year}-{month}-{day}", "ns")
     if int(hh) > 23 or int(mm) > 59 or float(ss) >= 60.0:
         raise ValueError(text)
-    sec_ns = int(ss.split(".")[0]) * _NS_PER_S
+    sec_ns = int(ss.split(".")[0]) * NS_PER_S
     if "." in ss:
         frac = (ss.split(".")[1] + "000000000")[:9]
         sec_ns += int(frac)
-    return base + np.timedelta64((int(hh) * 3600 + int(mm) * 60) * _NS_PER_S + sec_ns, "ns")
+    return base + np.timedelta64((int(hh) * 3600 + int(mm) * 60) * NS_PER_S + sec_ns, "ns")
 
 
 # ------------------------------------------------------------------------------------------ read

@@ -30,9 +30,7 @@ from scipy.interpolate import CubicSpline
 from sgp4.api import SGP4_ERRORS, Satrec
 
 from ..config import OrbitSpec, PositionsSpec, TimeSpec
-from ..core import frames
-from ..core.constants import GPS_EPOCH_UTC, OMEGA_EARTH_rad_s
-from ..core.errors import InputError
+from ..core import GPS_EPOCH_UTC, InputError, OMEGA_EARTH_rad_s, frames
 from .oem import hermite_interpolate, lagrange_interpolate, read_oem, write_oem
 
 __all__ = [

@@ -16,7 +16,7 @@ Version 2.0 dropped ATTITUDE_DIR and QUATERNION_TYPE (annex J): the quaternion i
 REF_FRAME_A to REF_FRAME_B" with the scalar QC last, in the convention of annex F2, where
 ``X_B = M_BA X_A`` and ``M_BA[0, 1] = 2 (Q1 Q2 + Q3 QC)``. That is Shuster's convention, so the file
 holds the conjugate of recon's scipy-convention ``q_body_from_gcrf`` (converted in
-:func:`recon._wahba.scipy_from_shuster_quaternion`); both describe the same GCRF-to-body transform.
+:func:`recon.core.frames.scipy_from_shuster_quaternion`); both describe the same GCRF-to-body transform.
 Angular velocity (annex F4) is that of frame B relative to frame A, here in body axes
 (``ANGVEL_FRAME = SC_BODY_1``).
 
@@ -38,8 +38,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core.errors import InputError
-from ..estimate.initial import scipy_from_shuster_quaternion
+from ..core import InputError, scipy_from_shuster_quaternion
 
 __all__ = ["AemSegment", "Aem", "format_aem", "write_aem", "read_aem", "ATTITUDE_TYPES"]
 

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from .. import __version__
+from ..core import NS_PER_S, utc_text
 from .engine import run_simulation
 from .environment import Environment
 from .scenarios import SimConfig, scenario_config
@@ -18,7 +19,6 @@ from .writer import render, write_files
 
 __all__ = ["SimulatedPass", "simulate_pass"]
 
-NS = 1_000_000_000
 
 
 @dataclass(frozen=True, eq=False)
@@ -93,10 +93,6 @@ class SimulatedPass:
     paths: dict = field(default_factory=dict)
 
 
-def _utc(t: np.datetime64) -> str:
-    return np.datetime_as_string(np.datetime64(t, "ns"), unit="ms") + "Z"
-
-
 def _fault_records(cfg: SimConfig, t0: np.datetime64) -> list[dict]:
     notes = {
         "coil_polarity_inverted": "current (so dipole and crosstalk) of this coil reversed; log unchanged",
@@ -108,11 +104,11 @@ def _fault_records(cfg: SimConfig, t0: np.datetime64) -> list[dict]:
     }
     out = []
     for f in cfg.faults:
-        start = t0 + np.timedelta64(int(round((f.start_s or 0.0) * NS)), "ns")
-        stop = t0 + np.timedelta64(int(round((cfg.duration_s if f.stop_s is None else f.stop_s) * NS)), "ns")
+        start = t0 + np.timedelta64(int(round((f.start_s or 0.0) * NS_PER_S)), "ns")
+        stop = t0 + np.timedelta64(int(round((cfg.duration_s if f.stop_s is None else f.stop_s) * NS_PER_S)), "ns")
         out.append({"kind": f.kind, "axis": None if f.axis is None else "xyz"[f.axis],
                     "frame": "sensor" if f.kind.startswith("gyro") else "body",
-                    "start_utc": _utc(start), "stop_utc": _utc(stop), "value": f.value, "note": notes[f.kind]})
+                    "start_utc": utc_text(start), "stop_utc": utc_text(stop), "value": f.value, "note": notes[f.kind]})
     return out
 
 
@@ -167,7 +163,7 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
     truth = {
         "scenario": scenario, "seed": seed, "description": cfg.description, "pass_id": pass_id,
         "generator": f"recon.simulate (recon {__version__})",
-        "pass_epoch_utc": _utc(t0), "duration_s": cfg.duration_s,
+        "pass_epoch_utc": utc_text(t0), "duration_s": cfg.duration_s,
         "conventions": {
             "quaternion": "q_body_from_gcrf, scalar last [x, y, z, w]: A(q) v_gcrf = v_body",
             "magnetometer": "b_meas = S (M^T b_body) + bias + K i_true + noise, all in the magnetometer "
@@ -202,9 +198,10 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
                   "C_A_m2_per_A_hardware": sim["C_hw"].tolist(), "current_factor_per_axis": gains,
                   "max_current_A": list(cfg.coil_max_current_A), "mag_sampling": cfg.mag_sampling,
                   "off_window_s": list(cfg.off_window_s) if cfg.mag_sampling == "windowed" else None,
-                  "latency_s": sim["latency_ns"] / NS, "command_resolution_A": 1e-6},
+                  "latency_s": sim["latency_ns"] / NS_PER_S, "command_resolution_A": 1e-6},
         "controller": {"law": cfg.law, "gain": cfg.gain, "period_s": cfg.period_s,
-                       "first_tick_utc": _utc(t0 + np.timedelta64(int(round(cfg.first_tick_offset_s * NS)), "ns")),
+                       "first_tick_utc": utc_text(t0 + np.timedelta64(int(round(cfg.first_tick_offset_s * NS_PER_S)),
+                                                                      "ns")),
                        "target_momentum_Nms": list(cfg.target_momentum_Nms) if cfg.law == "cross_product" else None,
                        "onboard": "raw readings turned to body axes with the nominal mounting only; "
                                   "B-dot differences consecutive tick samples"},
@@ -214,7 +211,7 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
     }
     t_mag = t0 + sim["t_mag_ns"].astype("timedelta64[ns]")
     result = SimulatedPass(
-        scenario=scenario, seed=seed, config=cfg, pass_id=pass_id, time_utc=t_mag, t_s=sim["t_mag_ns"] / NS,
+        scenario=scenario, seed=seed, config=cfg, pass_id=pass_id, time_utc=t_mag, t_s=sim["t_mag_ns"] / NS_PER_S,
         q_body_from_gcrf=sim["q"], w_body_rad_s=sim["w"], gyro_bias_body_rad_s=sim["gyro_bias_body_rad_s"],
         b_igrf_gcrf_nT=sim["b_igrf_gcrf_nT"], b_unmodelled_gcrf_nT=sim["b_unmodelled_gcrf_nT"],
         b_body_nT=sim["b_body_nT"], b_meas_sensor_nT=sim["b_meas_nT"], i_true_A=sim["i_true_A"],

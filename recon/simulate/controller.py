@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["bdot_dipole_Am2", "cross_product_dipole_Am2", "currents_from_dipole_A",
-           "CURRENT_RESOLUTION_A", "coils_gated"]
+           "CURRENT_RESOLUTION_A"]
 
 CURRENT_RESOLUTION_A = 1e-6  # the simulated drive's command step (an invented design value)
 
@@ -73,21 +73,3 @@ def currents_from_dipole_A(m_body_Am2: np.ndarray, dipole_per_amp_nominal: np.nd
     i = np.linalg.solve(dipole_per_amp_nominal, np.asarray(m_body_Am2, float))
     i = np.clip(i, -max_current_A, max_current_A)
     return np.round(i / CURRENT_RESOLUTION_A) * CURRENT_RESOLUTION_A + 0.0
-
-
-def coils_gated(t_ns: np.ndarray, ticks_ns: np.ndarray, before_ns: int, after_ns: int) -> np.ndarray:
-    """True where an instant lies in a coil-off window ``[tick - before, tick + after]``.
-
-    Parameters
-    ----------
-    t_ns : (N,) int64, ns since the pass epoch
-    ticks_ns : (K,) int64, sorted control ticks, ns since the pass epoch
-    """
-    t = np.asarray(t_ns, dtype=np.int64)
-    if len(ticks_ns) == 0:
-        return np.zeros(t.shape, bool)
-    # nearest tick at or after t - after: the window of that tick is the only one that can hold t
-    k = np.searchsorted(ticks_ns, t - after_ns, side="left")
-    k = np.minimum(k, len(ticks_ns) - 1)
-    tick = ticks_ns[k]
-    return (t >= tick - before_ns) & (t <= tick + after_ns)

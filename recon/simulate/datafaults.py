@@ -20,7 +20,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..core.errors import InputError
+from ..core import InputError
 from .scenarios import DATA_FAULT_KINDS
 
 __all__ = ["inject"]

@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from ..core.constants import MU_EARTH_m3_s2
+from ..core import MU_EARTH_m3_s2
 
 __all__ = ["magnetic_torque_Nm", "gravity_gradient_torque_Nm", "kinetic_energy_J",
            "inertial_momentum_Nms", "propagate", "hermite_many"]
@@ -76,7 +76,7 @@ def kinetic_energy_J(w_body_rad_s: np.ndarray, inertia_kg_m2: np.ndarray) -> np.
 def inertial_momentum_Nms(q_body_from_gcrf: np.ndarray, w_body_rad_s: np.ndarray,
                           inertia_kg_m2: np.ndarray) -> np.ndarray:
     """Angular momentum in GCRF, ``A(q)^T J w``, N m s, (N, 3)."""
-    from ..core.frames import rotation_from_q
+    from ..core import rotation_from_q
 
     h_body = np.asarray(w_body_rad_s, dtype=float) @ np.asarray(inertia_kg_m2).T
     return rotation_from_q(q_body_from_gcrf).inv().apply(h_body)

@@ -24,22 +24,20 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ..core.errors import InputError
-from ..core.frames import body_from_gcrf, q_from_rotation
-from .controller import bdot_dipole_Am2, coils_gated, cross_product_dipole_Am2, currents_from_dipole_A
+from ..core import NS_PER_S, InputError, body_from_gcrf, in_off_window, q_from_rotation
+from .controller import bdot_dipole_Am2, cross_product_dipole_Am2, currents_from_dipole_A
 from .dynamics import propagate
 from .environment import build_environment, invented_tle, orbit_positions_km
 from .sensors import GyroNoise, draw_magnetometer, gyro_bias_path, gyro_reading_rad_s, magnetometer_reading_nT
 
 __all__ = ["run_simulation"]
 
-NS = 1_000_000_000
 DEG = np.pi / 180.0
 COIL_FAULTS = ("coil_polarity_inverted", "coil_dead", "coil_gain_off")
 
 
 def _step_ns(rate_hz: float, key: str) -> int:
-    step = NS / rate_hz
+    step = NS_PER_S / rate_hz
     if not rate_hz > 0 or abs(step - round(step)) > 1e-6:
         raise InputError(f"expected a rate giving a whole number of nanoseconds per sample, got {rate_hz!r}",
                          key=key)
@@ -47,8 +45,8 @@ def _step_ns(rate_hz: float, key: str) -> int:
 
 
 def _window_ns(f, dur_ns: int) -> tuple[int, int]:
-    a = 0 if f.start_s is None else int(round(f.start_s * NS))
-    b = dur_ns + 1 if f.stop_s is None else int(round(f.stop_s * NS))
+    a = 0 if f.start_s is None else int(round(f.start_s * NS_PER_S))
+    b = dur_ns + 1 if f.stop_s is None else int(round(f.stop_s * NS_PER_S))
     return a, b
 
 
@@ -101,14 +99,14 @@ def run_simulation(cfg, seed: int) -> dict:
     rng_hw, rng_field, rng_init, rng_dist, rng_mag, rng_gyro, rng_pos, rng_data = (
         np.random.default_rng(s) for s in streams)
     t0 = np.datetime64(cfg.start_utc, "ns")
-    dur_ns = int(round(cfg.duration_s * NS))
+    dur_ns = int(round(cfg.duration_s * NS_PER_S))
     mag_step = _step_ns(cfg.mag_rate_hz, "mag_rate_hz")
     gyro_step = _step_ns(cfg.gyro_rate_hz, "gyro_rate_hz")
-    period = int(round(cfg.period_s * NS))
-    first = int(round(cfg.first_tick_offset_s * NS))
+    period = int(round(cfg.period_s * NS_PER_S))
+    first = int(round(cfg.first_tick_offset_s * NS_PER_S))
     if period % mag_step or first % mag_step or period <= 0 or first < 0:
         raise InputError(f"expected period_s and first_tick_offset_s to be whole multiples of the "
-                         f"magnetometer step {mag_step / NS} s, got {cfg.period_s} and {cfg.first_tick_offset_s}",
+                         f"magnetometer step {mag_step / NS_PER_S} s, got {cfg.period_s} and {cfg.first_tick_offset_s}",
                          key="period_s")
     if cfg.law == "cross_product" and not cfg.gyro:
         raise InputError("expected gyro = True with law = \"cross_product\" (the law needs the rate), "
@@ -133,9 +131,9 @@ def run_simulation(cfg, seed: int) -> dict:
           else direction / np.linalg.norm(direction) * cfg.tumble_deg_s * DEG)
 
     # latency and windows
-    latency = sum(int(round(f.value * NS)) for f in cfg.faults if f.kind == "command_latency")
+    latency = sum(int(round(f.value * NS_PER_S)) for f in cfg.faults if f.kind == "command_latency")
     windowed = cfg.mag_sampling == "windowed"
-    before, after = (int(round(cfg.off_window_s[0] * NS)), int(round(cfg.off_window_s[1] * NS))) \
+    before, after = (int(round(cfg.off_window_s[0] * NS_PER_S)), int(round(cfg.off_window_s[1] * NS_PER_S))) \
         if windowed else (0, 0)
 
     # event grid: samples, ticks, switch instants, fault edges
@@ -149,7 +147,7 @@ def run_simulation(cfg, seed: int) -> dict:
     ev = ev[(ev >= 0) & (ev <= end)]
     mid = (ev[:-1] + ev[1:]) // 2
     seg_cmd = np.searchsorted(ticks + latency, mid, side="right") - 1
-    seg_on = ~coils_gated(mid, ticks, before, after) if windowed else np.ones(len(mid), bool)
+    seg_on = ~in_off_window(mid, ticks, before, after) if windowed else np.ones(len(mid), bool)
     seg_gain = _coil_gain(mid, cfg.faults, dur_ns) * seg_on[:, None]
     seg_int = np.maximum(np.searchsorted(ticks, ev[:-1], side="right") - 1, 0)
     tau_dist = _disturbance(cfg, len(ticks), rng_dist)
@@ -161,15 +159,15 @@ def run_simulation(cfg, seed: int) -> dict:
     i_idx = np.searchsorted(ticks + latency, t_mag, side="left") - 1
     i_gain = _coil_gain(t_mag, cfg.faults, dur_ns)
     if windowed:
-        i_gain = i_gain * (~coils_gated(t_mag, ticks, before, after))[:, None]
+        i_gain = i_gain * (~in_off_window(t_mag, ticks, before, after))[:, None]
     seen_factor = 0.0 if cfg.mag_sampling == "coils_off" else 1.0
 
-    b_true_gcrf_nT, r_gcrf_km_mag = env.interpolate(t_mag / NS)
+    b_true_gcrf_nT, r_gcrf_km_mag = env.interpolate(t_mag / NS_PER_S)
     noise_mag = rng_mag.standard_normal((len(t_mag), 3))
     walk = rng_gyro.standard_normal((len(t_gyro), 3))
     white = rng_gyro.standard_normal((len(t_gyro), 3))
-    dt_g = gyro_step / NS
-    jumps = [(int(np.searchsorted(t_gyro, int(round((f.start_s or 0.0) * NS)))), ax, f.value)
+    dt_g = gyro_step / NS_PER_S
+    jumps = [(int(np.searchsorted(t_gyro, int(round((f.start_s or 0.0) * NS_PER_S)))), ax, f.value)
              for f in cfg.faults if f.kind == "gyro_bias_jump"
              for ax in ([0, 1, 2] if f.axis is None else [f.axis])]
     beta = gyro_bias_path(gyro, len(t_gyro), dt_g, walk, jumps) if cfg.gyro else np.zeros((1, 3))
@@ -194,7 +192,7 @@ def run_simulation(cfg, seed: int) -> dict:
             sl = slice(done_ev, stop_ev)
             current = np.where(seg_cmd[sl, None] >= 0, cmd[np.maximum(seg_cmd[sl], 0)], 0.0) * seg_gain[sl]
             seg_m[sl] = current @ C_hw.T
-            q, w = propagate(states[done_ev, :4], states[done_ev, 4:], J, ev[done_ev:stop_ev + 1] / NS,
+            q, w = propagate(states[done_ev, :4], states[done_ev, 4:], J, ev[done_ev:stop_ev + 1] / NS_PER_S,
                              seg_m[sl], seg_tau[sl], env, cfg.gravity_gradient, cfg.max_step_s)
             states[done_ev + 1:stop_ev + 1, :4] = q[1:]
             states[done_ev + 1:stop_ev + 1, 4:] = w[1:]
@@ -232,7 +230,7 @@ def run_simulation(cfg, seed: int) -> dict:
         b_now = mag.sensor_to_body @ b_meas[j]
         if cfg.law == "bdot" and k > 0:
             jp = tick_mag[k - 1]
-            m = bdot_dipole_Am2(b_now, mag.sensor_to_body @ b_meas[jp], (t_mag[j] - t_mag[jp]) / NS, cfg.gain)
+            m = bdot_dipole_Am2(b_now, mag.sensor_to_body @ b_meas[jp], (t_mag[j] - t_mag[jp]) / NS_PER_S, cfg.gain)
         elif cfg.law == "cross_product" and done_gyro > 0:
             w_onboard = gyro.sensor_to_body @ w_meas[done_gyro - 1]
             m = cross_product_dipole_Am2(J @ w_onboard, np.asarray(cfg.target_momentum_Nms, float), b_now,
@@ -247,7 +245,7 @@ def run_simulation(cfg, seed: int) -> dict:
                  if cfg.gyro else np.zeros((len(t_mag), 3)))
     logged_idx = np.searchsorted(ticks, t_mag, side="right") - 1
     i_logged = np.where(logged_idx[:, None] >= 0, cmd[np.maximum(logged_idx, 0)], 0.0)
-    b_igrf, b_unm = env.components(t_mag / NS)
+    b_igrf, b_unm = env.components(t_mag / NS_PER_S)
     tau_mag = tau_dist[np.minimum(np.maximum(np.searchsorted(ticks, t_mag, side="right") - 1, 0),
                                   len(tau_dist) - 1)]
     positions = None

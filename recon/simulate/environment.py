@@ -25,13 +25,11 @@ import ppigrf
 from scipy.interpolate import CubicSpline
 from sgp4.api import Satrec
 
-from ..core.errors import InputError
-from ..core.frames import itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
+from ..core import NS_PER_S, InputError, itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
 
 __all__ = ["Environment", "tle_checksum", "format_tle", "invented_tle", "orbit_positions_km",
            "igrf_gcrf_nT", "unmodelled_field_nT", "build_environment"]
 
-_NS_PER_S = 1_000_000_000
 
 
 def tle_checksum(line: str) -> int:
@@ -72,7 +70,7 @@ def format_tle(catalog: int, epoch_utc: np.datetime64, inclination_deg: float, r
     t = np.datetime64(epoch_utc, "ns")
     year = int(str(t.astype("datetime64[Y]")))
     jan1 = np.datetime64(f"{year}-01-01", "ns")
-    doy = 1.0 + (t - jan1).astype(np.int64) / (86400.0 * _NS_PER_S)
+    doy = 1.0 + (t - jan1).astype(np.int64) / (86400.0 * NS_PER_S)
     nd = f"{ndot_rev_day2:+.8f}".replace("+0.", " .").replace("-0.", "-.")
     l1 = (f"1 {catalog:05d}U {designator:<8s} {year % 100:02d}{doy:012.8f} {nd} {_exp_field(0.0)} "
           f"{_exp_field(bstar)} 0 {element_set:4d}")
@@ -109,9 +107,9 @@ def orbit_positions_km(tle: tuple[str, str], time_utc: np.ndarray) -> tuple[np.n
     t = np.asarray(time_utc, dtype="datetime64[ns]")
     # sgp4 wants a two-part Julian date; split at midnight to keep precision
     ns = t.astype(np.int64)
-    days, rem = np.divmod(ns, 86400 * _NS_PER_S)
+    days, rem = np.divmod(ns, 86400 * NS_PER_S)
     jd = 2440587.5 + days.astype(float)
-    fr = rem.astype(float) / (86400.0 * _NS_PER_S)
+    fr = rem.astype(float) / (86400.0 * NS_PER_S)
     err, r_teme, _ = sat.sgp4_array(jd, fr)
     if np.any(err != 0):
         raise InputError(f"expected sgp4 to propagate the TLE over the pass, got error codes "
@@ -229,7 +227,7 @@ def build_environment(tle: tuple[str, str], t0_utc: np.datetime64, duration_s: f
     n = int(np.ceil((duration_s + 2 * margin_s) / step_s)) + 1
     t_s = -margin_s + step_s * np.arange(n)
     t0 = np.datetime64(t0_utc, "ns")
-    time_utc = t0 + np.round(t_s * _NS_PER_S).astype("timedelta64[ns]")
+    time_utc = t0 + np.round(t_s * NS_PER_S).astype("timedelta64[ns]")
     r_gcrf, r_itrf = orbit_positions_km(tle, time_utc)
     b_igrf = igrf_gcrf_nT(time_utc, r_itrf)
     b_unm, terms = unmodelled_field_nT(t_s, r_gcrf, rng, unmodelled_rms_nT)

@@ -10,7 +10,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any
 
-from ..core.errors import InputError
+from ..core import InputError
 
 __all__ = ["Fault", "SimConfig", "FAULT_KINDS", "DATA_FAULT_KINDS", "ALL_DATA_FAULTS", "list_scenarios",
            "scenario_config"]

@@ -45,12 +45,11 @@ from pathlib import Path
 import erfa
 import numpy as np
 
-from ..core.constants import GPS_EPOCH_UTC, NT_PER_UNIT
+from ..core import GPS_EPOCH_UTC, NS_PER_S, NT_PER_UNIT, utc_texts
 from .datafaults import inject
 
 __all__ = ["render", "write_files", "TRUTH_COLUMNS"]
 
-NS = 1_000_000_000
 DEG = math.pi / 180.0
 TRUTH_COLUMNS = (["time_utc", "t_s", "qx", "qy", "qz", "qw", "wx_rad_s", "wy_rad_s", "wz_rad_s"]
                  + [f"gyro_bias_{a}_rad_s" for a in "xyz"] + [f"b_igrf_gcrf_{a}_nT" for a in "xyz"]
@@ -62,13 +61,9 @@ _TRUTH_FMT = ",".join(["%s", "%.3f"] + ["%.12f"] * 4 + ["%.12e"] * 6 + ["%.4f"] 
                       + ["%.4f"] * 3 + ["%.9f"] * 3 + ["%.6e"] * 3 + ["%.6f"] * 3)
 
 
-def _iso(t: np.ndarray, unit: str = "ms") -> list[str]:
-    return [s + "Z" for s in np.datetime_as_string(np.asarray(t, "datetime64[ns]"), unit=unit)]
-
-
 def _seconds_text(ns: np.ndarray) -> list[str]:
     """Integer nanoseconds as seconds with 3 decimals, exactly (the instants lie on whole ms)."""
-    s, r = np.divmod(np.asarray(ns, np.int64), NS)
+    s, r = np.divmod(np.asarray(ns, np.int64), NS_PER_S)
     return [f"{a}.{b // 1_000_000:03d}" for a, b in zip(s.tolist(), r.tolist(), strict=True)]
 
 
@@ -94,7 +89,7 @@ def gyro_tick_epoch(cfg, t0: np.datetime64, step_ns: int) -> tuple[np.datetime64
     the pass's month. Both lie on whole seconds."""
     if cfg.gyro_rollover_mid_pass:
         span = (2 ** 32) * step_ns
-        t_wrap = int(cfg.duration_s // 2) * NS + span % NS
+        t_wrap = int(cfg.duration_s // 2) * NS_PER_S + span % NS_PER_S
         return t0 + np.timedelta64(t_wrap - span, "ns"), t_wrap
     return np.datetime64(np.datetime64(t0, "M"), "ns"), None
 
@@ -114,14 +109,14 @@ def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict
     def fmt_mag(t, v):
         return f"{t},{v[0] + 0.0:.{dec}f},{v[1] + 0.0:.{dec}f},{v[2] + 0.0:.{dec}f}"
 
-    lines, led = inject("mag.csv", "utc,mx,my,mz", _iso(t_mag_utc), sim["b_meas_nT"] / f, fmt_mag,
+    lines, led = inject("mag.csv", "utc,mx,my,mz", utc_texts(t_mag_utc), sim["b_meas_nT"] / f, fmt_mag,
                         plan.get("mag.csv", {}), rng, columns=("mx", "my", "mz"),
                         full_scale=cfg.mag_full_scale_nT / f, spike_size=20_000.0 / f, time_utc=t_mag_utc)
     texts["mag.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # gyro
     if cfg.gyro:
-        step = int(round(NS / cfg.gyro_rate_hz))
+        step = int(round(NS_PER_S / cfg.gyro_rate_hz))
         epoch, t_wrap = gyro_tick_epoch(cfg, t0, step)
         t_g = sim["t_gyro_ns"]
         counts = ((t0 - epoch).astype("timedelta64[ns]").astype(np.int64) + t_g) // step % (2 ** 32)
@@ -156,7 +151,7 @@ def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict
         utc = t0 + t_pos.astype("timedelta64[ns]")
         d = str(np.datetime64(t0, "D")).split("-")
         tai_utc = float(erfa.dat(int(d[0]), int(d[1]), int(d[2]), 0.0))  # leap seconds (IERS table)
-        gps_ns = (utc - np.datetime64(GPS_EPOCH_UTC, "ns")).astype(np.int64) + int(round((tai_utc - 19.0) * NS))
+        gps_ns = (utc - np.datetime64(GPS_EPOCH_UTC, "ns")).astype(np.int64) + int(round((tai_utc - 19.0) * NS_PER_S))
         rows = [f"{t},{x:.2f},{y:.2f},{z:.2f}" for t, (x, y, z) in zip(_seconds_text(gps_ns), r_m.tolist(),
                                                                           strict=True)]
         texts["positions.csv"] = "gps_s,x_m,y_m,z_m\n" + "\n".join(rows) + "\n"
@@ -200,7 +195,7 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
             f'mag_sampling = "{cfg.mag_sampling}"']
     if cfg.mag_sampling == "windowed":
         out.append(f"off_window_s = {_vec(cfg.off_window_s)}")
-    first = sim["t0_utc"] + np.timedelta64(int(round(cfg.first_tick_offset_s * NS)), "ns")
+    first = sim["t0_utc"] + np.timedelta64(int(round(cfg.first_tick_offset_s * NS_PER_S)), "ns")
     out += ["", "[controller]", f'law = "{cfg.law}"', f"gain = {_num(cfg.gain)}",
             f"period_s = {_num(cfg.period_s)}", f'first_tick = "{np.datetime_as_string(first, unit="ms")}Z"']
     if cfg.law == "cross_product":
@@ -210,12 +205,12 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
 
 def _truth_csv(sim, t_mag_utc, stride: int) -> str:
     sl = slice(None, None, stride)
-    cols = [sim["t_mag_ns"][sl] / NS, sim["q"][sl], sim["w"][sl], sim["gyro_bias_body_rad_s"][sl],
+    cols = [sim["t_mag_ns"][sl] / NS_PER_S, sim["q"][sl], sim["w"][sl], sim["gyro_bias_body_rad_s"][sl],
             sim["b_igrf_gcrf_nT"][sl], sim["b_unmodelled_gcrf_nT"][sl], sim["b_body_nT"][sl],
             sim["i_true_A"][sl], sim["i_logged_A"][sl], sim["b_coil_sensor_nT"][sl], sim["m_body_Am2"][sl],
             sim["tau_dist_Nm"][sl], sim["r_gcrf_km"][sl]]
     arr = np.column_stack(cols) + 0.0
-    times = _iso(t_mag_utc[sl])
+    times = utc_texts(t_mag_utc[sl])
     rows = [_TRUTH_FMT % (t, *row) for t, row in zip(times, arr.tolist(), strict=True)]
     return ",".join(TRUTH_COLUMNS) + "\n" + "\n".join(rows) + "\n"
 

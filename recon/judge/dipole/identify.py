@@ -57,9 +57,9 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.stats import chi2
 
-from ...core.constants import MU_EARTH_m3_s2
+from ...core import MU_EARTH_m3_s2, held_values, in_off_window
 
-__all__ = ["DipoleFit", "identify_dipole", "applied_current_A", "scan_actuation_latency", "classify_coil",
+__all__ = ["DipoleFit", "identify_dipole", "scan_actuation_latency", "classify_coil",
            "rate_bias_knots_s", "rate_bias_evidence", "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY",
            "RATE_BIAS_KNOT_S"]
 
@@ -157,35 +157,6 @@ def _motion(t_s, w_body_rad_s, b_body_nT, inertia, r_body_km, w_cov) -> _Motion:
                    w_spline.antiderivative(), CubicSpline(t, t[:, None] * w).antiderivative(), t, w_cov)
 
 
-def _gated(t: np.ndarray, ticks: np.ndarray, before: float, after: float) -> np.ndarray:
-    """True inside a coil-off window [tick - before, tick + after]."""
-    if len(ticks) == 0:
-        return np.zeros(t.shape, bool)
-    k = np.clip(np.searchsorted(ticks, t - after, side="left"), 0, len(ticks) - 1)
-    return (t >= ticks[k] - before) & (t <= ticks[k] + after)
-
-
-def applied_current_A(t_s: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray, *, latency_s: float = 0.0,
-                      gate: tuple[np.ndarray, float, float] | None = None, max_hold_s: float = 2.5) -> np.ndarray:
-    """The current flowing at instants ``t_s``: the logged command held from ``t_log + latency``,
-    zero inside coil-off windows, NaN where the log has no value younger than ``max_hold_s``.
-
-    Returns
-    -------
-    (N, 3) array, A
-    """
-    t = np.asarray(t_s, float)
-    t_on = np.asarray(t_coil_s, float) + latency_s
-    k = np.searchsorted(t_on, t + 1e-9, side="right") - 1
-    kc = np.clip(k, 0, max(len(t_on) - 1, 0))
-    out = np.asarray(i_coil_A, float)[kc].copy() if len(t_on) else np.full((len(t), 3), np.nan)
-    if len(t_on):
-        out[(k < 0) | (t - t_on[kc] > max_hold_s)] = np.nan
-    if gate is not None:
-        out[_gated(t, *gate)] = 0.0
-    return out
-
-
 def _regressors(mot: _Motion, bounds_s: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
                 latency_s: float, gate: tuple[np.ndarray, float, float] | None, max_hold_s: float):
     """Per interval: the current-dipole regressor (n, 3, 9), the residual-dipole one (n, 3, 3) and
@@ -202,12 +173,11 @@ def _regressors(mot: _Motion, bounds_s: np.ndarray, t_coil_s: np.ndarray, i_coil
     ev = ev[(ev >= t0) & (ev <= t1)]
     a, b = ev[:-1], ev[1:]
     mid = 0.5 * (a + b)
-    k = np.searchsorted(t_on, mid, side="right") - 1
-    cur = np.asarray(i_coil_A, float)[np.clip(k, 0, len(t_on) - 1)].copy()
-    unknown = (k < 0) | (mid - t_on[np.clip(k, 0, len(t_on) - 1)] > max_hold_s) | ~np.all(np.isfinite(cur), 1)
+    cur = held_values(t_on, i_coil_A, mid, max_age=max_hold_s)
+    unknown = ~np.all(np.isfinite(cur), 1)
     cur[unknown] = 0.0
     if gate is not None:
-        cur[_gated(mid, *gate)] = 0.0
+        cur[in_off_window(mid, *gate)] = 0.0
     dF = mot.F_B(b) - mot.F_B(a)                       # (cells, 3) T s
     cell_int = np.searchsorted(bounds_s, mid, side="right") - 1
     n = len(bounds_s) - 1
