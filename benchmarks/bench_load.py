@@ -29,9 +29,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from recon.clean.logs import clean_pass
+from recon.clean import clean_pass
 from recon.config import load_mission
-from recon.load.logs import load_pass
+from recon.load import load_pass
 
 SEED = 20260714
 TARGET_ROWS_PER_S = 300_000

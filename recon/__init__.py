@@ -5,9 +5,7 @@ imported on first use, so ``import recon`` stays quick.
 """
 
 from .config import Mission, load_mission
-from .core import Anomaly, InputError
-
-__version__ = "0.1.0"
+from .core import Anomaly, InputError, __version__
 
 __all__ = [
     "Anomaly", "InputError", "Mission", "load_mission", "__version__",

@@ -11,6 +11,8 @@ from pathlib import Path
 
 from .core import InputError
 
+__all__ = ["main", "EXIT_OK", "EXIT_CRITICAL", "EXIT_BAD_INPUT"]
+
 EXIT_OK, EXIT_CRITICAL, EXIT_BAD_INPUT = 0, 1, 2
 
 
@@ -23,7 +25,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from .core import __version__
 
     p = _Parser(prog="recon", description="Reconstruct one pass of a magnetically controlled small "
                                           "satellite from its downlinked logs.")

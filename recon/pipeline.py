@@ -92,8 +92,8 @@ def _out_dir(mission: Mission, out_root: Path | str) -> Path:
 
 
 def _load_and_clean(mission: Mission):
-    from .clean.logs import clean_pass
-    from .load.logs import load_pass
+    from .clean import clean_pass
+    from .load import load_pass
 
     return clean_pass(load_pass(mission), mission)
 
@@ -101,7 +101,7 @@ def _load_and_clean(mission: Mission):
 def inspect_pass(mission_path: Path | str, out_root: Path | str = "reports") -> InspectResult:
     """Load and clean one pass; write ``<out_root>/<pass id>/ledger.csv``."""
     mission = load_mission(mission_path)
-    from .clean.logs import format_inspect_table, write_ledger
+    from .clean import format_inspect_table, write_ledger
 
     cleaned = _load_and_clean(mission)
     out = _out_dir(mission, out_root)
@@ -120,7 +120,7 @@ def _reference(mission: Mission, cleaned, skipped: dict[str, str], progress) -> 
         skipped["orbit"] = ("the mission file has no [orbit] section: no reference field, so the "
                             "magnetometer is calibrated from current steps only and no attitude is estimated")
         return None
-    from .field.along_orbit import reference_field
+    from .field import reference_field
 
     _say(progress, "reference field (IGRF-14)", 0.0)
     ref = reference_field(mission, cleaned.magnetometer.time_utc)
@@ -144,7 +144,7 @@ def _reference_anomalies(ref) -> list[Anomaly]:
 
 def crosstalk_pass(mission_path: Path | str, out_root: Path | str = "reports") -> str:
     """Calibrate the magnetometer of one pass and return the crosstalk table as text."""
-    from .calibrate.calibration import calibrate_pass, format_crosstalk_table
+    from .calibrate import calibrate_pass, format_crosstalk_table
 
     mission = load_mission(mission_path)
     cleaned = _load_and_clean(mission)
@@ -204,7 +204,7 @@ def _settings(mission: Mission) -> dict[str, Any]:
 
 
 def _estimate(mission: Mission, cleaned, cal, ref, progress):
-    from .estimate.attitude import NoiseModel, estimate_attitude
+    from .estimate import NoiseModel, estimate_attitude
 
     gyro = cleaned.gyro
     coils = cleaned.coils
@@ -222,7 +222,7 @@ def _estimate(mission: Mission, cleaned, cal, ref, progress):
 
 
 def _judge(mission: Mission, cleaned, cal, ref, hist):
-    from .judge.judgement import judge_pass
+    from .judge import judge_pass
 
     mag = cleaned.magnetometer
     m_stb = mission.magnetometer.sensor_to_body
@@ -308,8 +308,8 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     """
     import sys
 
-    from . import __version__
-    from .calibrate.calibration import calibrate_pass
+    from .calibrate import calibrate_pass
+    from .core import __version__
 
     bar = _Progress(sys.stderr) if progress else None
     mission = load_mission(mission_path)
@@ -318,7 +318,7 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     cleaned = _load_and_clean(mission)
     _say(bar, "load and clean", 1.0)
     _check_unit(cleaned)
-    from .clean.logs import write_ledger
+    from .clean import write_ledger
 
     write_ledger(out / "ledger.csv", cleaned.ledger)
     anomalies: list[Anomaly] = list(cleaned.anomalies)
@@ -340,8 +340,8 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     else:
         hist = _estimate(mission, cleaned, cal, ref, bar)
         anomalies += list(hist.anomalies)
-        from .estimate.attitude import write_attitude_csv
-        from .report.aem import write_aem
+        from .estimate import write_attitude_csv
+        from .report import write_aem
 
         write_attitude_csv(out / "attitude.csv", hist)
         write_aem(out / "attitude.aem", hist.time_utc, hist.q_body_from_gcrf,
@@ -378,7 +378,7 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     }
     write_json(out / "summary.json", summary)
     if report:
-        from .report.html import write_report
+        from .report import write_report
 
         _say(bar, "report", 0.0)
         write_report(out, summary, _figures(mission, cleaned, cal, ref, hist, judgement, anomalies))

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from recon.core.errors import InputError
-from recon.report.aem import format_aem, read_aem, write_aem
+from recon.core import InputError
+from recon.report import format_aem, read_aem, write_aem
 
 T0 = np.datetime64("2026-07-14T09:12:00", "ns")
 CREATED = np.datetime64("2026-07-14T10:00:00", "ns")

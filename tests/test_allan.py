@@ -7,7 +7,7 @@ import allantools
 import numpy as np
 import pytest
 
-from recon.core.signal import white_noise_from_differences
+from recon.core import white_noise_from_differences
 from recon.estimate.noise import gyro_noise_from_adev, overlapping_adev
 
 FS_HZ = 10.0

@@ -9,14 +9,8 @@ import numpy as np
 import pytest
 from test_calibrate_core import I_MAX_A, NOISE_nT, synthetic_pass
 
-from recon.calibrate.calibration import (
-    calibrate_arrays,
-    combine_crosstalk,
-    compare_crosstalk,
-    format_crosstalk_table,
-)
-from recon.core.coils import controller_samples, effective_current, infer_first_tick
-from recon.core.errors import InputError
+from recon.calibrate import calibrate_arrays, combine_crosstalk, compare_crosstalk, format_crosstalk_table
+from recon.core import InputError, controller_samples, effective_current, infer_first_tick
 
 T0 = np.datetime64("2026-07-14T09:12:00", "ns")
 

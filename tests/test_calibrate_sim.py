@@ -9,12 +9,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from recon.calibrate.calibration import calibrate_pass, format_crosstalk_table
+from recon.calibrate import calibrate_pass, format_crosstalk_table
 from recon.calibrate.magfit import params_from_matrices, residual_nT
-from recon.clean.logs import clean_pass
+from recon.clean import clean_pass
 from recon.config import load_mission
-from recon.field.along_orbit import reference_field
-from recon.load.logs import load_pass
+from recon.field import reference_field
+from recon.load import load_pass
 from recon.simulate import simulate_pass
 
 DURATION_s = 600.0

@@ -11,11 +11,11 @@ import pytest
 from scipy.spatial.transform import Rotation
 from scipy.stats import norm
 
+from recon.clean import clean_pass, find_gaps, format_inspect_table, write_ledger
 from recon.clean import hampel as _hampel
-from recon.clean.logs import clean_pass, find_gaps, format_inspect_table, write_ledger
 from recon.config import load_mission
-from recon.core.errors import InputError
-from recon.load.logs import load_pass
+from recon.core import InputError
+from recon.load import load_pass
 
 HEAD = """\
 [pass]

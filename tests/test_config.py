@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from recon.config import load_mission, parse_utc
-from recon.core.errors import InputError
+from recon.core import InputError
 
 
 def test_valid_mission_loads(mission_dir):

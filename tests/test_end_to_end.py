@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from recon.pipeline import run_pass
-from recon.report.aem import read_aem
+from recon.report import read_aem
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLES = sorted(p.parent for p in (REPO / "sample_telemetry").glob("*/mission.toml"))

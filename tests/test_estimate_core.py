@@ -9,9 +9,9 @@ from filterpy.kalman import ExtendedKalmanFilter, KalmanFilter
 from scipy.linalg import expm
 from scipy.spatial.transform import Rotation
 
+from recon.core import scipy_from_shuster_quaternion
 from recon.estimate import mekf_core as core
 from recon.estimate.attitude import NoiseModel, _params
-from recon.core.frames import scipy_from_shuster_quaternion
 from recon.estimate.initial import davenport_q_method
 
 INERTIA = np.array([[0.021, 0.0004, 0.0], [0.0004, 0.023, 0.0002], [0.0, 0.0002, 0.0071]])

@@ -13,10 +13,10 @@ import pytest
 from scipy import stats
 from test_estimate_truth import attitude_error_rad
 
-from recon.estimate.attitude import NoiseModel, estimate_attitude
-from recon.core.coils import current_log_with_off_windows
+from recon.core import current_log_with_off_windows
+from recon.estimate import NoiseModel, estimate_attitude
 from recon.estimate.initial import initial_state_with_gyro
-from recon.simulate.api import simulate_pass
+from recon.simulate import simulate_pass
 
 DEG = np.pi / 180.0
 DURATION_S = 1800.0

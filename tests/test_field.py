@@ -10,8 +10,7 @@ import ppigrf
 import pytest
 
 from recon.config import OrbitSpec
-from recon.core import frames
-from recon.core.errors import InputError
+from recon.core import InputError, frames
 from recon.field import along_orbit as field
 from recon.orbit import sources as orbit
 

@@ -14,8 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
-from recon.core import frames
-from recon.core.constants import WGS84_F, WGS84_A_km
+from recon.core import WGS84_F, WGS84_A_km, frames
 
 # ------------------------------------------------------------------ Vallado et al. (2006) App. C
 # UTC 2004-04-06 07:51:28.386009, UT1 - UTC = -0.439961 s, xp = -0.140682", yp = 0.333309"

@@ -26,9 +26,9 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
-from recon.core.frames import body_from_gcrf
+from recon.core import body_from_gcrf
+from recon.judge import THRESHOLDS, judge_pass
 from recon.judge.dipole import identify as dip
-from recon.judge.judgement import THRESHOLDS, judge_pass
 from recon.simulate import simulate_pass
 
 FAST_SEEDS = (0, 1)

@@ -9,8 +9,7 @@ import numpy as np
 import pytest
 
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
-from recon.core.constants import MU_EARTH_km3_s2
-from recon.core.errors import InputError
+from recon.core import InputError, MU_EARTH_km3_s2
 from recon.judge import effect as eff
 from recon.judge import replay as rep
 from recon.judge.dipole import identify as dip

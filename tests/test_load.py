@@ -11,9 +11,16 @@ import pandas as pd
 import pytest
 
 from recon.config import load_mission
-from recon.core.errors import InputError
-from recon.load.logs import load_log, load_pass
-from recon.load.timescales import gps_seconds_to_utc, iso_to_utc, ticks_to_utc, unix_seconds_to_utc, unwrap_ticks
+from recon.core import InputError
+from recon.load import (
+    gps_seconds_to_utc,
+    iso_to_utc,
+    load_log,
+    load_pass,
+    ticks_to_utc,
+    unix_seconds_to_utc,
+    unwrap_ticks,
+)
 
 HEAD = """\
 [pass]

@@ -14,10 +14,10 @@ import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from recon.clean.logs import clean_pass
+from recon.clean import clean_pass
 from recon.config import load_mission
-from recon.core.errors import InputError
-from recon.load.logs import load_pass
+from recon.core import InputError
+from recon.load import load_pass
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -10,8 +10,7 @@ import numpy as np
 import pytest
 
 from recon.config import OrbitSpec, PositionsSpec, TimeSpec
-from recon.core import frames
-from recon.core.errors import InputError
+from recon.core import InputError, frames
 from recon.orbit import sources as orbit
 from recon.orbit.oem import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
 

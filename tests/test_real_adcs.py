@@ -14,10 +14,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from recon.clean.logs import clean_pass
+from recon.clean import clean_pass
 from recon.cli import main
 from recon.config import load_mission
-from recon.load.logs import load_pass
+from recon.load import load_pass
 
 _HERE = Path(__file__).resolve()
 _CANDIDATES = [_HERE.parents[2] / "shared", _HERE.parents[1] / "shared"]

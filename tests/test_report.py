@@ -10,8 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from recon.report import figures
-from recon.report.html import render_html, write_report
+from recon.report import figures, render_html, write_report
 
 HOSTILE = '<script>alert("x")</script><img src=x onerror=alert(1)>'
 

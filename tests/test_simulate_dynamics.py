@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from recon.core.constants import MU_EARTH_m3_s2
+from recon.core import MU_EARTH_m3_s2
 from recon.simulate import simulate_pass
 from recon.simulate.dynamics import (
     gravity_gradient_torque_Nm,

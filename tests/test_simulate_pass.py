@@ -8,9 +8,7 @@ import pytest
 from sgp4.api import Satrec
 
 from recon.config import load_mission
-from recon.core.constants import GPS_EPOCH_UTC, MU_EARTH_km3_s2, WGS84_A_km
-from recon.core.errors import InputError
-from recon.core.frames import body_from_gcrf
+from recon.core import GPS_EPOCH_UTC, InputError, MU_EARTH_km3_s2, WGS84_A_km, body_from_gcrf
 from recon.simulate import list_scenarios, simulate_pass
 from recon.simulate.dynamics import kinetic_energy_J
 from recon.simulate.environment import build_environment, invented_tle, orbit_positions_km, tle_checksum

@@ -36,10 +36,9 @@ from ..core import NS_PER_S, NT_PER_UNIT, Anomaly, controller_samples, effective
 from .agreement import combine_crosstalk, compare_crosstalk
 from .magfit import AXES, PARAM_NAMES, MagFit, fit_magnetometer, matrices_from_params, nominal_params
 from .steps import StepFit, fit_crosstalk_steps
-from .summary import format_crosstalk_table, summary_block
+from .summary import summary_block
 
-__all__ = ["Calibration", "calibrate_pass", "calibrate_arrays", "effective_current", "format_crosstalk_table",
-           "compare_crosstalk", "combine_crosstalk"]
+__all__ = ["Calibration", "calibrate_pass", "calibrate_arrays"]
 
 # Crosstalk is called significant when an element is beyond 3 sigma of zero AND its field at full
 # current exceeds 5 x the magnetometer noise (common practice, no source).

@@ -36,7 +36,7 @@ import pandas as pd
 
 from ..config import Mission
 from ..core import Anomaly, utc_text
-from ..load.logs import LEDGER_COLUMNS, LoadedPass, SensorLog, empty_ledger, ledger_frame
+from ..load import LEDGER_COLUMNS, LoadedPass, SensorLog, empty_ledger, ledger_frame
 from . import hampel as _hampel
 from .findings import format_inspect_table, stage_anomalies, write_ledger
 

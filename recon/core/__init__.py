@@ -56,6 +56,7 @@ from .frames import (
 )
 from .signal import held_integral, held_mean, local_slope, robust_scale, white_noise_from_differences, window_mean
 from .timetext import utc_text, utc_texts
+from .version import __version__
 
 __all__ = [
     "constants", "frames",
@@ -70,5 +71,5 @@ __all__ = [
     "effective_current", "held_values", "in_off_window", "in_off_window_utc", "infer_first_tick",
     "mean_dipole_over_steps", "tick_phase",
     "held_integral", "held_mean", "local_slope", "robust_scale", "white_noise_from_differences", "window_mean",
-    "utc_text", "utc_texts",
+    "utc_text", "utc_texts", "__version__",
 ]

@@ -33,7 +33,7 @@ import ppigrf
 from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
 from ..core import DEG_PER_RAD, InputError, frames
-from ..orbit.sources import OrbitState, _from_gcrf_nodes, itrf_to_gcrf, orbit_at
+from ..orbit import OrbitState, itrf_to_gcrf, orbit_at, state_from_gcrf_nodes
 
 __all__ = ["ReferenceField", "reference_field", "field_along_orbit", "field_for_orbit", "igrf_itrf_nT", "igrf_gcrf_nT",
            "GRID_STEP_s", "DATE_BLOCK_s", "IGRF14_START_UTC", "IGRF14_STOP_UTC"]
@@ -212,7 +212,7 @@ def _orbit_dense(orbit_spec, t: np.ndarray, dut1_s: float, source) -> OrbitState
     xg, x = (nodes - ns[0]) / 1e9, (ns - ns[0]) / 1e9
     spline = CubicHermiteSpline(xg, g.r_gcrf_km, g.v_gcrf_km_s, axis=0)
     reason = np.full(len(t), "", dtype=g.reason.dtype)
-    return _from_gcrf_nodes(t, reason, spline(x), spline(x, 1), dut1_s, g.source)
+    return state_from_gcrf_nodes(t, reason, spline(x), spline(x, 1), dut1_s, g.source)
 
 
 def field_for_orbit(orbit_spec, orb, *, grid_step_s: float = GRID_STEP_s, dut1_s: float = 0.0,

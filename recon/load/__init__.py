@@ -1,1 +1,50 @@
-"""placeholder"""
+"""Load the logs of one pass: read each CSV, map its columns, convert units and time bases to UTC.
+
+Every input line is either a row of a :class:`SensorLog` or a ledger row naming its file, line and
+reason. ``timescales`` holds the only conversions of GPS seconds, UNIX seconds, ISO text and onboard
+ticks to UTC.
+"""
+
+from .logs import (
+    LEDGER_COLUMNS,
+    REASON_BAD_TIME,
+    REASON_MISSING,
+    REASON_NON_FINITE,
+    REASON_NON_NUMERIC,
+    LoadedPass,
+    SensorLog,
+    empty_ledger,
+    ledger_frame,
+    load_log,
+    load_pass,
+)
+from .timescales import (
+    EARLIEST_UTC,
+    LATEST_UTC,
+    gps_seconds_to_utc,
+    iso_to_utc,
+    ticks_to_utc,
+    unix_seconds_to_utc,
+    unwrap_ticks,
+)
+
+__all__ = [
+    "LEDGER_COLUMNS",
+    "SensorLog",
+    "LoadedPass",
+    "load_pass",
+    "load_log",
+    "ledger_frame",
+    "empty_ledger",
+    "REASON_BAD_TIME",
+    "REASON_MISSING",
+    "REASON_NON_NUMERIC",
+    "REASON_NON_FINITE",
+    "EARLIEST_UTC",
+    "LATEST_UTC",
+    "iso_to_utc",
+    "unix_seconds_to_utc",
+    "gps_seconds_to_utc",
+    "unwrap_ticks",
+    "ticks_to_utc",
+]

@@ -36,7 +36,7 @@ from . import timescales as ts
 from .csvscan import Scan, read_log_bytes, scan_bytes
 
 __all__ = [
-    "LEDGER_COLUMNS", "SensorLog", "LoadedPass", "load_pass", "load_log", "ledger_frame",
+    "LEDGER_COLUMNS", "SensorLog", "LoadedPass", "load_pass", "load_log", "ledger_frame", "empty_ledger",
     "REASON_BAD_TIME", "REASON_MISSING", "REASON_NON_NUMERIC", "REASON_NON_FINITE",
 ]
 

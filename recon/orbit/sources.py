@@ -36,7 +36,7 @@ from .oem import hermite_interpolate, lagrange_interpolate, read_oem, write_oem
 __all__ = [
     "OrbitState", "orbit_at", "orbit_from_tle", "orbit_from_positions", "orbit_from_oem", "parse_tle",
     "tle_checksum", "tle_teme", "state_from_teme", "read_positions", "itrf_to_gcrf_matrix_fast",
-    "itrf_to_gcrf", "gcrf_to_itrf", "write_oem", "MAX_GAP_s",
+    "itrf_to_gcrf", "gcrf_to_itrf", "write_oem", "MAX_GAP_s", "state_from_gcrf_nodes",
 ]
 
 # Longest gap a position log may have and still be interpolated across. A cubic's error over a step h
@@ -188,7 +188,7 @@ def _times(time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return t, reason
 
 
-def _from_gcrf_nodes(t, reason, r_gcrf, v_gcrf, dut1_s, source) -> OrbitState:
+def state_from_gcrf_nodes(t, reason, r_gcrf, v_gcrf, dut1_s, source) -> OrbitState:
     q, angle = _earth_orientation(t, dut1_s)
     r_itrf = _spin(angle, _apply(q, np.where(np.isfinite(r_gcrf), r_gcrf, 0.0)))
     return _state(t, r_gcrf, v_gcrf, r_itrf, reason, source)
@@ -444,7 +444,7 @@ def orbit_from_positions(spec: PositionsSpec, time_utc: np.ndarray, *, dut1_s: f
         covered |= inside
     gap = ~covered & (reason == "")
     reason[gap] = f"in a gap longer than {max_gap_s:g} s of the position log"
-    return _from_gcrf_nodes(t, reason, r, v, dut1_s, "positions")
+    return state_from_gcrf_nodes(t, reason, r, v, dut1_s, "positions")
 
 
 # ---------------------------------------------------------------------------------------- OEM
@@ -491,7 +491,7 @@ def orbit_from_oem(path: str | Path, time_utc: np.ndarray, *, dut1_s: float = 0.
             v[inside] = lagrange_interpolate(x_n, v_n, x, seg.degree)
         done |= inside
     reason[~done & (reason == "")] = "between OEM segments (no ephemeris)"
-    return _from_gcrf_nodes(t, reason, r, v, dut1_s, "oem")
+    return state_from_gcrf_nodes(t, reason, r, v, dut1_s, "oem")
 
 
 # ------------------------------------------------------------------------------------ dispatch

@@ -9,8 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
-from ..core import NS_PER_S, utc_text
+from ..core import NS_PER_S, __version__, utc_text
 from .engine import run_simulation
 from .environment import Environment
 from .scenarios import SimConfig, scenario_config
