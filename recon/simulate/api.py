@@ -154,12 +154,38 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
     sim = run_simulation(cfg, seed)
     pass_id = f"sim-{scenario}-seed{seed}"
     texts, ledger, facts = render(sim, cfg, scenario, seed, pass_id)
-    t0 = sim["t0_utc"]
-    mag: MagnetometerHardware = sim["mag"]
-    gyro: GyroNoise = sim["gyro"]
-    C_eff, K_eff, gains = _effective(sim["C_hw"], mag.K_nT_per_A, cfg)
+    t0 = sim.t0_utc
+    mag: MagnetometerHardware = sim.mag
+    gyro: GyroNoise = sim.gyro
+    C_eff, K_eff, gains = _effective(sim.C_hw, mag.K_nT_per_A, cfg)
     faults = _fault_records(cfg, t0)
-    truth = {
+    truth = _truth_record(cfg, sim, scenario, seed, pass_id, facts, faults, ledger, texts, (C_eff, K_eff, gains))
+    t_mag = t0 + sim.t_mag_ns.astype("timedelta64[ns]")
+    result = SimulatedPass(
+        scenario=scenario, seed=seed, config=cfg, pass_id=pass_id, time_utc=t_mag, t_s=sim.t_mag_ns / NS_PER_S,
+        q_body_from_gcrf=sim.q, w_body_rad_s=sim.w, gyro_bias_body_rad_s=sim.gyro_bias_body_rad_s,
+        b_igrf_gcrf_nT=sim.b_igrf_gcrf_nT, b_unmodelled_gcrf_nT=sim.b_unmodelled_gcrf_nT,
+        b_body_nT=sim.b_body_nT, b_meas_sensor_nT=sim.b_meas_nT, i_true_A=sim.i_true_A,
+        i_logged_A=sim.i_logged_A, b_coil_sensor_nT=sim.b_coil_sensor_nT, m_body_Am2=sim.m_body_Am2,
+        tau_dist_body_Nm=sim.tau_dist_Nm, r_gcrf_km=sim.r_gcrf_km,
+        gyro_time_utc=t0 + sim.t_gyro_ns.astype("timedelta64[ns]"),
+        w_gyro_true_body_rad_s=sim.w_gyro_true, w_gyro_meas_sensor_rad_s=sim.w_meas_rad_s,
+        gyro_beta_sensor_rad_s=sim.gyro_beta, tick_time_utc=t0 + sim.ticks_ns.astype("timedelta64[ns]"),
+        i_cmd_A=sim.i_cmd_A, magnetometer=mag, gyro=gyro, C_nominal=sim.C_nominal, C_hardware=sim.C_hw,
+        C_effective=C_eff, K_effective_nT_per_A=K_eff, inertia_kg_m2=sim.inertia, environment=sim.env,
+        tle=sim.tle, faults=faults, data_faults=ledger, truth=truth, texts=texts)
+    if out_dir is not None:
+        paths = write_files(texts, truth, out_dir)
+        result = dataclasses.replace(result, paths=paths)
+    return result
+
+
+def _truth_record(cfg: SimConfig, sim, scenario: str, seed: int, pass_id: str, facts: dict, faults: list,
+                  ledger: list, texts: dict, effective: tuple) -> dict:
+    """The content of truth/truth.json."""
+    C_eff, K_eff, gains = effective
+    t0 = sim.t0_utc
+    return {
         "scenario": scenario, "seed": seed, "description": cfg.description, "pass_id": pass_id,
         "generator": f"recon.simulate (recon {__version__})",
         "pass_epoch_utc": utc_text(t0), "duration_s": cfg.duration_s,
@@ -172,32 +198,35 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
                      "are per logged amp while the coil faults are active",
         },
         "spacecraft": {"inertia_kg_m2": np.asarray(cfg.inertia_kg_m2).tolist()},
-        "orbit": {"source": cfg.orbit_source, "tle": list(sim["tle"]),
+        "orbit": {"source": cfg.orbit_source, "tle": list(sim.tle),
                   "positions_noise_m": cfg.positions_noise_m if cfg.orbit_source == "positions" else None,
                   **({"gps_minus_utc_s": facts["gps_minus_utc_s"]} if "gps_minus_utc_s" in facts else {})},
         "environment": {"field_model": "IGRF-14 (ppigrf), coefficients at the pass epoch",
                         "unmodelled_rms_nT": cfg.unmodelled_rms_nT,
-                        "unmodelled_terms_gcrf": sim["env"].unmodelled_terms,
+                        "unmodelled_terms_gcrf": sim.env.unmodelled_terms,
                         "gravity_gradient": cfg.gravity_gradient,
                         "disturbance_sigma_Nm": cfg.disturbance_sigma_Nm,
                         "disturbance_correlation_s": cfg.disturbance_correlation_s},
-        "initial_state": {"q_body_from_gcrf": sim["q0"].tolist(), "w_body_rad_s": sim["w0"].tolist()},
-        "magnetometer": {"frame": "sensor", "sensor_to_body": mag.sensor_to_body.tolist(), "S": mag.S.tolist(),
-                         "bias_nT": mag.bias_nT.tolist(), "K_nT_per_A": K_eff.tolist(),
-                         "K_nT_per_A_hardware": mag.K_nT_per_A.tolist(), "noise_nT": mag.noise_nT,
-                         "lsb_nT": mag.lsb_nT, "full_scale_nT": mag.full_scale_nT, "rate_hz": cfg.mag_rate_hz,
+        "initial_state": {"q_body_from_gcrf": sim.q0.tolist(), "w_body_rad_s": sim.w0.tolist()},
+        "magnetometer": {"frame": "sensor", "sensor_to_body": sim.mag.sensor_to_body.tolist(),
+                         "S": sim.mag.S.tolist(),
+                         "bias_nT": sim.mag.bias_nT.tolist(), "K_nT_per_A": K_eff.tolist(),
+                         "K_nT_per_A_hardware": sim.mag.K_nT_per_A.tolist(), "noise_nT": sim.mag.noise_nT,
+                         "lsb_nT": sim.mag.lsb_nT, "full_scale_nT": sim.mag.full_scale_nT,
+                         "rate_hz": cfg.mag_rate_hz,
                          "unit_in_file": cfg.mag_unit},
         "gyro": None if not cfg.gyro else {
-            "frame": "sensor", "sensor_to_body": gyro.sensor_to_body.tolist(),
-            "arw_rad_sqrt_s": gyro.arw_rad_sqrt_s, "bias_walk_rad_s_sqrt_s": gyro.rrw_rad_s_sqrt_s,
-            "initial_bias_sensor_rad_s": gyro.bias0_rad_s.tolist(), "full_scale_rad_s": gyro.full_scale_rad_s,
+            "frame": "sensor", "sensor_to_body": sim.gyro.sensor_to_body.tolist(),
+            "arw_rad_sqrt_s": sim.gyro.arw_rad_sqrt_s, "bias_walk_rad_s_sqrt_s": sim.gyro.rrw_rad_s_sqrt_s,
+            "initial_bias_sensor_rad_s": sim.gyro.bias0_rad_s.tolist(),
+            "full_scale_rad_s": sim.gyro.full_scale_rad_s,
             "rate_hz": cfg.gyro_rate_hz, "tick_epoch_utc": facts.get("gyro_tick_epoch_utc"),
             "rollover_utc": facts.get("gyro_rollover_utc"), "file_resolution_deg_s": 1e-6},
-        "coils": {"C_A_m2_per_A_nominal": sim["C_nominal"].tolist(), "C_A_m2_per_A_true": C_eff.tolist(),
-                  "C_A_m2_per_A_hardware": sim["C_hw"].tolist(), "current_factor_per_axis": gains,
+        "coils": {"C_A_m2_per_A_nominal": sim.C_nominal.tolist(), "C_A_m2_per_A_true": C_eff.tolist(),
+                  "C_A_m2_per_A_hardware": sim.C_hw.tolist(), "current_factor_per_axis": gains,
                   "max_current_A": list(cfg.coil_max_current_A), "mag_sampling": cfg.mag_sampling,
                   "off_window_s": list(cfg.off_window_s) if cfg.mag_sampling == "windowed" else None,
-                  "latency_s": sim["latency_ns"] / NS_PER_S, "command_resolution_A": 1e-6},
+                  "latency_s": sim.latency_ns / NS_PER_S, "command_resolution_A": 1e-6},
         "controller": {"law": cfg.law, "gain": cfg.gain, "period_s": cfg.period_s,
                        "first_tick_utc": utc_text(t0 + np.timedelta64(int(round(cfg.first_tick_offset_s * NS_PER_S)),
                                                                       "ns")),
@@ -208,21 +237,3 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
         "data_faults": ledger,
         "file_lines": {name: text.count("\n") for name, text in texts.items()},
     }
-    t_mag = t0 + sim["t_mag_ns"].astype("timedelta64[ns]")
-    result = SimulatedPass(
-        scenario=scenario, seed=seed, config=cfg, pass_id=pass_id, time_utc=t_mag, t_s=sim["t_mag_ns"] / NS_PER_S,
-        q_body_from_gcrf=sim["q"], w_body_rad_s=sim["w"], gyro_bias_body_rad_s=sim["gyro_bias_body_rad_s"],
-        b_igrf_gcrf_nT=sim["b_igrf_gcrf_nT"], b_unmodelled_gcrf_nT=sim["b_unmodelled_gcrf_nT"],
-        b_body_nT=sim["b_body_nT"], b_meas_sensor_nT=sim["b_meas_nT"], i_true_A=sim["i_true_A"],
-        i_logged_A=sim["i_logged_A"], b_coil_sensor_nT=sim["b_coil_sensor_nT"], m_body_Am2=sim["m_body_Am2"],
-        tau_dist_body_Nm=sim["tau_dist_Nm"], r_gcrf_km=sim["r_gcrf_km"],
-        gyro_time_utc=t0 + sim["t_gyro_ns"].astype("timedelta64[ns]"),
-        w_gyro_true_body_rad_s=sim["w_gyro_true"], w_gyro_meas_sensor_rad_s=sim["w_meas_rad_s"],
-        gyro_beta_sensor_rad_s=sim["gyro_beta"], tick_time_utc=t0 + sim["ticks_ns"].astype("timedelta64[ns]"),
-        i_cmd_A=sim["i_cmd_A"], magnetometer=mag, gyro=gyro, C_nominal=sim["C_nominal"], C_hardware=sim["C_hw"],
-        C_effective=C_eff, K_effective_nT_per_A=K_eff, inertia_kg_m2=sim["inertia"], environment=sim["env"],
-        tle=sim["tle"], faults=faults, data_faults=ledger, truth=truth, texts=texts)
-    if out_dir is not None:
-        paths = write_files(texts, truth, out_dir)
-        result = dataclasses.replace(result, paths=paths)
-    return result

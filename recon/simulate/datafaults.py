@@ -20,7 +20,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..core import InputError
+from ..core import InputError, utc_text
 from .scenarios import DATA_FAULT_KINDS
 
 __all__ = ["inject"]
@@ -45,6 +45,40 @@ def _positions(n_rows: int, n_faults: int, rng: np.random.Generator, keep_out: l
             allowed = np.arange(a + 2, b - 15)
         out.append(int(rng.choice(allowed)))
     return np.asarray(out)
+
+
+def _plan(kinds: list[str], starts: np.ndarray, vals: np.ndarray, rng: np.random.Generator,
+          full_scale: float | None, spike_size: float) -> dict[int, tuple]:
+    """What happens at each faulty row (start row -> action); spikes and saturation edit ``vals``."""
+    action: dict[int, tuple] = {}
+    for kind, r in zip(kinds, starts, strict=True):
+        if kind == "gap":
+            action[r] = ("gap", int(rng.integers(_RUN["gap"][0], _RUN["gap"][1] + 1)))
+        elif kind == "saturation":
+            n, ax = int(rng.integers(_RUN["saturation"][0], _RUN["saturation"][1] + 1)), int(rng.integers(3))
+            sign = 1.0 if vals[r, ax] >= 0 else -1.0
+            vals[r:r + n, ax] = sign * full_scale
+            action[r] = ("saturation", n, ax, sign * full_scale)
+        elif kind == "spike":
+            ax = int(rng.integers(3))
+            off = spike_size * (1.0 if rng.random() < 0.5 else -1.0)
+            vals[r, ax] += off
+            action[r] = ("spike", ax, off)
+        elif kind == "malformed":
+            action[r] = ("malformed", _MALFORMED[int(rng.integers(len(_MALFORMED)))], int(rng.integers(3)))
+        else:
+            action[r] = (kind,)
+    return action
+
+
+def _malformed(line: str, how: str, column: int) -> str:
+    fields = line.split(",")
+    if how == "missing_field":
+        return ",".join(fields[:-1])
+    if how == "extra_field":
+        return line + "," + fields[-1]
+    fields[1 + column] = "ERR"
+    return ",".join(fields)
 
 
 def inject(file_name: str, header: str, times: list[str], values: np.ndarray, fmt: Callable,
@@ -82,83 +116,52 @@ def inject(file_name: str, header: str, times: list[str], values: np.ndarray, fm
     kinds = [kinds[i] for i in order]
     starts = _positions(len(times), len(kinds), rng, list(keep_out))
     vals = np.array(values, dtype=float, copy=True)
-    action: dict[int, tuple] = {}
-    for kind, r in zip(kinds, starts, strict=True):
-        if kind == "gap":
-            action[r] = ("gap", int(rng.integers(_RUN["gap"][0], _RUN["gap"][1] + 1)))
-        elif kind == "saturation":
-            n, ax = int(rng.integers(_RUN["saturation"][0], _RUN["saturation"][1] + 1)), int(rng.integers(3))
-            sign = 1.0 if vals[r, ax] >= 0 else -1.0
-            vals[r:r + n, ax] = sign * full_scale
-            action[r] = ("saturation", n, ax, sign * full_scale)
-        elif kind == "spike":
-            ax = int(rng.integers(3))
-            off = spike_size * (1.0 if rng.random() < 0.5 else -1.0)
-            vals[r, ax] += off
-            action[r] = ("spike", ax, off)
-        elif kind == "malformed":
-            action[r] = ("malformed", _MALFORMED[int(rng.integers(len(_MALFORMED)))], int(rng.integers(3)))
-        else:
-            action[r] = (kind,)
+    action = _plan(kinds, starts, vals, rng, full_scale, spike_size)
+    return _write(file_name, header, times, vals, fmt, action, columns, time_utc)
+
+
+def _write(file_name, header, times, vals, fmt, action, columns, time_utc) -> tuple[list[str], list[dict]]:
+    """The lines and ledger rows: each faulty row written as its action says."""
 
     def when(r: int) -> str | None:
-        return None if time_utc is None else str(np.datetime64(time_utc[r], "ms")) + "Z"
+        return None if time_utc is None else utc_text(time_utc[r])
 
     lines, ledger = [header], []
+
+    def record(kind: str, **extra) -> None:
+        ledger.append({"file": file_name, "line": len(lines), "kind": kind, **extra})
+
     r = 0
     while r < len(times):
-        a = action.get(r)
-        line = fmt(times[r], vals[r])
-        if a is None:
+        a = action.get(r, (None,))
+        kind, line, step = a[0], fmt(times[r], vals[r]), 1
+        if kind is None:
             lines.append(line)
-            r += 1
-            continue
-        kind = a[0]
-        if kind == "gap":
-            n = a[1]
-            ledger.append({"file": file_name, "line": len(lines) + 1, "kind": "gap", "rows_removed": n,
-                           "first_missing_utc": when(r), "last_missing_utc": when(r + n - 1)})
-            r += n
-            continue
-        if kind == "duplicate":
-            lines.append(line)
-            lines.append(line)
-            ledger.append({"file": file_name, "line": len(lines), "kind": "duplicate", "of_line": len(lines) - 1,
-                           "time_utc": when(r)})
+        elif kind == "gap":
+            step = a[1]
+            ledger.append({"file": file_name, "line": len(lines) + 1, "kind": "gap", "rows_removed": a[1],
+                           "first_missing_utc": when(r), "last_missing_utc": when(r + a[1] - 1)})
+        elif kind == "duplicate":
+            lines += [line, line]
+            record("duplicate", of_line=len(lines) - 1, time_utc=when(r))
         elif kind == "out_of_order":
-            lines.append(fmt(times[r + 1], vals[r + 1]))
-            lines.append(line)
-            ledger.append({"file": file_name, "line": len(lines), "kind": "out_of_order",
-                           "swapped_with_line": len(lines) - 1, "time_utc": when(r)})
-            r += 2
-            continue
+            lines += [fmt(times[r + 1], vals[r + 1]), line]
+            record("out_of_order", swapped_with_line=len(lines) - 1, time_utc=when(r))
+            step = 2
         elif kind == "spike":
             lines.append(line)
-            ledger.append({"file": file_name, "line": len(lines), "kind": "spike", "column": columns[a[1]],
-                           "offset": a[2], "time_utc": when(r)})
+            record("spike", column=columns[a[1]], offset=a[2], time_utc=when(r))
         elif kind == "blank_line":
             lines.append("")
-            ledger.append({"file": file_name, "line": len(lines), "kind": "blank_line"})
+            record("blank_line")
             lines.append(line)
         elif kind == "malformed":
-            fields = line.split(",")
-            if a[1] == "missing_field":
-                bad = ",".join(fields[:-1])
-            elif a[1] == "extra_field":
-                bad = line + "," + fields[-1]
-            else:
-                fields[1 + a[2]] = "ERR"
-                bad = ",".join(fields)
-            lines.append(bad)
-            ledger.append({"file": file_name, "line": len(lines), "kind": "malformed", "detail": a[1],
-                           "time_utc": when(r)})
+            lines.append(_malformed(line, a[1], a[2]))
+            record("malformed", detail=a[1], time_utc=when(r))
         elif kind == "saturation":
-            n, ax, v = a[1], a[2], a[3]
-            for j in range(r, min(r + n, len(times))):
+            for j in range(r, min(r + a[1], len(times))):
                 lines.append(fmt(times[j], vals[j]))
-                ledger.append({"file": file_name, "line": len(lines), "kind": "saturation",
-                               "column": columns[ax], "value": v, "time_utc": when(j)})
-            r += n
-            continue
-        r += 1
+                record("saturation", column=columns[a[2]], value=a[3], time_utc=when(j))
+            step = a[1]
+        r += step
     return lines, ledger

@@ -17,48 +17,29 @@ Earth, Planets and Space 77, 79.
 
 from __future__ import annotations
 
-import datetime as _dt
 from dataclasses import dataclass
 
 import numpy as np
-import ppigrf
 from scipy.interpolate import CubicSpline
-from sgp4.api import Satrec
+from sgp4.api import WGS72, Satrec
+from sgp4.exporter import export_tle
 
-from ..core import NS_PER_S, InputError, itrf_to_gcrf_matrix, itrf_to_geodetic, ned_to_itrf_matrix, teme_to_itrf_matrix
+from ..core import NS_PER_S, RAD_PER_DEG, InputError, itrf_to_gcrf_matrix, teme_to_itrf_matrix
+from ..field import igrf_itrf_nT
 
-__all__ = ["Environment", "tle_checksum", "format_tle", "invented_tle", "orbit_positions_km",
+# sgp4's element epoch counts days from 1949 December 31 00:00 UT (Vallado et al. 2006, AIAA 2006-6753)
+_SGP4_EPOCH = np.datetime64("1949-12-31T00:00:00", "ns")
+
+__all__ = ["Environment", "tle_from_elements", "invented_tle", "orbit_positions_km",
            "igrf_gcrf_nT", "unmodelled_field_nT", "build_environment"]
 
 
 
-def tle_checksum(line: str) -> int:
-    """Modulo-10 checksum of the first 68 characters of a TLE line (digits count, '-' counts 1).
-
-    References
-    ----------
-    Hoots, F. R. and Roehrich, R. L. (1980). Spacetrack Report No. 3, element set format.
-    """
-    return sum(int(c) if c.isdigit() else (1 if c == "-" else 0) for c in line[:68]) % 10
-
-
-def _exp_field(x: float) -> str:
-    """TLE 'assumed decimal point' field: 0.000061 -> ' 61000-4' (8 characters)."""
-    if x == 0.0:
-        return " 00000-0"
-    sign = "-" if x < 0 else " "
-    e = int(np.floor(np.log10(abs(x)))) + 1
-    mant = int(round(abs(x) / 10.0 ** e * 1e5))
-    if mant == 100000:
-        mant, e = 10000, e + 1
-    return f"{sign}{mant:05d}{'-' if e < 0 else '+'}{abs(e):d}"
-
-
-def format_tle(catalog: int, epoch_utc: np.datetime64, inclination_deg: float, raan_deg: float,
-               eccentricity: float, arg_perigee_deg: float, mean_anomaly_deg: float,
-               mean_motion_rev_day: float, bstar: float = 6.1e-5, ndot_rev_day2: float = 1.2e-5,
-               designator: str = "26001A", element_set: int = 999, rev_number: int = 2850) -> tuple[str, str]:
-    """Two TLE lines (with valid checksums) for the given mean elements.
+def tle_from_elements(catalog: int, epoch_utc: np.datetime64, inclination_deg: float, raan_deg: float,
+                      eccentricity: float, arg_perigee_deg: float, mean_anomaly_deg: float,
+                      mean_motion_rev_day: float, bstar: float = 6.1e-5, ndot_rev_day2: float = 1.2e-5,
+                      designator: str = "26001A", element_set: int = 999, rev_number: int = 2850) -> tuple[str, str]:
+    """Two TLE lines (with valid checksums) for the given mean elements, written by sgp4's own exporter.
 
     Parameters
     ----------
@@ -66,18 +47,21 @@ def format_tle(catalog: int, epoch_utc: np.datetime64, inclination_deg: float, r
         Element epoch (UTC); written as two-digit year and fractional day of year.
     ndot_rev_day2 : float
         First derivative of mean motion divided by two, rev/day^2, as the TLE stores it.
+
+    References
+    ----------
+    Hoots, F. R. and Roehrich, R. L. (1980). Spacetrack Report No. 3, element set format.
     """
-    t = np.datetime64(epoch_utc, "ns")
-    year = int(str(t.astype("datetime64[Y]")))
-    jan1 = np.datetime64(f"{year}-01-01", "ns")
-    doy = 1.0 + (t - jan1).astype(np.int64) / (86400.0 * NS_PER_S)
-    nd = f"{ndot_rev_day2:+.8f}".replace("+0.", " .").replace("-0.", "-.")
-    l1 = (f"1 {catalog:05d}U {designator:<8s} {year % 100:02d}{doy:012.8f} {nd} {_exp_field(0.0)} "
-          f"{_exp_field(bstar)} 0 {element_set:4d}")
-    ecc = f"{eccentricity:.7f}"[2:]
-    l2 = (f"2 {catalog:05d} {inclination_deg:8.4f} {raan_deg:8.4f} {ecc} {arg_perigee_deg:8.4f} "
-          f"{mean_anomaly_deg:8.4f} {mean_motion_rev_day:11.8f}{rev_number:5d}")
-    return l1 + str(tle_checksum(l1)), l2 + str(tle_checksum(l2))
+    rad = RAD_PER_DEG
+    epoch_days = (np.datetime64(epoch_utc, "ns") - _SGP4_EPOCH).astype(np.int64) / (86400.0 * NS_PER_S)
+    minutes_per_day = 1440.0
+    sat = Satrec()
+    sat.sgp4init(WGS72, "i", int(catalog), epoch_days, bstar,
+                 ndot_rev_day2 * 2.0 * np.pi / minutes_per_day ** 2, 0.0, eccentricity,
+                 arg_perigee_deg * rad, inclination_deg * rad, mean_anomaly_deg * rad,
+                 mean_motion_rev_day * 2.0 * np.pi / minutes_per_day, raan_deg * rad)
+    sat.intldesg, sat.elnum, sat.revnum, sat.classification = designator, element_set, rev_number, "U"
+    return export_tle(sat)
 
 
 def invented_tle(epoch_utc: np.datetime64 | str = "2026-07-14T09:00:00") -> tuple[str, str]:
@@ -86,7 +70,7 @@ def invented_tle(epoch_utc: np.datetime64 | str = "2026-07-14T09:00:00") -> tupl
     A sun-synchronous near-circular orbit about 510 km high: 97.41 deg inclination (the
     sun-synchronous inclination at that height), 15.19 rev/day.
     """
-    return format_tle(99990, np.datetime64(epoch_utc, "ns"), 97.41, 83.2, 0.0012, 141.0, 219.2, 15.19)
+    return tle_from_elements(99990, np.datetime64(epoch_utc, "ns"), 97.41, 83.2, 0.0012, 141.0, 219.2, 15.19)
 
 
 def orbit_positions_km(tle: tuple[str, str], time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -126,11 +110,7 @@ def igrf_gcrf_nT(time_utc: np.ndarray, r_itrf_km: np.ndarray) -> np.ndarray:
     points, and over a pass the secular variation (tens of nT per year) changes nothing.
     """
     t = np.asarray(time_utc, dtype="datetime64[ns]")
-    lat, lon, h_km = itrf_to_geodetic(r_itrf_km)
-    date = _dt.datetime.fromisoformat(str(t[0].astype("datetime64[s]")))
-    be, bn, bu = ppigrf.igrf(np.degrees(lon), np.degrees(lat), h_km, date)
-    b_ned = np.stack([bn[0], be[0], -bu[0]], axis=-1)
-    b_itrf = np.einsum("nij,nj->ni", ned_to_itrf_matrix(lat, lon), b_ned)
+    b_itrf = igrf_itrf_nT(r_itrf_km, t[0].astype("datetime64[s]"))
     return np.einsum("nij,nj->ni", itrf_to_gcrf_matrix(t), b_itrf)
 
 

@@ -94,13 +94,13 @@ def gyro_tick_epoch(cfg, t0: np.datetime64, step_ns: int) -> tuple[np.datetime64
     return np.datetime64(np.datetime64(t0, "M"), "ns"), None
 
 
-def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, str], list[dict], dict]:
+def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, str], list[dict], dict]:
     """File texts (name -> text), the data-fault ledger and extra facts for truth.json."""
-    t0 = sim["t0_utc"]
-    rng = sim["rng_data"]
+    t0 = sim.t0_utc
+    rng = sim.rng_data
     plan = cfg.data_faults or {}
     texts, ledger, facts = {}, [], {}
-    t_mag_utc = t0 + sim["t_mag_ns"].astype("timedelta64[ns]")
+    t_mag_utc = t0 + sim.t_mag_ns.astype("timedelta64[ns]")
 
     # magnetometer
     f = NT_PER_UNIT[cfg.mag_unit]
@@ -109,7 +109,7 @@ def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict
     def fmt_mag(t, v):
         return f"{t},{v[0] + 0.0:.{dec}f},{v[1] + 0.0:.{dec}f},{v[2] + 0.0:.{dec}f}"
 
-    lines, led = inject("mag.csv", "utc,mx,my,mz", utc_texts(t_mag_utc), sim["b_meas_nT"] / f, fmt_mag,
+    lines, led = inject("mag.csv", "utc,mx,my,mz", utc_texts(t_mag_utc), sim.b_meas_nT / f, fmt_mag,
                         plan.get("mag.csv", {}), rng, columns=("mx", "my", "mz"),
                         full_scale=cfg.mag_full_scale_nT / f, spike_size=20_000.0 / f, time_utc=t_mag_utc)
     texts["mag.csv"], ledger = "\n".join(lines) + "\n", ledger + led
@@ -118,7 +118,7 @@ def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict
     if cfg.gyro:
         step = int(round(NS_PER_S / cfg.gyro_rate_hz))
         epoch, t_wrap = gyro_tick_epoch(cfg, t0, step)
-        t_g = sim["t_gyro_ns"]
+        t_g = sim.t_gyro_ns
         counts = ((t0 - epoch).astype("timedelta64[ns]").astype(np.int64) + t_g) // step % (2 ** 32)
         keep = [] if t_wrap is None else [int(np.searchsorted(t_g, t_wrap))]
         facts["gyro_tick_epoch_utc"] = np.datetime_as_string(epoch, unit="s") + "Z"
@@ -129,25 +129,25 @@ def render(sim: dict, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict
             return f"{t},{v[0] + 0.0:.6f},{v[1] + 0.0:.6f},{v[2] + 0.0:.6f}"
 
         lines, led = inject("gyro.csv", "obt,wx,wy,wz", [str(c) for c in counts.tolist()],
-                            sim["w_meas_rad_s"] / DEG, fmt_gyro, plan.get("gyro.csv", {}), rng,
+                            sim.w_meas_rad_s / DEG, fmt_gyro, plan.get("gyro.csv", {}), rng,
                             columns=("wx", "wy", "wz"), full_scale=cfg.gyro_full_scale_deg_s, spike_size=30.0,
                             time_utc=t0 + t_g.astype("timedelta64[ns]"), keep_out=keep)
         texts["gyro.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # coils
-    unix_ns = (t0 + sim["ticks_ns"].astype("timedelta64[ns]")).astype("datetime64[ns]").astype(np.int64)
+    unix_ns = (t0 + sim.ticks_ns.astype("timedelta64[ns]")).astype("datetime64[ns]").astype(np.int64)
 
     def fmt_coil(t, v):
         return f"{t},{v[0] + 0.0:.3f},{v[1] + 0.0:.3f},{v[2] + 0.0:.3f}"
 
-    lines, led = inject("coils.csv", "t,ix_mA,iy_mA,iz_mA", _seconds_text(unix_ns), sim["i_cmd_A"] * 1e3,
+    lines, led = inject("coils.csv", "t,ix_mA,iy_mA,iz_mA", _seconds_text(unix_ns), sim.i_cmd_A * 1e3,
                         fmt_coil, plan.get("coils.csv", {}), rng, columns=("ix_mA", "iy_mA", "iz_mA"),
-                        time_utc=t0 + sim["ticks_ns"].astype("timedelta64[ns]"))
+                        time_utc=t0 + sim.ticks_ns.astype("timedelta64[ns]"))
     texts["coils.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # positions
-    if sim["positions"] is not None:
-        t_pos, r_m = sim["positions"]
+    if sim.positions is not None:
+        t_pos, r_m = sim.positions
         utc = t0 + t_pos.astype("timedelta64[ns]")
         d = str(np.datetime64(t0, "D")).split("-")
         tai_utc = float(erfa.dat(int(d[0]), int(d[1]), int(d[2]), 0.0))  # leap seconds (IERS table)
@@ -170,8 +170,8 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
            "# Written by recon.simulate; the truth behind it is in truth/.", "",
            "[pass]", f'id = "{pass_id}"', "",
            "[spacecraft]", f"inertia_kg_m2 = {_mat(cfg.inertia_kg_m2)}", "", "[orbit]"]
-    if sim["positions"] is None:
-        out.append(f'tle = ["{sim["tle"][0]}",\n       "{sim["tle"][1]}"]')
+    if sim.positions is None:
+        out.append(f'tle = ["{sim.tle[0]}",\n       "{sim.tle[1]}"]')
     else:
         out.append('positions = { file = "positions.csv", time = { column = "gps_s", format = "gps" }, '
                    'columns = ["x_m", "y_m", "z_m"], frame = "itrf", unit = "m" }')
@@ -195,7 +195,7 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
             f'mag_sampling = "{cfg.mag_sampling}"']
     if cfg.mag_sampling == "windowed":
         out.append(f"off_window_s = {_vec(cfg.off_window_s)}")
-    first = sim["t0_utc"] + np.timedelta64(int(round(cfg.first_tick_offset_s * NS_PER_S)), "ns")
+    first = sim.t0_utc + np.timedelta64(int(round(cfg.first_tick_offset_s * NS_PER_S)), "ns")
     out += ["", "[controller]", f'law = "{cfg.law}"', f"gain = {_num(cfg.gain)}",
             f"period_s = {_num(cfg.period_s)}", f'first_tick = "{np.datetime_as_string(first, unit="ms")}Z"']
     if cfg.law == "cross_product":
@@ -205,10 +205,10 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
 
 def _truth_csv(sim, t_mag_utc, stride: int) -> str:
     sl = slice(None, None, stride)
-    cols = [sim["t_mag_ns"][sl] / NS_PER_S, sim["q"][sl], sim["w"][sl], sim["gyro_bias_body_rad_s"][sl],
-            sim["b_igrf_gcrf_nT"][sl], sim["b_unmodelled_gcrf_nT"][sl], sim["b_body_nT"][sl],
-            sim["i_true_A"][sl], sim["i_logged_A"][sl], sim["b_coil_sensor_nT"][sl], sim["m_body_Am2"][sl],
-            sim["tau_dist_Nm"][sl], sim["r_gcrf_km"][sl]]
+    cols = [sim.t_mag_ns[sl] / NS_PER_S, sim.q[sl], sim.w[sl], sim.gyro_bias_body_rad_s[sl],
+            sim.b_igrf_gcrf_nT[sl], sim.b_unmodelled_gcrf_nT[sl], sim.b_body_nT[sl],
+            sim.i_true_A[sl], sim.i_logged_A[sl], sim.b_coil_sensor_nT[sl], sim.m_body_Am2[sl],
+            sim.tau_dist_Nm[sl], sim.r_gcrf_km[sl]]
     arr = np.column_stack(cols) + 0.0
     times = utc_texts(t_mag_utc[sl])
     rows = [_TRUTH_FMT % (t, *row) for t, row in zip(times, arr.tolist(), strict=True)]
