@@ -1,4 +1,4 @@
-"""The outputs of one pass: report.html with its figures, CCSDS AEM."""
+"""The outputs of one pass: summary.json, report.html with its figures, the CCSDS AEM, progress on a terminal."""
 
 from . import figures
 from .aem import (
@@ -9,14 +9,24 @@ from .aem import (
     read_aem,
     write_aem,
 )
+from .figure_set import pass_figures
 from .html import (
     Figure,
     render_html,
     write_report,
 )
+from .progress import ProgressBar, say
+from .summary import CAUTION, jsonable, settings_block, write_json
 
 __all__ = [
     "figures",
+    "pass_figures",
+    "ProgressBar",
+    "say",
+    "CAUTION",
+    "jsonable",
+    "settings_block",
+    "write_json",
     "Figure",
     "render_html",
     "write_report",
