@@ -12,6 +12,8 @@ malformed lines, saturation) can be injected; every one is recorded in the truth
 """
 
 from .api import SimulatedPass, simulate_pass
+from .imperfections import IMPERFECTION_NAMES, Imperfections
 from .scenarios import Fault, SimConfig, list_scenarios
 
-__all__ = ["simulate_pass", "list_scenarios", "SimulatedPass", "SimConfig", "Fault"]
+__all__ = ["simulate_pass", "list_scenarios", "SimulatedPass", "SimConfig", "Fault", "Imperfections",
+           "IMPERFECTION_NAMES"]

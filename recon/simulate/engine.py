@@ -15,6 +15,7 @@ the same current.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,7 +24,8 @@ from scipy.spatial.transform import Rotation
 from ..core import NS_PER_S, RAD_PER_DEG, InputError, body_from_gcrf, in_off_window, q_from_rotation
 from .controller import bdot_dipole_Am2, cross_product_dipole_Am2, currents_from_dipole_A
 from .dynamics import propagate
-from .environment import Environment, build_environment, invented_tle, orbit_positions_km
+from .environment import Environment, aged_tle, build_environment, invented_tle, orbit_positions_km
+from .imperfections import DrawnImperfections, draw_imperfections, ideal_imperfections
 from .sensors import (
     GyroNoise,
     MagnetometerHardware,
@@ -32,7 +34,7 @@ from .sensors import (
     gyro_reading_rad_s,
     magnetometer_reading_nT,
 )
-from .timeline import Segments, Timeline, coil_gain, fault_window_ns, segments, step_ns, timeline
+from .timeline import Segments, Timeline, coil_gain, fault_window_ns, on_window_s, segments, step_ns, timeline
 
 __all__ = ["SimulationRun", "run_simulation"]
 
@@ -57,6 +59,11 @@ class SimulationRun:
     gyro_bias_body_rad_s : (N, 3); positions : (t_ns, r_itrf_m) of a position log, or None
     rng_data : the random stream reserved for data faults
     t_events_ns : (E,), states_events : (E, 7) the integrated state at every event
+    imperfections : DrawnImperfections of this pass
+    mission_tle : (str, str), the element set written to the mission file (older than ``tle`` when the
+        TLE-age imperfection is on)
+    coil_log_ns : (K,) instants the coil log is written, ns since the epoch
+    target_momentum_Nms : (3,) the cross-product law's target in this pass, body frame
     """
 
     t0_utc: np.datetime64
@@ -94,9 +101,13 @@ class SimulationRun:
     rng_data: np.random.Generator
     t_events_ns: np.ndarray
     states_events: np.ndarray
+    imperfections: DrawnImperfections
+    mission_tle: tuple[str, str]
+    coil_log_ns: np.ndarray
+    target_momentum_Nms: np.ndarray
 
 
-def _hardware(cfg, rng: np.random.Generator):
+def _hardware(cfg, rng: np.random.Generator, drawn: DrawnImperfections):
     M_mag = np.asarray(cfg.mag_sensor_to_body, float)
     diag = cfg.mag_crosstalk_body_diag_nT_per_A
     mag = draw_magnetometer(rng, M_mag, noise_nT=cfg.mag_noise_nT, lsb_nT=cfg.mag_lsb_nT,
@@ -104,13 +115,16 @@ def _hardware(cfg, rng: np.random.Generator):
                             bias_range_nT=tuple(cfg.mag_bias_range_nT),
                             crosstalk_range_nT_per_A=tuple(cfg.mag_crosstalk_range_nT_per_A),
                             crosstalk_body_diag_nT_per_A=None if diag is None else np.asarray(diag, float))
+    if np.any(drawn.mag_misalignment_rad):
+        mag = dataclasses.replace(mag, misalignment_body=Rotation.from_rotvec(drawn.mag_misalignment_rad).as_matrix())
     C_nom = np.asarray(cfg.coil_dipole_per_amp_nominal, float)
     tilt = Rotation.from_rotvec(rng.normal(0.0, cfg.coil_misalignment_sigma_rad, 3)).as_matrix()
     C_hw = tilt @ C_nom @ np.diag(1.0 + rng.normal(0.0, cfg.coil_gain_error_sigma, 3))
     gyro = GyroNoise(np.asarray(cfg.gyro_sensor_to_body, float), cfg.gyro_arw_deg_sqrt_s * RAD_PER_DEG,
                      cfg.gyro_bias_walk_deg_s_sqrt_s * RAD_PER_DEG,
                      rng.normal(0.0, cfg.gyro_bias0_sigma_deg_s * RAD_PER_DEG, 3),
-                     cfg.gyro_full_scale_deg_s * RAD_PER_DEG)
+                     cfg.gyro_full_scale_deg_s * RAD_PER_DEG,
+                     drawn.gyro_scale_misalignment if np.any(drawn.gyro_scale_misalignment) else None)
     return mag, C_nom, C_hw, gyro
 
 
@@ -125,15 +139,29 @@ def _disturbance(cfg, n: int, rng: np.random.Generator) -> np.ndarray:
     return tau
 
 
-def _initial_state(cfg, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """Attitude (random unless given) and body rate (``tumble_deg_s`` in a random direction unless given)."""
+def _initial_state(cfg, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Attitude (random unless given), body rate and the cross-product target momentum.
+
+    The rate is ``tumble_deg_s`` (or drawn in ``tumble_range_deg_s``) in a random direction unless
+    given; with ``target_rate_range_deg_s`` the target is a spin about the axis of largest nominal
+    inertia and the pass starts off it by a drawn fraction of its rate, in a random direction.
+    """
     rot0 = Rotation.random(random_state=rng)
     direction = rng.normal(size=3)
     q0 = (np.asarray(cfg.q0_body_from_gcrf, float) if cfg.q0_body_from_gcrf is not None
           else q_from_rotation(rot0))
+    rate = cfg.tumble_deg_s if cfg.tumble_range_deg_s is None else rng.uniform(*cfg.tumble_range_deg_s)
     w0 = (np.asarray(cfg.w0_body_deg_s, float) * RAD_PER_DEG if cfg.w0_body_deg_s is not None
-          else direction / np.linalg.norm(direction) * cfg.tumble_deg_s * RAD_PER_DEG)
-    return q0, w0
+          else direction / np.linalg.norm(direction) * rate * RAD_PER_DEG)
+    target = np.asarray(cfg.target_momentum_Nms, float)
+    if cfg.target_rate_range_deg_s is not None:
+        J = np.asarray(cfg.inertia_kg_m2, float)
+        lam, vec = np.linalg.eigh(J)
+        spin = vec[:, -1] * rng.uniform(*cfg.target_rate_range_deg_s) * rng.choice([-1.0, 1.0]) * RAD_PER_DEG
+        target = J @ spin
+        offset = rng.normal(size=3)
+        w0 = spin + offset / np.linalg.norm(offset) * rng.uniform(*cfg.target_offset_fraction) * np.linalg.norm(spin)
+    return q0, w0, target
 
 
 def _gyro_jumps(cfg, t_gyro: np.ndarray) -> list[tuple[int, int, float]]:
@@ -146,10 +174,15 @@ class _ClosedLoop:
     """The pass advanced tick by tick: integrate to the tick, sample the sensors up to it, command."""
 
     def __init__(self, cfg, tl: Timeline, seg: Segments, env: Environment, hardware, tau_dist: np.ndarray,
-                 state0: np.ndarray, draws: tuple[np.ndarray, np.ndarray, np.ndarray]):
+                 state0: np.ndarray, draws: tuple[np.ndarray, np.ndarray, np.ndarray],
+                 drawn: DrawnImperfections, target_momentum_Nms: np.ndarray):
         self.cfg, self.tl, self.seg, self.env, self.tau_dist = cfg, tl, seg, env, tau_dist
         self.mag, self.C_nom, self.C_hw, self.gyro = hardware
-        self.J = np.asarray(cfg.inertia_kg_m2, float)
+        self.J_nominal = np.asarray(cfg.inertia_kg_m2, float)  # what the onboard software believes
+        self.J = drawn.inertia_true_kg_m2                       # what flies
+        self.m_residual = drawn.residual_dipole_Am2
+        self.drawn, self.drawn_phase_s = drawn, drawn.coil_log_phase_s
+        self.target = np.asarray(target_momentum_Nms, float)
         self.imax = np.asarray(cfg.coil_max_current_A, float)
         noise_mag, walk, white = draws
         self.noise_mag, self.white = noise_mag, white
@@ -194,7 +227,7 @@ class _ClosedLoop:
         sl = slice(a, stop_ev)
         c = self.seg.cmd[sl]
         current = np.where(c[:, None] >= 0, self.cmd[np.maximum(c, 0)], 0.0) * self.seg.gain[sl]
-        self.seg_m[sl] = current @ self.C_hw.T
+        self.seg_m[sl] = current @ self.C_hw.T + self.m_residual
         q, w = propagate(self.states[a, :4], self.states[a, 4:], self.J, self.seg.ev[a:stop_ev + 1] / NS_PER_S,
                          self.seg_m[sl], self.seg_tau[sl], self.env, self.cfg.gravity_gradient, self.cfg.max_step_s)
         self.states[a + 1:stop_ev + 1, :4] = q[1:]
@@ -245,8 +278,7 @@ class _ClosedLoop:
                                 cfg.gain)
         elif cfg.law == "cross_product" and self.done_gyro > 0:
             w_onboard = self.gyro.sensor_to_body @ self.w_meas[self.done_gyro - 1]
-            m = cross_product_dipole_Am2(self.J @ w_onboard, np.asarray(cfg.target_momentum_Nms, float), b_now,
-                                         cfg.gain)
+            m = cross_product_dipole_Am2(self.J_nominal @ w_onboard, self.target, b_now, cfg.gain)
         else:
             m = np.zeros(3)
         return currents_from_dipole_A(m, self.C_nom, self.imax)
@@ -266,32 +298,42 @@ def _positions_log(cfg, tle, t0, tl: Timeline, rng: np.random.Generator):
 
 def run_simulation(cfg, seed: int) -> SimulationRun:
     """Simulate one pass (see :class:`SimulationRun`); every random draw comes from ``seed``."""
-    streams = np.random.SeedSequence(seed).spawn(8)
-    rng_hw, rng_field, rng_init, rng_dist, rng_mag, rng_gyro, rng_pos, rng_data = (
+    streams = np.random.SeedSequence(seed).spawn(9)
+    rng_hw, rng_field, rng_init, rng_dist, rng_mag, rng_gyro, rng_pos, rng_data, rng_imp = (
         np.random.default_rng(s) for s in streams)
     t0 = np.datetime64(cfg.start_utc, "ns")
-    tl = timeline(cfg)
+    drawn = (draw_imperfections(cfg.imperfections, cfg.inertia_kg_m2, on_window_s(cfg), rng_imp)
+             if cfg.imperfections is not None else ideal_imperfections(cfg.inertia_kg_m2, cfg.unmodelled_rms_nT))
+    tl = timeline(cfg, drawn.actuation_latency_s)
     tle = tuple(cfg.tle) if cfg.tle is not None else invented_tle()
-    env = build_environment(tle, t0, cfg.duration_s, rng_field, cfg.unmodelled_rms_nT)
-    hardware = _hardware(cfg, rng_hw)
-    q0, w0 = _initial_state(cfg, rng_init)
+    env = build_environment(tle, t0, cfg.duration_s, rng_field, drawn.unmodelled_rms_nT,
+                            correlated_fraction=drawn.unmodelled_correlated_fraction,
+                            correlation_s=drawn.unmodelled_correlation_s or 300.0)
+    hardware = _hardware(cfg, rng_hw, drawn)
+    q0, w0, target = _initial_state(cfg, rng_init)
     seg = segments(cfg, tl)
     tau_dist = _disturbance(cfg, len(tl.ticks), rng_dist)
     draws = (rng_mag.standard_normal((len(tl.t_mag), 3)), rng_gyro.standard_normal((len(tl.t_gyro), 3)),
              rng_gyro.standard_normal((len(tl.t_gyro), 3)))
-    loop = _ClosedLoop(cfg, tl, seg, env, hardware, tau_dist, np.concatenate([q0 / np.linalg.norm(q0), w0]), draws)
+    loop = _ClosedLoop(cfg, tl, seg, env, hardware, tau_dist, np.concatenate([q0 / np.linalg.norm(q0), w0]), draws,
+                       drawn, target)
     loop.run()
-    return _assemble(cfg, t0, tle, env, tl, loop, w0, tau_dist, _positions_log(cfg, tle, t0, tl, rng_pos), rng_data)
+    mission_tle = aged_tle(tle, drawn.tle_along_track_km, drawn.tle_drift_km_per_orbit, t0) \
+        if (drawn.tle_along_track_km or drawn.tle_drift_km_per_orbit) else tle
+    return _assemble(cfg, t0, tle, env, tl, loop, w0, tau_dist, _positions_log(cfg, tle, t0, tl, rng_pos), rng_data,
+                     mission_tle)
 
 
-def _assemble(cfg, t0, tle, env, tl: Timeline, loop: _ClosedLoop, w0, tau_dist, positions, rng_data) -> SimulationRun:
+def _assemble(cfg, t0, tle, env, tl: Timeline, loop: _ClosedLoop, w0, tau_dist, positions, rng_data,
+              mission_tle) -> SimulationRun:
     """The truth at the magnetometer instants, from the loop's state and sensor arrays."""
     t_mag, t_gyro, ticks = tl.t_mag, tl.t_gyro, tl.ticks
     gyro, mag, beta = loop.gyro, loop.mag, loop.beta
     g_eff = 0.5 * (beta[1:] + beta[:-1]) if cfg.gyro else np.zeros((0, 3))
     bias_body = (np.column_stack([np.interp(t_mag, t_gyro, g_eff[:, a]) for a in range(3)]) @ gyro.sensor_to_body.T
                  if cfg.gyro else np.zeros((len(t_mag), 3)))
-    logged_idx = np.searchsorted(ticks, t_mag, side="right") - 1
+    coil_log = ticks + int(round(loop.drawn_phase_s * NS_PER_S))
+    logged_idx = np.searchsorted(coil_log, t_mag, side="right") - 1
     i_logged = np.where(logged_idx[:, None] >= 0, loop.cmd[np.maximum(logged_idx, 0)], 0.0)
     b_igrf, b_unm = env.components(t_mag / NS_PER_S)
     tau_mag = tau_dist[np.minimum(np.maximum(np.searchsorted(ticks, t_mag, side="right") - 1, 0),
@@ -305,4 +347,5 @@ def _assemble(cfg, t0, tle, env, tl: Timeline, loop: _ClosedLoop, w0, tau_dist, 
         b_coil_sensor_nT=loop.seen_factor * (loop.i_true @ mag.K_nT_per_A.T), m_body_Am2=loop.i_true @ loop.C_hw.T,
         tau_dist_Nm=tau_mag, b_igrf_gcrf_nT=b_igrf, b_unmodelled_gcrf_nT=b_unm, r_gcrf_km=loop.r_gcrf_km,
         w_meas_rad_s=loop.w_meas, gyro_beta=beta, gyro_bias_body_rad_s=bias_body, positions=positions,
-        rng_data=rng_data, t_events_ns=loop.seg.ev, states_events=states)
+        rng_data=rng_data, t_events_ns=loop.seg.ev, states_events=states, imperfections=loop.drawn,
+        mission_tle=mission_tle, coil_log_ns=coil_log, target_momentum_Nms=loop.target)

@@ -21,17 +21,19 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.interpolate import CubicSpline
+from scipy.signal import lfilter
 from sgp4.api import WGS72, Satrec
 from sgp4.exporter import export_tle
 
-from ..core import NS_PER_S, RAD_PER_DEG, InputError, itrf_to_gcrf_matrix, teme_to_itrf_matrix
+from ..core import NS_PER_S, RAD_PER_DEG, InputError, MU_EARTH_km3_s2, itrf_to_gcrf_matrix, teme_to_itrf_matrix
 from ..field import igrf_itrf_nT
 
 # sgp4's element epoch counts days from 1949 December 31 00:00 UT (Vallado et al. 2006, AIAA 2006-6753)
 _SGP4_EPOCH = np.datetime64("1949-12-31T00:00:00", "ns")
+_SGP4_EPOCH_JD = 2433281.5
 
-__all__ = ["Environment", "tle_from_elements", "invented_tle", "orbit_positions_km",
-           "igrf_gcrf_nT", "unmodelled_field_nT", "build_environment"]
+__all__ = ["Environment", "tle_from_elements", "invented_tle", "aged_tle", "orbit_positions_km",
+           "igrf_gcrf_nT", "unmodelled_field_nT", "correlated_field_nT", "build_environment"]
 
 
 
@@ -71,6 +73,30 @@ def invented_tle(epoch_utc: np.datetime64 | str = "2026-07-14T09:00:00") -> tupl
     sun-synchronous inclination at that height), 15.19 rev/day.
     """
     return tle_from_elements(99990, np.datetime64(epoch_utc, "ns"), 97.41, 83.2, 0.0012, 141.0, 219.2, 15.19)
+
+
+def aged_tle(tle: tuple[str, str], along_track_km: float, drift_km_per_orbit: float,
+             t_ref_utc: np.datetime64) -> tuple[str, str]:
+    """An older element set of the same satellite: ``along_track_km`` ahead at ``t_ref_utc`` (behind if
+    negative), the error growing by ``drift_km_per_orbit`` each orbit.
+
+    Along track, an error in mean anomaly dM and in mean motion dn put the satellite ``a (dM + dn t)``
+    away from where it is; both are set to give the stated figures (a from the mean motion, Kepler's
+    third law). The other elements are kept, and the lines are written by sgp4's exporter.
+    """
+    sat = Satrec.twoline2rv(*tle)
+    n_rad_s = sat.no_kozai / 60.0
+    a_km = (MU_EARTH_km3_s2 / n_rad_s ** 2) ** (1.0 / 3.0)
+    dn = drift_km_per_orbit / (a_km * 2.0 * np.pi / n_rad_s)
+    epoch_days = sat.jdsatepoch + sat.jdsatepochF - _SGP4_EPOCH_JD
+    t_from_epoch_s = float((np.datetime64(t_ref_utc, "ns") - _SGP4_EPOCH).astype(np.int64) / NS_PER_S
+                           - epoch_days * 86400.0)
+    dm = along_track_km / a_km - dn * t_from_epoch_s
+    old = Satrec()
+    old.sgp4init(WGS72, "i", sat.satnum, epoch_days, sat.bstar, sat.ndot, sat.nddot, sat.ecco, sat.argpo,
+                 sat.inclo, float(np.mod(sat.mo + dm, 2.0 * np.pi)), (n_rad_s + dn) * 60.0, sat.nodeo)
+    old.intldesg, old.elnum, old.revnum, old.classification = sat.intldesg, sat.elnum, sat.revnum, "U"
+    return export_tle(old)
 
 
 def orbit_positions_km(tle: tuple[str, str], time_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -144,6 +170,27 @@ def unmodelled_field_nT(t_s: np.ndarray, r_gcrf_km: np.ndarray, rng: np.random.G
     return b, terms
 
 
+def correlated_field_nT(n: int, step_s: float, rng: np.random.Generator, rms_nT: float,
+                        correlation_s: float) -> np.ndarray:
+    """A smooth random field correlated over ``correlation_s``: white noise through two first-order
+    Gauss-Markov stages in turn (a smooth, differentiable path), per GCRF axis, scaled so that the rms of
+    ``|b|`` over the samples is ``rms_nT``.
+
+    Returns
+    -------
+    (n, 3) array, nT, GCRF, on a grid of step ``step_s``
+    """
+    if rms_nT == 0.0 or n == 0:
+        return np.zeros((n, 3))
+    a = float(np.exp(-step_s / correlation_s))
+    burn = int(np.ceil(5.0 * correlation_s / step_s))
+    z = rng.standard_normal((burn + n, 3))
+    c = np.sqrt(1.0 - a * a)
+    x1 = lfilter([c], [1.0, -a], z, axis=0)   # x1_k = a x1_k-1 + c z_k, from rest (burnt in)
+    b = lfilter([c], [1.0, -a], x1, axis=0)[burn:]
+    return b * (rms_nT / np.sqrt(np.mean(np.sum(b ** 2, axis=1))))
+
+
 @dataclass(frozen=True)
 class Environment:
     """Orbit and field on a uniform grid of ``t_s`` (seconds since the pass epoch ``t0_utc``).
@@ -190,7 +237,8 @@ class Environment:
 
 def build_environment(tle: tuple[str, str], t0_utc: np.datetime64, duration_s: float,
                       rng: np.random.Generator, unmodelled_rms_nT: float = 100.0,
-                      step_s: float = 1.0, margin_s: float = 5.0) -> Environment:
+                      step_s: float = 1.0, margin_s: float = 5.0, correlated_fraction: float = 0.0,
+                      correlation_s: float = 300.0) -> Environment:
     """Orbit and field over ``[-margin_s, duration_s + margin_s]`` around ``t0_utc`` every ``step_s``.
 
     Parameters
@@ -199,7 +247,10 @@ def build_environment(tle: tuple[str, str], t0_utc: np.datetime64, duration_s: f
     t0_utc : datetime64, UTC, the pass epoch (t_s = 0)
     duration_s : float
     rng : numpy Generator, draws the unmodelled field
-    unmodelled_rms_nT : float
+    unmodelled_rms_nT : float, rms of the whole unmodelled field, nT
+    correlated_fraction : float
+        Share of its variance in a Gauss-Markov part correlated over ``correlation_s``
+        (:func:`correlated_field_nT`); the rest is the large-scale part (:func:`unmodelled_field_nT`).
     step_s : float
         Grid step. At 1 s the cubic spline follows a field that turns at twice the orbital rate to
         far better than 1 nT.
@@ -210,7 +261,10 @@ def build_environment(tle: tuple[str, str], t0_utc: np.datetime64, duration_s: f
     time_utc = t0 + np.round(t_s * NS_PER_S).astype("timedelta64[ns]")
     r_gcrf, r_itrf = orbit_positions_km(tle, time_utc)
     b_igrf = igrf_gcrf_nT(time_utc, r_itrf)
-    b_unm, terms = unmodelled_field_nT(t_s, r_gcrf, rng, unmodelled_rms_nT)
+    b_unm, terms = unmodelled_field_nT(t_s, r_gcrf, rng, unmodelled_rms_nT * np.sqrt(1.0 - correlated_fraction))
+    if correlated_fraction > 0.0:
+        b_unm = b_unm + correlated_field_nT(n, step_s, rng, unmodelled_rms_nT * np.sqrt(correlated_fraction),
+                                            correlation_s)
     y = np.hstack([(b_igrf + b_unm) * 1e-9, r_gcrf * 1e3])
     dy = CubicSpline(t_s, y).derivative()(t_s)
     return Environment(t0, t_s, r_gcrf, r_itrf, b_igrf, b_unm, np.ascontiguousarray(y),

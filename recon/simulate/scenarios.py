@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ..core import InputError
+from .imperfections import Imperfections
 
 __all__ = ["Fault", "SimConfig", "FAULT_KINDS", "DATA_FAULT_KINDS", "ALL_DATA_FAULTS", "list_scenarios",
            "scenario_config"]
@@ -75,6 +76,12 @@ class SimConfig:
     positions_noise_m: float = 5.0
     inertia_kg_m2: tuple = ((0.021, 0.0004, 0.0), (0.0004, 0.023, 0.0002), (0.0, 0.0002, 0.0071))
     tumble_deg_s: float = 4.0  # initial rate magnitude, random direction
+    tumble_range_deg_s: tuple | None = None  # or drawn per pass, uniform in this range
+    # cross-product regimes: the target is a spin about the axis of largest inertia at a rate drawn in
+    # this range (random sign), and the pass starts off it by a fraction of that rate drawn in
+    # target_offset_fraction (random direction); None keeps target_momentum_Nms and the tumble above
+    target_rate_range_deg_s: tuple | None = None
+    target_offset_fraction: tuple = (0.5, 1.0)
     w0_body_deg_s: tuple | None = None  # explicit initial rate instead
     q0_body_from_gcrf: tuple | None = None  # explicit initial attitude instead of a random one
     # magnetometer
@@ -114,6 +121,8 @@ class SimConfig:
     disturbance_sigma_Nm: float = 1e-8
     disturbance_correlation_s: float = 300.0
     unmodelled_rms_nT: float = 100.0
+    # flight-like imperfections (None: the ideal hardware of the bench scenarios)
+    imperfections: Imperfections | None = None
     # faults
     faults: tuple = ()
     data_faults: dict = field(default_factory=dict)  # file -> {kind: count}; True: ALL_DATA_FAULTS
@@ -156,6 +165,21 @@ _SCENARIOS: dict[str, tuple[str, Any]] = {
               lambda d: {"law": "none", "gain": 0.0, "tumble_deg_s": 2.0}),
     "short": ("a five-minute B-dot pass; the orbit comes as a GNSS position log with GPS time",
               lambda d: {"duration_s": 300.0, "orbit_source": "positions"}),
+    # flight-like regimes: every imperfection of recon.simulate.imperfections drawn per pass
+    "detumble": ("flight-like: B-dot detumble from 2-8 deg/s with every imperfection drawn (inertia, "
+                 "residual dipole, magnetometer alignment and time tags, gyro scale, field, TLE age, coil log)",
+                 lambda d: {"imperfections": Imperfections(), "tumble_range_deg_s": (2.0, 8.0)}),
+    "momentum_orbit": ("flight-like: cross-product momentum management at 0.02-0.2 deg/s held for a whole orbit",
+                       lambda d: {"imperfections": Imperfections(), "law": "cross_product", "gain": 0.005,
+                                  "duration_s": 5700.0, "target_rate_range_deg_s": (0.02, 0.2)}),
+    "pointing": ("flight-like: a slow spin held on its target by the cross-product law; the coils carry only "
+                 "a few mA (too little to identify them)",
+                 lambda d: {"imperfections": Imperfections(), "law": "cross_product", "gain": 0.005,
+                            "target_rate_range_deg_s": (0.01, 0.03), "target_offset_fraction": (0.0, 0.05)}),
+    "fast_tumble": ("flight-like: B-dot from a 10-15 deg/s tumble that exceeds the gyro's 8 deg/s range, so "
+                    "its samples clip",
+                    lambda d: {"imperfections": Imperfections(), "tumble_range_deg_s": (10.0, 15.0),
+                               "gyro_full_scale_deg_s": 8.0}),
 }
 
 
@@ -165,6 +189,8 @@ def list_scenarios() -> dict[str, str]:
 
 
 def _coerce(name: str, value: Any, default: Any) -> Any:
+    if name == "imperfections":
+        return value if value is None or isinstance(value, Imperfections) else Imperfections(**value)
     if name == "data_faults" and isinstance(value, bool):
         return ALL_DATA_FAULTS if value else {}
     if name == "faults":

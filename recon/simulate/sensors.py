@@ -2,19 +2,22 @@
 
 Magnetometer, in the sensor frame (M is ``sensor_to_body``, v_body = M v_sensor)::
 
-    b_meas = clip(quantise(S (M^T b_body) + bias + K i + noise), +-full_scale)
+    b_meas = clip(quantise(S (M^T R^T b_body) + bias + K i + noise), +-full_scale)
 
 S (soft iron and scale factor, symmetric, near identity), bias (nT) and K (nT per A of coil current)
-all act in the magnetometer's own frame; i is the current actually flowing in the coils.
+all act in the magnetometer's own frame; i is the current actually flowing in the coils. R is the
+misalignment of the true sensor axes from the nominal mounting, a small rotation in body axes (the
+identity on ideal hardware); the full matrix ``S M^T R^T M`` is then not symmetric.
 
 Gyro, in the sensor frame, at a fixed step dt (Reynolds 2003, the discrete form of the model
 ``w_meas = w + beta + eta_v, d(beta)/dt = eta_u`` used by the MEKF)::
 
     beta_{k+1} = beta_k + su sqrt(dt) N(0, 1)
-    w_meas_k  = M^T w_k + (beta_{k+1} + beta_k) / 2 + sqrt(sv^2 / dt + su^2 dt / 12) N(0, 1)
+    w_meas_k  = (I + E) M^T w_k + (beta_{k+1} + beta_k) / 2 + sqrt(sv^2 / dt + su^2 dt / 12) N(0, 1)
 
-with sv the angle random walk (rad/sqrt(s)) and su the rate random walk (rad/s/sqrt(s)), clipped at
-the full scale.
+with sv the angle random walk (rad/sqrt(s)) and su the rate random walk (rad/s/sqrt(s)), E the
+scale-factor errors (diagonal) and axis misalignments (off-diagonal), zero on ideal hardware, and
+the output clipped at the full scale.
 
 References
 ----------
@@ -55,6 +58,7 @@ class MagnetometerHardware:
     noise_nT : float, 1 sigma per axis
     lsb_nT : float, quantisation step
     full_scale_nT : float, readings clip at +-full_scale_nT
+    misalignment_body : (3, 3) R, rotation from the nominal sensor axes to the true ones, body axes
     """
 
     sensor_to_body: np.ndarray
@@ -64,6 +68,15 @@ class MagnetometerHardware:
     noise_nT: float
     lsb_nT: float
     full_scale_nT: float
+    misalignment_body: np.ndarray | None = None
+
+    @property
+    def S_full(self) -> np.ndarray:
+        """The full scale-and-alignment matrix in the sensor frame, ``S M^T R^T M`` (not symmetric)."""
+        if self.misalignment_body is None:
+            return self.S
+        m = self.sensor_to_body
+        return self.S @ m.T @ self.misalignment_body.T @ m
 
 
 def draw_magnetometer(rng: np.random.Generator, sensor_to_body: np.ndarray, *, noise_nT: float,
@@ -105,7 +118,10 @@ def magnetometer_reading_nT(hw: MagnetometerHardware, b_body_nT: np.ndarray, i_c
     -------
     (N, 3) array, nT, sensor frame: quantised to ``lsb_nT`` and clipped at ``full_scale_nT``
     """
-    b_sensor = np.asarray(b_body_nT) @ hw.sensor_to_body  # rows of M^T b
+    b_body = np.asarray(b_body_nT)
+    if hw.misalignment_body is not None:
+        b_body = b_body @ hw.misalignment_body  # rows of R^T b
+    b_sensor = b_body @ hw.sensor_to_body  # rows of M^T b
     raw = b_sensor @ hw.S.T + hw.bias_nT + np.asarray(i_coil_A) @ hw.K_nT_per_A.T + hw.noise_nT * noise_unit
     if hw.lsb_nT > 0:
         raw = np.round(raw / hw.lsb_nT) * hw.lsb_nT
@@ -123,6 +139,7 @@ class GyroNoise:
     rrw_rad_s_sqrt_s : float, su, rate random walk of the bias, rad/s/sqrt(s)
     bias0_rad_s : (3,) initial bias, rad/s
     full_scale_rad_s : float
+    scale_misalignment : (3, 3) E, scale-factor errors and axis misalignments, sensor frame, or None
     """
 
     sensor_to_body: np.ndarray
@@ -130,6 +147,7 @@ class GyroNoise:
     rrw_rad_s_sqrt_s: float
     bias0_rad_s: np.ndarray
     full_scale_rad_s: float
+    scale_misalignment: np.ndarray | None = None
 
 
 def gyro_bias_path(g: GyroNoise, n: int, dt_s: float, walk_unit: np.ndarray,
@@ -158,5 +176,7 @@ def gyro_reading_rad_s(g: GyroNoise, w_body_rad_s: np.ndarray, beta: np.ndarray,
     """
     sigma = np.sqrt(g.arw_rad_sqrt_s ** 2 / dt_s + g.rrw_rad_s_sqrt_s ** 2 * dt_s / 12.0)
     w_sensor = np.asarray(w_body_rad_s) @ g.sensor_to_body
+    if g.scale_misalignment is not None:
+        w_sensor = w_sensor @ (np.eye(3) + g.scale_misalignment).T
     out = w_sensor + 0.5 * (beta[1:] + beta[:-1]) + sigma * white_unit
     return np.clip(out, -g.full_scale_rad_s, g.full_scale_rad_s)

@@ -16,7 +16,8 @@ import numpy as np
 
 from ..core import NS_PER_S, InputError, in_off_window
 
-__all__ = ["COIL_FAULTS", "Timeline", "Segments", "timeline", "segments", "step_ns", "fault_window_ns", "coil_gain"]
+__all__ = ["COIL_FAULTS", "Timeline", "Segments", "timeline", "segments", "on_window_s", "step_ns", "fault_window_ns",
+           "coil_gain"]
 
 COIL_FAULTS = ("coil_polarity_inverted", "coil_dead", "coil_gain_off")
 
@@ -97,8 +98,9 @@ def coil_gain(t_ns: np.ndarray, faults, duration_ns: int) -> np.ndarray:
     return g
 
 
-def timeline(cfg) -> Timeline:
-    """The sample grids and ticks of a :class:`SimConfig`.
+def timeline(cfg, healthy_latency_s: float = 0.0) -> Timeline:
+    """The sample grids and ticks of a :class:`SimConfig`; commands take effect ``healthy_latency_s``
+    after their tick, plus any injected command latency.
 
     Raises
     ------
@@ -121,11 +123,19 @@ def timeline(cfg) -> Timeline:
     t_gyro = np.arange(0, dur_ns, gyro_step, dtype=np.int64) if cfg.gyro else np.zeros(0, np.int64)
     ticks = np.arange(first, dur_ns, period, dtype=np.int64)
     end = int(max(t_mag[-1], t_gyro[-1] if len(t_gyro) else 0))
-    latency = sum(int(round(f.value * NS_PER_S)) for f in cfg.faults if f.kind == "command_latency")
+    latency = int(round(healthy_latency_s * NS_PER_S)) + sum(
+        int(round(f.value * NS_PER_S)) for f in cfg.faults if f.kind == "command_latency")
     windowed = cfg.mag_sampling == "windowed"
     before, after = ((int(round(cfg.off_window_s[0] * NS_PER_S)), int(round(cfg.off_window_s[1] * NS_PER_S)))
                      if windowed else (0, 0))
     return Timeline(dur_ns, t_mag, t_gyro, ticks, end, mag_step, gyro_step, period, latency, windowed, before, after)
+
+
+def on_window_s(cfg) -> tuple[float, float]:
+    """Start and end of the coils' on-window after each tick, s (the whole period without windows)."""
+    if cfg.mag_sampling == "windowed":
+        return float(cfg.off_window_s[1]), float(cfg.period_s - cfg.off_window_s[0])
+    return 0.0, float(cfg.period_s)
 
 
 def segments(cfg, tl: Timeline) -> Segments:

@@ -101,6 +101,8 @@ def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, 
     plan = cfg.data_faults or {}
     texts, ledger, facts = {}, [], {}
     t_mag_utc = t0 + sim.t_mag_ns.astype("timedelta64[ns]")
+    # the magnetometer's stamps are late (or early) by its time-tag offset; the truth keeps true instants
+    offset = np.timedelta64(int(round(sim.imperfections.mag_time_offset_s * NS_PER_S)), "ns")
 
     # magnetometer
     f = NT_PER_UNIT[cfg.mag_unit]
@@ -109,9 +111,9 @@ def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, 
     def fmt_mag(t, v):
         return f"{t},{v[0] + 0.0:.{dec}f},{v[1] + 0.0:.{dec}f},{v[2] + 0.0:.{dec}f}"
 
-    lines, led = inject("mag.csv", "utc,mx,my,mz", utc_texts(t_mag_utc), sim.b_meas_nT / f, fmt_mag,
+    lines, led = inject("mag.csv", "utc,mx,my,mz", utc_texts(t_mag_utc + offset), sim.b_meas_nT / f, fmt_mag,
                         plan.get("mag.csv", {}), rng, columns=("mx", "my", "mz"),
-                        full_scale=cfg.mag_full_scale_nT / f, spike_size=20_000.0 / f, time_utc=t_mag_utc)
+                        full_scale=cfg.mag_full_scale_nT / f, spike_size=20_000.0 / f, time_utc=t_mag_utc + offset)
     texts["mag.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # gyro
@@ -135,14 +137,14 @@ def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, 
         texts["gyro.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # coils
-    unix_ns = (t0 + sim.ticks_ns.astype("timedelta64[ns]")).astype("datetime64[ns]").astype(np.int64)
+    unix_ns = (t0 + sim.coil_log_ns.astype("timedelta64[ns]")).astype("datetime64[ns]").astype(np.int64)
 
     def fmt_coil(t, v):
         return f"{t},{v[0] + 0.0:.3f},{v[1] + 0.0:.3f},{v[2] + 0.0:.3f}"
 
     lines, led = inject("coils.csv", "t,ix_mA,iy_mA,iz_mA", _seconds_text(unix_ns), sim.i_cmd_A * 1e3,
                         fmt_coil, plan.get("coils.csv", {}), rng, columns=("ix_mA", "iy_mA", "iz_mA"),
-                        time_utc=t0 + sim.ticks_ns.astype("timedelta64[ns]"))
+                        time_utc=t0 + sim.coil_log_ns.astype("timedelta64[ns]"))
     texts["coils.csv"], ledger = "\n".join(lines) + "\n", ledger + led
 
     # positions
@@ -171,7 +173,7 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
            "[pass]", f'id = "{pass_id}"', "",
            "[spacecraft]", f"inertia_kg_m2 = {_mat(cfg.inertia_kg_m2)}", "", "[orbit]"]
     if sim.positions is None:
-        out.append(f'tle = ["{sim.tle[0]}",\n       "{sim.tle[1]}"]')
+        out.append(f'tle = ["{sim.mission_tle[0]}",\n       "{sim.mission_tle[1]}"]')
     else:
         out.append('positions = { file = "positions.csv", time = { column = "gps_s", format = "gps" }, '
                    'columns = ["x_m", "y_m", "z_m"], frame = "itrf", unit = "m" }')
@@ -199,7 +201,7 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
     out += ["", "[controller]", f'law = "{cfg.law}"', f"gain = {_num(cfg.gain)}",
             f"period_s = {_num(cfg.period_s)}", f'first_tick = "{np.datetime_as_string(first, unit="ms")}Z"']
     if cfg.law == "cross_product":
-        out.append(f"target_momentum_Nms = {_vec(cfg.target_momentum_Nms)}")
+        out.append(f"target_momentum_Nms = {_vec(sim.target_momentum_Nms)}")
     return "\n".join(out) + "\n"
 
 
