@@ -28,7 +28,15 @@ PASSES = [
     ("nominal", "nominal", 0, 1500.0),
     ("coil_inverted", "coil_inverted", 0, 1500.0),
     ("data_faults", "data_faults", 0, 600.0),
+    ("momentum_orbit", "momentum_orbit", 0, 5700.0),
+    ("fast_tumble", "fast_tumble", 0, 1500.0),
 ]
+# Per-pass settings on top of COMMON. The whole-orbit momentum pass samples more slowly (magnetometer
+# at 2 Hz, gyro at 5 Hz, truth every 5 s) to stay under 3 MB, and holds a spin of 0.05 deg/s.
+EXTRA = {
+    "momentum_orbit": {"mag_rate_hz": 2.0, "gyro_rate_hz": 5.0, "truth_stride": 10, "first_tick_offset_s": 0.5,
+                       "target_rate_range_deg_s": (0.05, 0.05)},
+}
 
 
 def _readme() -> str:
@@ -59,12 +67,17 @@ def _readme() -> str:
         "coil_inverted": "the y coil is wired backwards: the detumble stalls",
         "data_faults": "every kind of data fault (gaps, duplicates, out-of-order rows, spikes, blank "
                        "and malformed lines, saturation), listed in truth.json",
+        "momentum_orbit": "flight-like (every imperfection drawn, see truth.json \"imperfections\"): "
+                          "cross-product momentum management holding a 0.05 deg/s spin for a whole orbit",
+        "fast_tumble": "flight-like: B-dot from a 10-15 deg/s tumble; the gyro's 8 deg/s range clips",
     }
     for folder, scenario, seed, duration in PASSES:
         lines.append(f"| `{folder}/` | {scenario} | {seed} | {duration:.0f} s | {what[scenario]} |")
     settings = ", ".join(f"{k}={v!r}" for k, v in COMMON.items())
     lines += ["", "Each pass is the Python call", "",
               f"    simulate_pass(scenario, seed=seed, out_dir=folder, duration_s=duration, {settings})", ""]
+    for folder, extra in EXTRA.items():
+        lines += [f"with, for `{folder}/`, " + ", ".join(f"{k}={v!r}" for k, v in extra.items()) + " instead.", ""]
     return "\n".join(lines)
 
 
@@ -74,7 +87,7 @@ def make(out: Path) -> None:
         target = out / folder
         if target.exists():
             shutil.rmtree(target)
-        simulate_pass(scenario, seed=seed, out_dir=target, duration_s=duration, **COMMON)
+        simulate_pass(scenario, seed=seed, out_dir=target, duration_s=duration, **{**COMMON, **EXTRA.get(folder, {})})
     (out / "README.md").write_bytes(_readme().encode("utf-8"))
 
 
