@@ -121,6 +121,7 @@ def test_gyro_scale_and_misalignment_are_applied():
     assert np.abs(np.diag(E)).max() <= 0.03 and np.abs(np.diag(E)).max() > 0.0
     off = E - np.diag(np.diag(E))
     assert np.abs(off).max() <= 0.01 and np.abs(off).max() > 0.0
+    np.testing.assert_array_equal(E, E.T)  # no rotation part: the gyro's axes are the body's
     M = np.asarray(sim.truth["gyro"]["sensor_to_body"])
     bias0 = np.asarray(sim.truth["gyro"]["initial_bias_sensor_rad_s"])
     model = sim.w_gyro_true_body_rad_s @ M @ (np.eye(3) + E).T + bias0

@@ -11,8 +11,9 @@ magnetically controlled small satellite (no source) unless a line says otherwise
   (so the full scale-and-soft-iron matrix is no longer symmetric);
 - magnetometer time tags: every stamp late or early by a constant up to 0.3 s (an onboard stamping
   latency); the coil and gyro logs keep their own stamps;
-- gyro: scale-factor errors up to 3 % and axis misalignments up to 1 % (a full matrix), a full-scale
-  range (set by the regime; a fast tumble exceeds it, so samples clip);
+- gyro: scale-factor errors up to 3 % and axis non-orthogonality up to 1 % (a symmetric matrix: the
+  gyro's mean axes define the body frame, so the magnetometer's misalignment is relative to them), and
+  a full-scale range (set by the regime; a fast tumble exceeds it, so samples clip);
 - the field the reference model leaves out: "quiet" about 100 nT rms or "disturbed" (storm) about
   500 nT rms, part of it correlated along the orbit over minutes (a Gauss-Markov process) besides the
   large-scale part;
@@ -55,7 +56,7 @@ class Imperfections:
     mag_misalignment_deg : (lo, hi), angle of the sensor-axes rotation (random axis), deg
     mag_time_offset_s : (lo, hi), stamp minus true sample instant, s (uniform)
     gyro_scale_error : float, largest scale-factor error per axis (uniform, +-)
-    gyro_misalignment : float, largest off-diagonal coupling (uniform, +-)
+    gyro_misalignment : float, largest off-diagonal coupling (uniform, +-, symmetric)
     disturbed_probability : float, chance that the field is "disturbed" rather than "quiet"
     unmodelled_quiet_nT, unmodelled_disturbed_nT : (lo, hi) rms of the unmodelled field, nT
     unmodelled_correlation_s : (lo, hi), correlation time of its Gauss-Markov part, s
@@ -201,8 +202,8 @@ def draw_imperfections(imp: Imperfections, nominal_inertia_kg_m2, on_window_s: t
     theta = axis / np.linalg.norm(axis) * rng.uniform(*imp.mag_misalignment_deg) * RAD_PER_DEG
     offset = float(np.round(rng.uniform(*imp.mag_time_offset_s), 3))  # the log's stamps are whole ms
     scale = rng.uniform(-imp.gyro_scale_error, imp.gyro_scale_error, 3)
-    mis = rng.uniform(-imp.gyro_misalignment, imp.gyro_misalignment, (3, 3))
-    e = np.diag(scale) + mis - np.diag(np.diag(mis))
+    mis = np.triu(rng.uniform(-imp.gyro_misalignment, imp.gyro_misalignment, (3, 3)), 1)
+    e = np.diag(scale) + mis + mis.T  # symmetric: the gyro's axes define the body frame (no rotation part)
     disturbed = bool(rng.random() < imp.disturbed_probability)
     rms = float(rng.uniform(*(imp.unmodelled_disturbed_nT if disturbed else imp.unmodelled_quiet_nT)))
     corr = float(rng.uniform(*imp.unmodelled_correlation_s))
