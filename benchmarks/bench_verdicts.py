@@ -317,7 +317,8 @@ def main(argv=None) -> int:
     ap.add_argument("--n", type=int, default=4, help="passes per family (default 4)")
     ap.add_argument("--families", default=",".join(FAMILIES), help="comma-separated family names")
     ap.add_argument("--seed-base", type=int, default=int(time.time()) % 100_000,
-                    help="first seed (default: fresh, from the clock); pass i of a family uses seed-base + i")
+                    help="first seed (default: fresh, from the clock); pass i of family f (its place in the list "
+                         "of families) uses seed-base + 1000 f + i")
     ap.add_argument("--duration", type=float, default=None, help="pass length, s (regime default otherwise)")
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--out", type=Path, default=Path("reports/scorecard.json"))
@@ -328,7 +329,9 @@ def main(argv=None) -> int:
     if unknown:
         print(f"bench_verdicts: unknown families {unknown}; known: {', '.join(FAMILIES)}", file=sys.stderr)
         return 2
-    jobs = [(FAMILIES[n], a.seed_base + i, a.duration) for n in names for i in range(a.n)]
+    # every family draws its own seeds (seed base + 1000 x its place in FAMILIES + i), so families differ
+    order = list(FAMILIES)
+    jobs = [(FAMILIES[n], a.seed_base + 1000 * order.index(n) + i, a.duration) for n in names for i in range(a.n)]
     t0 = time.perf_counter()
     print(f"scorecard: {len(jobs)} passes ({a.n} per family, seeds from {a.seed_base}), {a.workers} workers")
     records = []
