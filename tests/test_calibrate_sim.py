@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from recon.calibrate import calibrate_pass, format_crosstalk_table
-from recon.calibrate.magfit import params_from_matrices, residual_nT
+from recon.calibrate.model import params_from_matrices, residual_nT
 from recon.clean import clean_pass
 from recon.config import load_mission
 from recon.field import reference_field

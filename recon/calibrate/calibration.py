@@ -11,10 +11,10 @@ nT; ``K`` in nT per A, one column per coil; ``i`` the effective current each sam
 Two independent estimates of ``K``:
 
 1. attitude-independent: ``|S^-1 (b_meas - bias - K i)| = |b_ref|`` with the reference field's
-   magnitude, a centred linear first guess extended from TWOSTEP (:mod:`recon._twostep`) refined by
-   robust nonlinear least squares (:mod:`recon._magfit`);
+   magnitude, a centred linear first guess extended from TWOSTEP (:mod:`recon.calibrate.linear`) refined by
+   robust nonlinear least squares (:mod:`recon.calibrate.magfit`);
 2. from the steps of the reading when a coil current switches, with the gyro removing the turn of
-   the field between the two samples; no reference field (:mod:`recon._steps`).
+   the field between the two samples; no reference field (:mod:`recon.calibrate.steps`).
 
 Their difference is tested against the combined covariance (chi-square). A parameter the data cannot
 determine is reported as undetermined, with the reason, instead of a number.
@@ -34,7 +34,8 @@ import numpy as np
 
 from ..core import NS_PER_S, NT_PER_UNIT, Anomaly, controller_samples, effective_current
 from .agreement import combine_crosstalk, compare_crosstalk
-from .magfit import AXES, PARAM_NAMES, MagFit, fit_magnetometer, matrices_from_params, nominal_params
+from .magfit import MagFit, fit_magnetometer
+from .model import AXES, PARAM_NAMES, matrices_from_params, nominal_params
 from .steps import StepFit, fit_crosstalk_steps
 from .summary import summary_block
 

@@ -1,6 +1,6 @@
 """Nonlinear, robust, attitude-independent magnetometer calibration with uncertainties.
 
-Refines the linear first guess (:mod:`recon._twostep`) on the exact residual
+Refines the linear first guess (:mod:`recon.calibrate.linear`) on the exact residual
 
     r_k = |S^-1 (m_k - b0 - K i_k)| - h_k            (nT)
 
@@ -9,9 +9,7 @@ TWOSTEP does on the same model (Alonso & Shuster 2002). Parameters are in sensor
 (3, nT), the six elements of the symmetric soft-iron matrix ``S`` (xx, yy, zz, xy, xz, yz) and the
 crosstalk ``K`` (3x3, nT per A, row = sensor axis, column = coil), 18 in all.
 
-Jacobian (analytic): with ``P = S^-1``, ``u = P (m - b0 - K i)`` and ``w = P u / |u|``,
-``dr/db0 = -w``, ``dr/dK_jl = -w_j i_l``, ``dr/dS_aa = -w_a u_a`` and
-``dr/dS_ab = -(w_a u_b + w_b u_a)`` for a != b (from ``dP = -P dS P``).
+The residual, the parameter layout and the analytic Jacobian are in :mod:`recon.calibrate.model`.
 
 Uncertainty: the statistical part is ``s^2 (J^T J)^-1`` on the inlying samples, ``s^2`` their
 residual variance (Seber & Wild 1989, Nonlinear Regression, sec. 2.1). It assumes independent
@@ -58,18 +56,19 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from ..core import robust_scale
-from .linear import SYM_INDEX, linear_calibration, six_from_sym, sym_from_six
-
-__all__ = ["MagFit", "fit_magnetometer", "PARAM_NAMES", "AXES", "residual_nT", "nominal_params",
-           "params_from_matrices", "matrices_from_params"]
-
-AXES = ("x", "y", "z")
-PARAM_NAMES = (
-    [f"bias_{a}" for a in AXES]
-    + [f"soft_iron_{AXES[a]}{AXES[b]}" for a, b in SYM_INDEX]
-    + [f"crosstalk_{AXES[j]}_coil_{AXES[c]}" for j in range(3) for c in range(3)]
+from .linear import linear_calibration
+from .model import (
+    AXES,
+    N_PARAMS,
+    PARAM_NAMES,
+    jacobian,
+    matrices_from_params,
+    nominal_params,
+    params_from_matrices,
+    residual_nT,
 )
-N_PARAMS = len(PARAM_NAMES)  # 18
+
+__all__ = ["MagFit", "fit_magnetometer"]
 
 # A coil whose effective current spans less than this fraction of its maximum current is taken as
 # never switching: its crosstalk column is undetermined (common practice, no source).
@@ -92,59 +91,6 @@ MAX_SIGMA_FRACTION = 0.1
 # small satellite (a few per cent is usual); the nonlinear fit then also starts from S = I
 # (common practice, no source).
 MAX_SOFT_IRON_DEVIATION = 0.2
-
-
-def nominal_params() -> np.ndarray:
-    """The parameter vector of a perfect sensor: zero bias, S = I, K = 0."""
-    p = np.zeros(N_PARAMS)
-    p[3:6] = 1.0
-    return p
-
-
-def params_from_matrices(bias_nT, soft_iron, crosstalk_nT_per_A) -> np.ndarray:
-    return np.concatenate([np.asarray(bias_nT, float), six_from_sym(np.asarray(soft_iron, float)),
-                           np.asarray(crosstalk_nT_per_A, float).ravel()])
-
-
-def matrices_from_params(p: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(bias_nT (3,), soft_iron (3, 3), crosstalk_nT_per_A (3, 3)) from the 18-vector."""
-    return p[0:3].copy(), sym_from_six(p[3:9]), p[9:18].reshape(3, 3).copy()
-
-
-# Soft-iron matrices with an eigenvalue below this are not a sensor (the solver may step there while
-# exploring a flat direction); they get the pseudo-inverse and a residual the solver will reject.
-_MIN_EIGENVALUE = 1e-3
-
-
-def _u_and_w(p, m, i):
-    bias, s, k = matrices_from_params(p)
-    if np.linalg.eigvalsh(s)[0] < _MIN_EIGENVALUE:
-        pinv = np.linalg.pinv(s) if np.all(np.isfinite(s)) else np.zeros((3, 3))
-    else:
-        pinv = np.linalg.inv(s)
-    y = m - bias - i @ k.T
-    u = y @ pinv.T
-    nu = np.linalg.norm(u, axis=1)
-    w = (u @ pinv.T) / np.where(nu > 0, nu, 1.0)[:, None]
-    return u, nu, w
-
-
-def residual_nT(p: np.ndarray, m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.ndarray) -> np.ndarray:
-    """r_k = |S^-1 (m_k - b0 - K i_k)| - h_k, nT, for the 18-parameter vector ``p``."""
-    _, nu, _ = _u_and_w(p, m_sensor_nT, i_coil_A)
-    return nu - h_nT
-
-
-def _jacobian(p, m, i):
-    u, _, w = _u_and_w(p, m, i)
-    j = np.empty((len(m), N_PARAMS))
-    j[:, 0:3] = -w
-    for n, (a, b) in enumerate(SYM_INDEX):
-        j[:, 3 + n] = -w[:, a] * u[:, a] if a == b else -(w[:, a] * u[:, b] + w[:, b] * u[:, a])
-    for jj in range(3):
-        for c in range(3):
-            j[:, 9 + 3 * jj + c] = -w[:, jj] * i[:, c]
-    return j
 
 
 @dataclass(frozen=True)
@@ -343,7 +289,7 @@ def _screen(p, free, m, i, undetermined, max_condition) -> tuple[float, bool]:
     whether a parameter was removed)."""
     if not np.any(free):
         return np.inf, False
-    jac = _jacobian(p, m, i)[:, free]
+    jac = jacobian(p, m, i)[:, free]
     norms = np.linalg.norm(jac, axis=0)
     zero = norms <= 1e-12 * max(float(norms.max(initial=0.0)), 1e-300)
     if np.any(zero):
@@ -418,7 +364,7 @@ def _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s, conside
     cov = np.full((N_PARAMS, N_PARAMS), np.nan)
     cov_stat = cov.copy()
     if n_free:
-        jac = _jacobian(p, m[inliers], i[inliers])[:, free]
+        jac = jacobian(p, m[inliers], i[inliers])[:, free]
         norms = np.linalg.norm(jac, axis=0)
         norms[norms == 0] = 1.0
         jn = jac / norms
@@ -429,7 +375,7 @@ def _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s, conside
             t = np.asarray(t_s, dtype=float)[inliers]
             c_n = c_n + _smooth_error_cov(jn, t, unmodelled_nT / np.sqrt(3.0), unmodelled_time_s, a_n)
         if consider is not None and np.any(consider[~free][:, ~free] != 0):
-            jx = _jacobian(p, m[inliers], i[inliers])[:, ~free]
+            jx = jacobian(p, m[inliers], i[inliers])[:, ~free]
             g = a_n @ (jn.T @ jx)
             c_n = c_n + g @ consider[np.ix_(~free, ~free)] @ g.T
         cov[np.ix_(free, free)] = c_n / np.outer(norms, norms)
@@ -477,7 +423,7 @@ def _solve(p0, free, m, h, i, loss, f_scale):
     def jac(x):
         p = p0.copy()
         p[free] = x
-        return _jacobian(p, m, i)[:, free]
+        return jacobian(p, m, i)[:, free]
 
     res = least_squares(fun, p0[free], jac=jac, loss=loss, f_scale=f_scale, x_scale="jac",
                         method="trf", xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=200)

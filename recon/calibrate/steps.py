@@ -2,8 +2,8 @@
 
 Between two consecutive magnetometer samples ``k`` and ``k+1`` (sensor axes, interval ``dt_k``) the
 satellite turns by the gyro's rate ``w`` and the true field's components turn with it. With
-``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon._twostep`) and ``R_k = exp(-[w x] dt_k)`` (the change
-of the components of a fixed vector seen from a frame turning at ``w``;
+``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon.calibrate.model`) and ``R_k = exp(-[w x] dt_k)``
+(the change of the components of a fixed vector seen from a frame turning at ``w``;
 ``Rotation.from_rotvec(-w dt)``), the rotation-compensated difference is
 
     d_k = m_{k+1} - R_k m_k
@@ -58,7 +58,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from ..core import robust_scale
-from .linear import SYM_INDEX
+from .model import SYM_INDEX
 
 __all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
 
