@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 
 from ..core import NS_PER_S, NT_PER_UNIT, Anomaly, controller_samples, effective_current
-from .agreement import combine_crosstalk, compare_crosstalk
+from .agreement import CrosstalkAgreement, combine_crosstalk, compare_crosstalk
 from .magfit import MagFit, fit_magnetometer
 from .model import AXES, PARAM_NAMES, matrices_from_params, nominal_params
 from .steps import StepFit, fit_crosstalk_steps
@@ -77,7 +77,7 @@ class Calibration:
         The two combined by their covariances (:func:`combine_crosstalk`) when they agree; when they
         disagree, the magnitude estimate, with the step estimate only where the magnitude says
         nothing. This is the crosstalk removed from the calibrated field.
-    agreement : dict
+    agreement : CrosstalkAgreement
         Comparison of the two crosstalk estimates (see :func:`compare_crosstalk`).
     residual_rms_nT : dict
         ``{"before": ..., "after": ...}``: RMS of ``|b| - |b_ref|`` raw and calibrated.
@@ -112,7 +112,7 @@ class Calibration:
     crosstalk_step_nT_per_A_sigma: np.ndarray | None
     crosstalk_combined_nT_per_A: np.ndarray
     crosstalk_combined_nT_per_A_sigma: np.ndarray
-    agreement: dict[str, Any]
+    agreement: CrosstalkAgreement
     residual_rms_nT: dict[str, float | None]
     undetermined: dict[str, str]
     anomalies: list[Anomaly]
@@ -293,7 +293,7 @@ def calibrate_arrays(time_utc: np.ndarray, m_sensor_nT: np.ndarray, h_nT: np.nda
     agreement = compare_crosstalk(k_fit, k_cov, k_step, c_step)
     span = (t[0], t[-1]) if n else (None, None)
     anomalies: list[Anomaly] = []
-    if agreement["agree"] is False:
+    if agreement.agree is False:
         # two unbiased estimates of one quantity that differ: at least one model is wrong
         k_comb, c_comb = combine_crosstalk(k_fit, k_cov, np.full((3, 3), np.nan), np.full((9, 9), np.nan))
         take_step = ~np.isfinite(k_comb) & np.isfinite(k_step)
@@ -303,8 +303,8 @@ def calibrate_arrays(time_utc: np.ndarray, m_sensor_nT: np.ndarray, h_nT: np.nda
         anomalies.append(Anomaly(
             "crosstalk_estimates_disagree", "warning",
             f"the crosstalk from the field magnitude and from the current steps differ: chi-square "
-            f"{agreement['chi2']:.1f} for {agreement['dof']} elements (p = {agreement['p_value']:.2g}); "
-            f"beyond 3 sigma: {', '.join(agreement['elements_beyond_3_sigma']) or 'none singly'}; "
+            f"{agreement.chi2:.1f} for {agreement.dof} elements (p = {agreement.p_value:.2g}); "
+            f"beyond 3 sigma: {', '.join(agreement.elements_beyond_3_sigma) or 'none singly'}; "
             f"a wrong coil-log time base or latency, a wrong mag_sampling, or a poor reference field can "
             f"cause it; the magnitude estimate is applied", span[0], span[1]))
     else:
