@@ -264,24 +264,28 @@ def _design(pairs: _Pairs, r_mat, a_next, coils) -> _Design:
     """The regression of ``d_k = m_{k+1} - R_k m_k`` on K (the coils with steps), the bias, the soft
     iron and the gyro bias; the field rates enter as the ``trend`` columns (see the module notes)."""
     k0, m, i, dt = pairs.first, pairs.m_nT, pairs.i_A, pairs.dt_s
+    # columns: K (one per (sensor axis, coil) of a coil with steps), bias (3), soft iron (6, in the
+    # order of SYM_INDEX), gyro bias (3); the field rates are projected out
     cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
-    n_k = len(cols_k)
-    n_par = n_k + 3 + 6 + 3  # K, bias, soft iron, gyro bias; the field rates are projected out
+    bias_col = len(cols_k)
+    soft_col = bias_col + 3
+    gyro_col = soft_col + 6
+    n_par = gyro_col + 3
     n_p = len(k0)
     x = np.zeros((n_p, 3, n_par))
     eye = np.eye(3)
     for col, (j, c) in enumerate(cols_k):
         x[:, :, col] = i[k0 + 1, c][:, None] * eye[j] - i[k0, c][:, None] * r_mat[:, :, j]
-    x[:, :, n_k:n_k + 3] = eye - r_mat
+    x[:, :, bias_col:bias_col + 3] = eye - r_mat
     mk = m[k0]
     rm = np.einsum("pab,pb->pa", r_mat, mk)
     for n, (a, b) in enumerate(SYM_INDEX):
         xi = np.zeros((3, 3))
         xi[a, b] = xi[b, a] = 1.0
-        x[:, :, n_k + 3 + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
+        x[:, :, soft_col + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
     # gyro bias: -R_k [m_k x] dt_k, column e of [m x] is m x e_e
     for e in range(3):
-        x[:, :, n_k + 9 + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[:, None]
+        x[:, :, gyro_col + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[:, None]
     trend = a_next * dt[:, None, None]  # (P, 3, 3): the field-rate columns of each pair's segment
     y = m[k0 + 1] - rm
     return _Design(x, y, trend, cols_k)
