@@ -6,10 +6,10 @@ unmodelled smooth field, a satellite turning at a few deg/s, coil currents switc
 
 - baseline A: ``scipy.optimize.least_squares`` on the same 18-parameter residual with its default
   finite-difference Jacobian, started from the same linear first guess, no observability checks;
-- recon's attitude-independent fit (``recon._magfit.fit_magnetometer``): linear step, robust fit with
+- recon's attitude-independent fit (``recon.calibrate.magfit.fit_magnetometer``): linear step, robust fit with
   the analytic Jacobian, observability screen, covariance with the unmodelled-field term;
 - baseline B: an ordinary least-squares solve of the step-response design (``numpy.linalg.lstsq``);
-- recon's step-response estimate (``recon._steps.fit_crosstalk_steps``), which builds that design
+- recon's step-response estimate (``recon.calibrate.steps.fit_crosstalk_steps``), which builds that design
   and adds the robust refit and the sandwich covariance.
 
 Prints seconds, samples/s and the ratio to each baseline, and the K error of each against the truth.
@@ -27,7 +27,8 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from recon.calibrate.linear import linear_calibration
-from recon.calibrate.magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
+from recon.calibrate.magfit import fit_magnetometer
+from recon.calibrate.model import matrices_from_params, params_from_matrices, residual_nT
 from recon.calibrate.steps import fit_crosstalk_steps
 
 SEED = 20260714

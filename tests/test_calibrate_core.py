@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
 from recon.calibrate.linear import linear_calibration
-from recon.calibrate.magfit import fit_magnetometer, matrices_from_params, params_from_matrices, residual_nT
+from recon.calibrate.magfit import fit_magnetometer
+from recon.calibrate.model import jacobian, matrices_from_params, params_from_matrices, residual_nT
 from recon.calibrate.steps import fit_crosstalk_steps
 
 I_MAX_A = 0.12
@@ -276,11 +277,9 @@ def test_step_response_closed_loop_needs_the_controller_samples_skipped():
 # ---------------------------------------------------------------------------------------- invariants
 def test_analytic_jacobian_matches_finite_differences():
     # the fit's analytic Jacobian (dP = -P dS P) against central differences of the residual
-    from recon.calibrate.magfit import _jacobian
-
     p = synthetic_pass(6, n=50)
     x = params_from_matrices(p["bias"], p["S"], p["K"])
-    jac = _jacobian(x, p["m"], p["i"])
+    jac = jacobian(x, p["m"], p["i"])
     steps = np.r_[np.full(3, 1e-3), np.full(6, 1e-8), np.full(9, 1e-3)]  # nT, -, nT/A
     num = np.empty_like(jac)
     for k in range(18):

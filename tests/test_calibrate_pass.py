@@ -82,11 +82,11 @@ def test_compare_and_combine_hand_computed():
     cov = np.eye(9) * 100.0  # sigma 10 nT/A each
     ag = compare_crosstalk(k_a, cov, k_b, cov)
     # chi2 = 50^2 / (100 + 100) = 12.5 with 9 dof; p = 0.187 (scipy.stats.chi2.sf(12.5, 9))
-    assert ag["chi2"] == pytest.approx(12.5)
-    assert ag["dof"] == 9
-    assert ag["p_value"] == pytest.approx(0.1867, abs=1e-3)
-    assert ag["agree"] is True
-    assert ag["elements_beyond_3_sigma"] == ["crosstalk_x_coil_x"]  # 50 / sqrt(200) = 3.5 sigma
+    assert ag.chi2 == pytest.approx(12.5)
+    assert ag.dof == 9
+    assert ag.p_value == pytest.approx(0.1867, abs=1e-3)
+    assert ag.agree is True
+    assert ag.elements_beyond_3_sigma == ("crosstalk_x_coil_x",)  # 50 / sqrt(200) = 3.5 sigma
     k, c = combine_crosstalk(k_a, cov, k_b, cov)
     assert k[0, 0] == pytest.approx(1025.0)  # equal weights: the mean
     assert c[0, 0] == pytest.approx(50.0)  # half the variance
@@ -94,7 +94,7 @@ def test_compare_and_combine_hand_computed():
     k_nan[1, 2] = np.nan
     k2, c2 = combine_crosstalk(k_nan, cov, k_b, cov)
     assert k2[1, 2] == pytest.approx(1000.0) and c2[5, 5] == pytest.approx(100.0)  # from b alone
-    assert compare_crosstalk(k_nan, cov, k_b, cov)["dof"] == 8
+    assert compare_crosstalk(k_nan, cov, k_b, cov).dof == 8
 
 
 # ---------------------------------------------------------------------------------------- pass level on arrays
@@ -118,7 +118,7 @@ def test_calibrated_body_field_matches_truth():
     err = cal.b_body_calibrated_nT - b_body
     rms = np.sqrt(np.mean(err**2, axis=0))
     assert np.all(rms < 1.5 * NOISE_nT)  # noise plus parameter error; measured 31-37 nT per axis
-    assert cal.agreement["agree"] is True
+    assert cal.agreement.agree is True
     k_err = np.linalg.norm(cal.crosstalk_combined_nT_per_A - p["K"]) / np.linalg.norm(p["K"])
     assert k_err < 0.02  # measured 0.25 %
     assert cal.residual_rms_nT["after"] < cal.residual_rms_nT["before"] / 5

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from recon.calibrate import calibrate_pass, format_crosstalk_table
-from recon.calibrate.magfit import params_from_matrices, residual_nT
+from recon.calibrate.model import params_from_matrices, residual_nT
 from recon.clean import clean_pass
 from recon.config import load_mission
 from recon.field import reference_field
@@ -64,7 +64,7 @@ def test_crosstalk_bias_and_residual_against_truth(informative):
     assert np.abs(z).max() < 4.0
     # step response alone, no reference field: within 10 % (measured 6.1 % and 3.4 %)
     assert _k_error(cal.crosstalk_step_nT_per_A, k) < 0.10
-    assert cal.agreement["agree"] is True
+    assert cal.agreement.agree is True
     # bias within 50 nT (measured 17 and 32 nT) and within 4 of its sigma
     assert np.abs(cal.bias_nT - bias).max() < 50.0
     assert np.abs((cal.bias_nT - bias) / cal.bias_nT_sigma).max() < 4.0
@@ -109,5 +109,5 @@ def test_command_latency_makes_the_estimates_disagree(tmp_path_factory):
     # currents flow 2 s after the logged command: both estimates use the wrong currents, in different
     # ways, and the chi-square test of their difference must catch it
     _, cal = _run(tmp_path_factory, "latency", 1, **INFORMATIVE)
-    assert cal.agreement["agree"] is False
+    assert cal.agreement.agree is False
     assert "crosstalk_estimates_disagree" in {a.code for a in cal.anomalies}

@@ -1,6 +1,7 @@
 """Magnetometer calibration for one pass: bias, soft iron and coil crosstalk (nT per A), with uncertainties."""
 
 from .agreement import (
+    CrosstalkAgreement,
     combine_crosstalk,
     compare_crosstalk,
 )
@@ -17,6 +18,7 @@ __all__ = [
     "Calibration",
     "calibrate_pass",
     "calibrate_arrays",
+    "CrosstalkAgreement",
     "compare_crosstalk",
     "combine_crosstalk",
     "format_crosstalk_table",

@@ -1,22 +1,55 @@
-"""Do two crosstalk estimates agree, and what is their combination?"""
+"""Do two crosstalk estimates agree, what is their combination, and which crosstalk is removed?"""
 
 from __future__ import annotations
 
-from typing import Any
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
 
-__all__ = ["compare_crosstalk", "combine_crosstalk", "AGREEMENT_P"]
+from .model import crosstalk_name
 
-_AX = ("x", "y", "z")
+__all__ = ["CrosstalkAgreement", "compare_crosstalk", "combine_crosstalk", "CombinedCrosstalk",
+           "reconcile_crosstalk", "AGREEMENT_P"]
+
 # Two estimates agree when the chi-square of their difference has a p-value above this
 # (a 1 % test; common practice, no source).
 AGREEMENT_P = 0.01
 
 
+@dataclass(frozen=True)
+class CrosstalkAgreement:
+    """Result of :func:`compare_crosstalk`.
+
+    Attributes
+    ----------
+    chi2 : float or None
+        ``d^T (C_a + C_b)^-1 d`` over the elements both estimates determine (None: none).
+    dof : int
+        Number of elements compared.
+    p_value : float or None
+        Chi-square survival function of ``chi2`` with ``dof`` degrees of freedom.
+    agree : bool or None
+        ``p_value > p_limit``; None when nothing could be compared.
+    z : (3, 3) array
+        Each element's difference over its combined 1-sigma; NaN where not compared.
+    elements_beyond_3_sigma : tuple of str
+        Names (``crosstalk_<axis>_coil_<coil>``) of the elements with ``|z| > 3``.
+    test : str
+        What was tested, in words.
+    """
+
+    chi2: float | None
+    dof: int
+    p_value: float | None
+    agree: bool | None
+    z: np.ndarray
+    elements_beyond_3_sigma: tuple[str, ...]
+    test: str
+
+
 def compare_crosstalk(k_a: np.ndarray, cov_a: np.ndarray, k_b: np.ndarray, cov_b: np.ndarray,
-                      *, p_limit: float = AGREEMENT_P) -> dict[str, Any]:
+                      *, p_limit: float = AGREEMENT_P) -> CrosstalkAgreement:
     """Do two crosstalk estimates agree within their uncertainty?
 
     Chi-square of the difference ``d = vec(K_a) - vec(K_b)`` over the elements both determine, with
@@ -32,25 +65,25 @@ def compare_crosstalk(k_a: np.ndarray, cov_a: np.ndarray, k_b: np.ndarray, cov_b
 
     Returns
     -------
-    dict with chi2, dof, p_value, agree (bool or None when nothing to compare), z (3x3 list, None
-    where not compared) and elements_beyond_3_sigma (list of names).
+    CrosstalkAgreement
     """
     a, b = np.asarray(k_a, float).ravel(), np.asarray(k_b, float).ravel()
     both = np.isfinite(a) & np.isfinite(b)
     z = np.full(9, np.nan)
     if not np.any(both):
-        return {"chi2": None, "dof": 0, "p_value": None, "agree": None, "z": _nested(z),
-                "elements_beyond_3_sigma": [], "test": "chi-square of the difference, combined covariance"}
+        return CrosstalkAgreement(chi2=None, dof=0, p_value=None, agree=None, z=z.reshape(3, 3),
+                                  elements_beyond_3_sigma=(),
+                                  test="chi-square of the difference, combined covariance")
     c = np.asarray(cov_a, float)[np.ix_(both, both)] + np.asarray(cov_b, float)[np.ix_(both, both)]
     d = (a - b)[both]
     chi2 = float(d @ np.linalg.pinv(c) @ d)
     dof = int(both.sum())
     p = float(stats.chi2.sf(chi2, dof))
     z[both] = d / np.sqrt(np.diag(c))
-    names = [f"crosstalk_{_AX[k // 3]}_coil_{_AX[k % 3]}" for k in np.flatnonzero(np.abs(z) > 3.0)]
-    return {"chi2": chi2, "dof": dof, "p_value": p, "agree": bool(p > p_limit), "z": _nested(z),
-            "elements_beyond_3_sigma": names,
-            "test": f"chi-square of the difference with the combined covariance, agree when p > {p_limit:g}"}
+    names = tuple(crosstalk_name(k // 3, k % 3) for k in np.flatnonzero(np.abs(z) > 3.0))
+    return CrosstalkAgreement(
+        chi2=chi2, dof=dof, p_value=p, agree=bool(p > p_limit), z=z.reshape(3, 3), elements_beyond_3_sigma=names,
+        test=f"chi-square of the difference with the combined covariance, agree when p > {p_limit:g}")
 
 
 def combine_crosstalk(k_a: np.ndarray, cov_a: np.ndarray, k_b: np.ndarray,
@@ -95,7 +128,41 @@ def combine_crosstalk(k_a: np.ndarray, cov_a: np.ndarray, k_b: np.ndarray,
     return out.reshape(3, 3), cov
 
 
-def _nested(z9: np.ndarray) -> list[list[float | None]]:
-    return [[None if not np.isfinite(v) else float(v) for v in z9[3 * r:3 * r + 3]] for r in range(3)]
+@dataclass(frozen=True)
+class CombinedCrosstalk:
+    """Result of :func:`reconcile_crosstalk`: the crosstalk removed from the calibrated field.
+
+    Attributes
+    ----------
+    crosstalk_nT_per_A, sigma_nT_per_A : (3, 3) arrays, nT per A; NaN where neither estimate says
+    covariance : (9, 9) array, (nT/A)^2, row-major
+    agreement : CrosstalkAgreement
+        The comparison of the two estimates it was formed from.
+    """
+
+    crosstalk_nT_per_A: np.ndarray
+    sigma_nT_per_A: np.ndarray
+    covariance: np.ndarray
+    agreement: CrosstalkAgreement
 
 
+def reconcile_crosstalk(k_fit: np.ndarray, cov_fit: np.ndarray, k_step: np.ndarray,
+                        cov_step: np.ndarray) -> CombinedCrosstalk:
+    """Compare the magnitude estimate (``k_fit``) and the step-response estimate (``k_step``); when
+    they agree (or cannot be compared), their combination (:func:`combine_crosstalk`); when they
+    disagree, the magnitude estimate, with the step estimate only where the magnitude says nothing.
+
+    Parameters
+    ----------
+    k_fit, k_step : (3, 3) arrays, nT per A (NaN where undetermined)
+    cov_fit, cov_step : (9, 9) arrays, (nT/A)^2, row-major
+    """
+    agreement = compare_crosstalk(k_fit, cov_fit, k_step, cov_step)
+    if agreement.agree is False:
+        k, c = combine_crosstalk(k_fit, cov_fit, np.full((3, 3), np.nan), np.full((9, 9), np.nan))
+        take_step = ~np.isfinite(k) & np.isfinite(k_step)
+        k[take_step] = k_step[take_step]
+        c[np.ix_(take_step.ravel(), take_step.ravel())] = cov_step[np.ix_(take_step.ravel(), take_step.ravel())]
+    else:
+        k, c = combine_crosstalk(k_fit, cov_fit, k_step, cov_step)
+    return CombinedCrosstalk(k, np.sqrt(np.abs(np.diag(c))).reshape(3, 3), c, agreement)

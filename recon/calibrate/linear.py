@@ -56,24 +56,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["LinearCalibration", "linear_calibration", "sym_from_six", "six_from_sym", "SYM_INDEX"]
+from .model import SYM_INDEX
 
-# Order of the six independent elements of a symmetric 3x3 matrix: xx, yy, zz, xy, xz, yz.
-SYM_INDEX = ((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))
-
-
-def sym_from_six(v: np.ndarray) -> np.ndarray:
-    """Symmetric 3x3 matrix from its six elements in the order xx, yy, zz, xy, xz, yz."""
-    m = np.empty((3, 3))
-    for n, (a, b) in enumerate(SYM_INDEX):
-        m[a, b] = m[b, a] = v[n]
-    return m
-
-
-def six_from_sym(m: np.ndarray) -> np.ndarray:
-    """The six elements xx, yy, zz, xy, xz, yz of a symmetric 3x3 matrix."""
-    return np.array([m[a, b] for a, b in SYM_INDEX])
-
+__all__ = ["LinearCalibration", "linear_calibration"]
 
 @dataclass(frozen=True)
 class LinearCalibration:

@@ -1,6 +1,6 @@
 """Nonlinear, robust, attitude-independent magnetometer calibration with uncertainties.
 
-Refines the linear first guess (:mod:`recon._twostep`) on the exact residual
+Refines the linear first guess (:mod:`recon.calibrate.linear`) on the exact residual
 
     r_k = |S^-1 (m_k - b0 - K i_k)| - h_k            (nT)
 
@@ -9,45 +9,18 @@ TWOSTEP does on the same model (Alonso & Shuster 2002). Parameters are in sensor
 (3, nT), the six elements of the symmetric soft-iron matrix ``S`` (xx, yy, zz, xy, xz, yz) and the
 crosstalk ``K`` (3x3, nT per A, row = sensor axis, column = coil), 18 in all.
 
-Jacobian (analytic): with ``P = S^-1``, ``u = P (m - b0 - K i)`` and ``w = P u / |u|``,
-``dr/db0 = -w``, ``dr/dK_jl = -w_j i_l``, ``dr/dS_aa = -w_a u_a`` and
-``dr/dS_ab = -(w_a u_b + w_b u_a)`` for a != b (from ``dP = -P dS P``).
+The residual, the parameter layout and the analytic Jacobian are in :mod:`recon.calibrate.model`.
 
-Uncertainty: the statistical part is ``s^2 (J^T J)^-1`` on the inlying samples, ``s^2`` their
-residual variance (Seber & Wild 1989, Nonlinear Regression, sec. 2.1). It assumes independent
-residuals, which the field the reference model leaves out (crustal and external, of the order of
-100 nT, memory) breaks: that error is smooth along the orbit and, over a pass, acts like a slowly
-drifting offset of ``h``. Its effect on the parameters is added as a systematic term
-``A J^T Sigma_u J A`` (``A = (J^T J)^-1``), with ``Sigma_u`` the covariance of the magnitude error:
-a Gaussian process with RMS ``unmodelled_nT / sqrt(3)`` (the component along the field of an
-isotropic vector error) and a squared-exponential correlation of time scale ``unmodelled_time_s``
-(the linearised error propagation of a least-squares estimator under a mis-specified error
-covariance; Seber & Wild 1989 sec. 2.1; Rasmussen & Williams 2006, Gaussian Processes for Machine
-Learning, eq. 2.31 for the kernel). On seeded synthetic passes with a smooth ~100 nT unmodelled
-field the parameter errors divided by this sigma have an RMS near 1.
+The covariance of the solution (statistical, systematic from the unmodelled field, and consider
+terms) is formed in :mod:`recon.calibrate.covariance`.
 
-Observability: a parameter that the data cannot tell apart from others is *undetermined*. Three
-tests: the span of each coil's current (a coil that never switches leaves its crosstalk column
-indistinguishable from the bias); the singular values of the column-normalised Jacobian (Belsley,
-Kuh & Welsch 1980, Regression Diagnostics, ch. 3: the condition number of the scaled design
-matrix): while it is above the limit, the parameter that dominates the weakest direction is fixed at
-its nominal value (0, or 1 on the soft-iron diagonal) and the fit repeated; and a 1-sigma larger
-than any plausible value of the parameter, which catches the case magnetic control creates on
-purpose: a dipole perpendicular to the field changes ``|b|`` only at second order, so the
-crosstalk of such coils barely shows in the magnitude. An undetermined parameter is held at its nominal
-value, but its plausible range (1-sigma = the same limit) is carried into the covariance of the
-others as a consider term, so a bias that only looks determined because the soft iron was held at
-identity is reported as undetermined too.
+Observability (which parameters the data determine) is tested in :mod:`recon.calibrate.observability`;
+the parameters it holds carry their plausible range into the covariance as a consider term.
 
 References
 ----------
 Alonso, R. and Shuster, M. D. (2002). TWOSTEP: a fast robust algorithm for attitude-independent
 magnetometer-bias determination. J. Astronaut. Sci. 50(4), 433-452.
-Belsley, D. A., Kuh, E. and Welsch, R. E. (1980). Regression Diagnostics. Wiley, chapter 3.
-Seber, G. A. F. and Wild, C. J. (1989). Nonlinear Regression. Wiley, section 2.1.
-Rasmussen, C. E. and Williams, C. K. I. (2006). Gaussian Processes for Machine Learning. MIT Press.
-Tapley, B. D., Schutz, B. E. and Born, G. H. (2004). Statistical Orbit Determination. Elsevier,
-section 6.3 (consider covariance).
 """
 
 from __future__ import annotations
@@ -58,93 +31,42 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from ..core import robust_scale
-from .linear import SYM_INDEX, linear_calibration, six_from_sym, sym_from_six
-
-__all__ = ["MagFit", "fit_magnetometer", "PARAM_NAMES", "AXES", "residual_nT", "nominal_params",
-           "params_from_matrices", "matrices_from_params"]
-
-AXES = ("x", "y", "z")
-PARAM_NAMES = (
-    [f"bias_{a}" for a in AXES]
-    + [f"soft_iron_{AXES[a]}{AXES[b]}" for a, b in SYM_INDEX]
-    + [f"crosstalk_{AXES[j]}_coil_{AXES[c]}" for j in range(3) for c in range(3)]
+from .covariance import (
+    FitCovariance,
+    UNMODELLED_FIELD_nT,
+    UNMODELLED_TIME_s,
+    consider_covariance,
+    fit_covariance,
+    fixed_covariance_block,
 )
-N_PARAMS = len(PARAM_NAMES)  # 18
+from .linear import linear_calibration
+from .model import (
+    N_PARAMS,
+    PARAM_NAMES,
+    ParamIndex,
+    crosstalk_name,
+    jacobian,
+    matrices_from_params,
+    nominal_params,
+    params_from_matrices,
+    residual_nT,
+)
+from .observability import (
+    MAX_CONDITION,
+    MAX_SIGMA_FRACTION,
+    MIN_CURRENT_SPAN_FRACTION,
+    coil_span,
+    screen,
+    sigma_bounds,
+    sigma_reason,
+)
 
-# A coil whose effective current spans less than this fraction of its maximum current is taken as
-# never switching: its crosstalk column is undetermined (common practice, no source).
-MIN_CURRENT_SPAN_FRACTION = 0.01
-# Limit on the condition number of the column-normalised Jacobian. Above it, the weakest parameter
-# combination is known 1e6 times less well than an orthogonal design would give: no trustworthy digit
-# at the noise levels of a magnetometer (common practice, no source).
-MAX_CONDITION = 1.0e6
-# Robust outer fence: samples with |r - median| > 5 x (1.4826 MAD) are left out of the covariance
-# (1.4826 MAD is the normal-consistent scale estimate; Rousseeuw & Croux 1993, JASA 88:1273).
-OUTLIER_FENCE = 5.0
-# The field IGRF leaves out: crustal and external fields of ~100 nT in quiet conditions (memory).
-UNMODELLED_FIELD_nT = 100.0
-# Its correlation time along a LEO track: features of ~1500 km at 7.6 km/s (common practice, no source).
-UNMODELLED_TIME_s = 200.0
-# A parameter whose 1-sigma exceeds this fraction of its plausible range (the mean field for the bias
-# and for a coil at full current; 1 for the soft iron) is undetermined (common practice, no source).
-MAX_SIGMA_FRACTION = 0.1
+__all__ = ["MagFit", "fit_magnetometer"]
+
 # A linear soft-iron estimate further than this from identity is implausible for a magnetometer on a
 # small satellite (a few per cent is usual); the nonlinear fit then also starts from S = I
 # (common practice, no source).
 MAX_SOFT_IRON_DEVIATION = 0.2
-
-
-def nominal_params() -> np.ndarray:
-    """The parameter vector of a perfect sensor: zero bias, S = I, K = 0."""
-    p = np.zeros(N_PARAMS)
-    p[3:6] = 1.0
-    return p
-
-
-def params_from_matrices(bias_nT, soft_iron, crosstalk_nT_per_A) -> np.ndarray:
-    return np.concatenate([np.asarray(bias_nT, float), six_from_sym(np.asarray(soft_iron, float)),
-                           np.asarray(crosstalk_nT_per_A, float).ravel()])
-
-
-def matrices_from_params(p: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(bias_nT (3,), soft_iron (3, 3), crosstalk_nT_per_A (3, 3)) from the 18-vector."""
-    return p[0:3].copy(), sym_from_six(p[3:9]), p[9:18].reshape(3, 3).copy()
-
-
-# Soft-iron matrices with an eigenvalue below this are not a sensor (the solver may step there while
-# exploring a flat direction); they get the pseudo-inverse and a residual the solver will reject.
-_MIN_EIGENVALUE = 1e-3
-
-
-def _u_and_w(p, m, i):
-    bias, s, k = matrices_from_params(p)
-    if np.linalg.eigvalsh(s)[0] < _MIN_EIGENVALUE:
-        pinv = np.linalg.pinv(s) if np.all(np.isfinite(s)) else np.zeros((3, 3))
-    else:
-        pinv = np.linalg.inv(s)
-    y = m - bias - i @ k.T
-    u = y @ pinv.T
-    nu = np.linalg.norm(u, axis=1)
-    w = (u @ pinv.T) / np.where(nu > 0, nu, 1.0)[:, None]
-    return u, nu, w
-
-
-def residual_nT(p: np.ndarray, m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.ndarray) -> np.ndarray:
-    """r_k = |S^-1 (m_k - b0 - K i_k)| - h_k, nT, for the 18-parameter vector ``p``."""
-    _, nu, _ = _u_and_w(p, m_sensor_nT, i_coil_A)
-    return nu - h_nT
-
-
-def _jacobian(p, m, i):
-    u, _, w = _u_and_w(p, m, i)
-    j = np.empty((len(m), N_PARAMS))
-    j[:, 0:3] = -w
-    for n, (a, b) in enumerate(SYM_INDEX):
-        j[:, 3 + n] = -w[:, a] * u[:, a] if a == b else -(w[:, a] * u[:, b] + w[:, b] * u[:, a])
-    for jj in range(3):
-        for c in range(3):
-            j[:, 9 + 3 * jj + c] = -w[:, jj] * i[:, c]
-    return j
 
 
 @dataclass(frozen=True)
@@ -194,6 +116,38 @@ class MagFit:
     converged: bool
     inliers: np.ndarray = field(repr=False, default=None)
     fixed: dict[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class _Problem:
+    """The rows of one fit and how they are fitted: ``m`` (N, 3) nT sensor axes, ``h`` (N,) nT,
+    ``i`` (N, 3) A, ``t_s`` (N,) s or None, the ``least_squares`` loss and its scale (nT), and the
+    RMS (nT) and correlation time (s) of the unmodelled field."""
+
+    m: np.ndarray
+    h: np.ndarray
+    i: np.ndarray
+    t_s: np.ndarray | None
+    loss: str
+    f_scale: float
+    unmodelled_nT: float
+    unmodelled_time_s: float
+
+    def covariance(self, p, free, consider):
+        """The covariance of the fit at ``p`` over the ``free`` parameters (:func:`fit_covariance`)."""
+        return fit_covariance(p, free, self.m, self.h, self.i, self.t_s, self.unmodelled_nT, self.unmodelled_time_s,
+                              consider)
+
+
+@dataclass(frozen=True)
+class _Refined:
+    """The solution after the observability checks, with its covariance (see :class:`MagFit`)."""
+
+    params: np.ndarray
+    fitted: FitCovariance
+    condition_number: float
+    converged: bool
+    undetermined: dict[str, str]
 
 
 def fit_magnetometer(m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.ndarray | None = None,
@@ -249,225 +203,130 @@ def fit_magnetometer(m_sensor_nT: np.ndarray, h_nT: np.ndarray, i_coil_A: np.nda
     unknown = sorted(set(fixed) - set(PARAM_NAMES))
     if unknown:
         raise ValueError(f"Expected parameter names from PARAM_NAMES in fixed, got {unknown}")
-    undetermined: dict[str, str] = {}
-    imax = np.ones(3)
-    if i_coil_A is None:
-        i = np.zeros((n, 3))
-        for j in range(3):
-            for c in range(3):
-                undetermined[PARAM_NAMES[9 + 3 * j + c]] = "no coil currents available"
-        coils = np.zeros(3, bool)
-    else:
-        i = np.asarray(i_coil_A, dtype=float)
-        span = np.ptp(i, axis=0) if n else np.zeros(3)
-        imax = (np.max(np.abs(i), axis=0) if max_current_A is None
-                else np.asarray(max_current_A, dtype=float))
-        imax = np.where(imax > 0, imax, 1.0)
-        coils = span >= min_span_fraction * imax
-        for c in np.flatnonzero(~coils):
-            why = (f"coil {AXES[c]} current spans {100 * span[c] / imax[c]:.2g} % of its range "
-                   f"({span[c]:.3g} A of {imax[c]:.3g} A; at least {100 * min_span_fraction:g} % needed)")
-            for j in range(3):
-                undetermined[PARAM_NAMES[9 + 3 * j + c]] = why
+    i = np.zeros((n, 3)) if i_coil_A is None else np.asarray(i_coil_A, dtype=float)
+    coils = coil_span(None if i_coil_A is None else i, max_current_A, min_span_fraction)
+    undetermined = dict(coils.undetermined)
     for name in fixed:
         undetermined.pop(name, None)
 
     rms_before = float(np.sqrt(np.mean((np.linalg.norm(m, axis=1) - h) ** 2)))
-    nominal = nominal_params()
-    hold = nominal.copy()  # values of the parameters that are not estimated
+    hold = nominal_params()  # values of the parameters that are not estimated
     for name, v in fixed.items():
         hold[PARAM_NAMES.index(name)] = float(v)
     free = np.array([name not in undetermined and name not in fixed for name in PARAM_NAMES])
+    p_lin, starts = _first_guesses(m, h, i, coils.switching, fixed, free, hold, noise_nT)
+    f_scale = max(min(robust_scale(residual_nT(p0, m, h, i)) for p0 in starts), noise_nT or 0.0, 1e-3)
+    problem = _Problem(m, h, i, t_s, loss, f_scale, unmodelled_nT, unmodelled_time_s)
 
-    # first guess: the linear step, with the currents of the fixed crosstalk removed beforehand
+    # screen at the first guess (nominal soft iron when the linear one is implausible), so that a
+    # degenerate problem is cut down before the solver can wander along its flat directions
+    held = _screen_until_conditioned(starts[-1], free, m, i, max_condition)
+    undetermined.update(held)
+    free &= np.array([name not in held for name in PARAM_NAMES])
+    starts = [np.where(free, p0, hold) for p0 in starts]
+    bound = sigma_bounds(float(np.mean(h)), coils.max_current_A, max_sigma_fraction)
+    fixed_block = fixed_covariance_block(fixed, fixed_covariance)
+    out = _refine(problem, starts, free, hold, undetermined, fixed_block, bound, coils.max_current_A,
+                  max_condition)
+
+    r = residual_nT(out.params, m, h, i)
+    fitted = out.fitted
+    sigma = np.sqrt(np.diag(fitted.covariance))
+    return MagFit(params=out.params, sigma=sigma, covariance=fitted.covariance,
+                  covariance_statistical=fitted.statistical,
+                  undetermined=out.undetermined, linear_params=p_lin,
+                  residual_rms_before_nT=rms_before,
+                  residual_rms_after_nT=float(np.sqrt(np.mean(r**2))),
+                  residual_sigma_nT=float(np.sqrt(fitted.residual_variance_nT2)),
+                  condition_number=out.condition_number, n_used=n,
+                  n_outliers=int((~fitted.inliers).sum()), converged=out.converged, inliers=fitted.inliers,
+                  fixed=dict(fixed))
+
+
+def _first_guesses(m, h, i, switching, fixed, free, hold, noise_nT) -> tuple[np.ndarray, list[np.ndarray]]:
+    """The linear step, with the currents of the fixed crosstalk removed beforehand; returns its
+    parameter vector and the starts of the nonlinear fit: the linear guess, and also the nominal
+    sensor with the linear bias when the linear soft iron is implausible."""
     k_fixed = matrices_from_params(np.where(free, 0.0, hold))[2]
-    k_fixed[:, ~coils] = 0.0
-    coils_lin = coils & np.array([any(f"crosstalk_{AXES[j]}_coil_{AXES[c]}" not in fixed for j in range(3))
-                                  for c in range(3)])
+    k_fixed[:, ~switching] = 0.0
+    coils_lin = switching & np.array([any(crosstalk_name(j, c) not in fixed for j in range(3))
+                                      for c in range(3)])
     lin = linear_calibration(m - i @ k_fixed.T, h, i, coils=coils_lin, sigma_nT=noise_nT or 1.0)
     p_lin = params_from_matrices(lin.bias_nT, lin.soft_iron, lin.crosstalk_nT_per_A)
     starts = [np.where(free, p_lin, hold)]
     if not lin.positive_definite or np.abs(lin.soft_iron - np.eye(3)).max() > MAX_SOFT_IRON_DEVIATION:
-        # an implausible linear soft iron: start also from the nominal sensor with the linear bias
-        starts.append(np.where(free, np.r_[p_lin[:3], nominal[3:]], hold))
-    f_scale = max(min(robust_scale(residual_nT(p0, m, h, i)) for p0 in starts), noise_nT or 0.0, 1e-3)
+        nominal = nominal_params()
+        starts.append(np.where(free, np.r_[p_lin[ParamIndex.BIAS], nominal[ParamIndex.BIAS.stop:]], hold))
+    return p_lin, starts
 
+
+def _screen_until_conditioned(p, free, m, i, max_condition) -> dict[str, str]:
+    """Parameter name -> reason for every parameter the observability screen holds at ``p``,
+    repeating the screen over the remaining free ones until it holds no more."""
+    free = free.copy()
+    held: dict[str, str] = {}
+    while True:
+        hold = screen(p, free, m, i, max_condition).hold
+        if not hold:
+            return held
+        for k, why in hold.items():
+            held[PARAM_NAMES[k]] = why
+            free[k] = False
+
+
+def _refine(problem: _Problem, starts, free, hold, undetermined, fixed_block, bound, imax,
+            max_condition) -> _Refined:
+    """Solve from the best start, then alternate the observability screen, the covariance and the
+    sigma test, holding one more parameter and refitting each time a test fails."""
+    free = free.copy()
+    undetermined = dict(undetermined)
+    p, ok, p_start = _best_of(starts, free, problem)
     converged = True
-    # screen at the first guess (nominal soft iron when the linear one is implausible), so that a
-    # degenerate problem is cut down before the solver can wander along its flat directions
-    screen_at = starts[-1]
-    while _screen(screen_at, free, m, i, undetermined, max_condition)[1]:
-        pass
-    starts = [np.where(free, p0, hold) for p0 in starts]
-    p, ok, p_start = _best_of(starts, free, m, h, i, loss, f_scale)
-    cov = cov_stat = None
-    bound = _sigma_bounds(float(np.mean(h)), imax, max_sigma_fraction)
+    fitted = None
     cond = np.inf
     for _ in range(N_PARAMS + 1):
         converged = converged and ok
-        cond, changed = _screen(p, free, m, i, undetermined, max_condition)
-        if changed:
-            p, ok = _solve(np.where(free, p_start, hold), free, m, h, i, loss, f_scale)
+        checked = screen(p, free, problem.m, problem.i, max_condition)
+        cond = checked.condition_number
+        if checked.hold:
+            for k, why in checked.hold.items():
+                undetermined[PARAM_NAMES[k]] = why
+                free[k] = False
+            p, ok = _solve(np.where(free, p_start, hold), free, problem)
             continue
-        consider = _consider_cov(undetermined, fixed, fixed_covariance, bound)
-        cov, cov_stat, s2, inliers = _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s,
-                                                 consider)
+        fitted = problem.covariance(p, free, consider_covariance(undetermined, fixed_block, bound))
+        cov = fitted.covariance
         # a parameter whose 1-sigma exceeds any plausible value is not determined by these data
         ratio = np.where(free, np.sqrt(np.diag(cov)) / bound, 0.0)
         k = int(np.argmax(ratio))
         if ratio[k] <= 1.0:
             break
-        undetermined[PARAM_NAMES[k]] = _sigma_reason(k, float(np.sqrt(cov[k, k])), bound[k], imax)
+        undetermined[PARAM_NAMES[k]] = sigma_reason(k, float(np.sqrt(cov[k, k])), bound[k], imax)
         free[k] = False
-        p, ok = _solve(np.where(free, p_start, hold), free, m, h, i, loss, f_scale)
-
-    r = residual_nT(p, m, h, i)
-    if cov is None:
-        consider = _consider_cov(undetermined, fixed, fixed_covariance, bound)
-        cov, cov_stat, s2, inliers = _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s,
-                                                 consider)
-    sigma = np.sqrt(np.diag(cov))
-    return MagFit(params=p, sigma=sigma, covariance=cov, covariance_statistical=cov_stat,
-                  undetermined=undetermined, linear_params=p_lin,
-                  residual_rms_before_nT=rms_before,
-                  residual_rms_after_nT=float(np.sqrt(np.mean(r**2))),
-                  residual_sigma_nT=float(np.sqrt(s2)), condition_number=cond, n_used=n,
-                  n_outliers=int((~inliers).sum()), converged=converged, inliers=inliers,
-                  fixed=dict(fixed))
+        p, ok = _solve(np.where(free, p_start, hold), free, problem)
+    if fitted is None:
+        fitted = problem.covariance(p, free, consider_covariance(undetermined, fixed_block, bound))
+    return _Refined(p, fitted, cond, converged, undetermined)
 
 
-def _screen(p, free, m, i, undetermined, max_condition) -> tuple[float, bool]:
-    """One observability check of the Jacobian at ``p`` over the ``free`` parameters (updated in
-    place): parameters with no sensitivity, else the one dominating the weakest direction when the
-    column-normalised condition number exceeds ``max_condition``. Returns (condition number,
-    whether a parameter was removed)."""
-    if not np.any(free):
-        return np.inf, False
-    jac = _jacobian(p, m, i)[:, free]
-    norms = np.linalg.norm(jac, axis=0)
-    zero = norms <= 1e-12 * max(float(norms.max(initial=0.0)), 1e-300)
-    if np.any(zero):
-        idx = np.flatnonzero(free)[zero]
-        for k in idx:
-            undetermined[PARAM_NAMES[k]] = "the data carry no information on it (zero sensitivity)"
-        free[idx] = False
-        return np.inf, True
-    sv, vt = np.linalg.svd(jac / norms, full_matrices=False)[1:]
-    cond = float(sv[0] / sv[-1]) if sv[-1] > 0 else np.inf
-    if cond <= max_condition:
-        return cond, False
-    weakest = vt[-1]
-    k_local = int(np.argmax(np.abs(weakest)))
-    k = np.flatnonzero(free)[k_local]
-    undetermined[PARAM_NAMES[k]] = (
-        f"condition number {cond:.1e} of the normalised Jacobian (limit {max_condition:.0e}); "
-        f"the weakest direction is {100.0 * weakest[k_local] ** 2:.0f} % this parameter")
-    free[k] = False
-    return cond, True
-
-
-def _sigma_bounds(mean_field_nT: float, imax: np.ndarray, fraction: float) -> np.ndarray:
-    """Largest plausible 1-sigma per parameter: ``fraction`` of the field for the bias and for a coil
-    at full current, ``fraction`` (dimensionless) for the soft iron."""
-    b = np.empty(N_PARAMS)
-    b[0:3] = fraction * mean_field_nT
-    b[3:9] = fraction
-    b[9:18] = np.tile(fraction * mean_field_nT / imax, 3)
-    return b
-
-
-def _sigma_reason(k: int, sigma: float, bound: float, imax: np.ndarray) -> str:
-    if k >= 9:
-        c = (k - 9) % 3
-        return (f"1-sigma {sigma:.3g} nT/A ({sigma * imax[c]:.0f} nT at the full {imax[c]:.3g} A) exceeds "
-                f"{bound * imax[c]:.0f} nT: the field magnitude barely depends on it (a coil dipole held "
-                f"perpendicular to the field, as magnetic control does, leaves |b| unchanged to first order)")
-    unit = " nT" if k < 3 else ""
-    return f"1-sigma {sigma:.3g}{unit} exceeds the plausible {bound:.3g}{unit}: the attitude does not vary enough"
-
-
-def _consider_cov(undetermined, fixed, fixed_covariance, bound) -> np.ndarray:
-    """Covariance (18x18) of the parameters that are held rather than estimated: an undetermined one
-    may lie anywhere in its plausible range (1-sigma = ``bound``); a fixed one has the covariance it
-    came with (zero when none)."""
-    c = np.zeros((N_PARAMS, N_PARAMS))
-    for name in undetermined:
-        k = PARAM_NAMES.index(name)
-        c[k, k] = bound[k] ** 2
-    if fixed_covariance is not None and fixed:
-        idx = [PARAM_NAMES.index(name) for name in fixed]
-        sub = np.asarray(fixed_covariance, dtype=float)[np.ix_(idx, idx)]
-        c[np.ix_(idx, idx)] = np.where(np.isfinite(sub), sub, 0.0)
-    return c
-
-
-def _covariance(p, free, m, h, i, t_s, unmodelled_nT, unmodelled_time_s, consider=None):
-    """Statistical + systematic + consider covariance (18x18, NaN outside ``free``), s^2 and the
-    inlier mask.
-
-    The consider term carries the uncertainty of the parameters held fixed (``consider``, their
-    covariance) into the estimated ones: ``G C_x G^T`` with ``G = (J_f^T J_f)^-1 J_f^T J_x``, the
-    sensitivity of the least-squares estimate to an error in the held values (Tapley, Schutz & Born
-    2004, Statistical Orbit Determination, sec. 6.3, consider covariance)."""
-    r = residual_nT(p, m, h, i)
-    med, scale = np.median(r), robust_scale(r)
-    inliers = np.abs(r - med) <= OUTLIER_FENCE * max(scale, 1e-9)
-    n_free = int(free.sum())
-    dof = max(int(inliers.sum()) - n_free, 1)
-    s2 = float(np.sum(r[inliers] ** 2) / dof)
-    cov = np.full((N_PARAMS, N_PARAMS), np.nan)
-    cov_stat = cov.copy()
-    if n_free:
-        jac = _jacobian(p, m[inliers], i[inliers])[:, free]
-        norms = np.linalg.norm(jac, axis=0)
-        norms[norms == 0] = 1.0
-        jn = jac / norms
-        a_n = np.linalg.pinv(jn.T @ jn, hermitian=True)
-        c_n = s2 * a_n
-        cov_stat[np.ix_(free, free)] = c_n / np.outer(norms, norms)
-        if t_s is not None and unmodelled_nT > 0:
-            t = np.asarray(t_s, dtype=float)[inliers]
-            c_n = c_n + _smooth_error_cov(jn, t, unmodelled_nT / np.sqrt(3.0), unmodelled_time_s, a_n)
-        if consider is not None and np.any(consider[~free][:, ~free] != 0):
-            jx = _jacobian(p, m[inliers], i[inliers])[:, ~free]
-            g = a_n @ (jn.T @ jx)
-            c_n = c_n + g @ consider[np.ix_(~free, ~free)] @ g.T
-        cov[np.ix_(free, free)] = c_n / np.outer(norms, norms)
-    return cov, cov_stat, s2, inliers
-
-
-def _best_of(starts, free, m, h, i, loss, f_scale):
+def _best_of(starts, free, problem: _Problem):
     """Solve from each start; keep the solution of least robust cost (and the start it came from,
     from which refits after fixing a parameter begin)."""
     best = None
     for p0 in starts:
-        p, ok = _solve(p0, free, m, h, i, loss, f_scale)
-        z = (residual_nT(p, m, h, i) / f_scale) ** 2
+        p, ok = _solve(p0, free, problem)
+        z = (residual_nT(p, problem.m, problem.h, problem.i) / problem.f_scale) ** 2
         cost = float(np.sum(2.0 * (np.sqrt(1.0 + z) - 1.0)))  # soft_l1, scale-free comparison
         if best is None or cost < best[2]:
             best = (p, ok, cost, p0)
     return best[0], best[1], best[3]
 
 
-def _smooth_error_cov(jn: np.ndarray, t_s: np.ndarray, sigma_nT: float, tau_s: float,
-                      a_n: np.ndarray) -> np.ndarray:
-    """``A J^T Sigma_u J A`` for a smooth magnitude error (squared-exponential, RMS ``sigma_nT``,
-    time scale ``tau_s``). Rows of ``J`` are summed into bins of tau/10, over which the kernel is
-    nearly constant (at most 0.5 % change between neighbouring bins)."""
-    width = tau_s / 10.0
-    b = np.floor((t_s - t_s.min()) / width).astype(int)
-    nb = int(b.max()) + 1
-    jb = np.zeros((nb, jn.shape[1]))
-    np.add.at(jb, b, jn)
-    tb = (np.arange(nb) + 0.5) * width
-    kern = sigma_nT**2 * np.exp(-0.5 * ((tb[:, None] - tb[None, :]) / tau_s) ** 2)
-    return a_n @ (jb.T @ kern @ jb) @ a_n
-
-
-def _solve(p0, free, m, h, i, loss, f_scale):
+def _solve(p0, free, problem: _Problem):
     """Robust least squares over the free parameters; the others stay at their values in ``p0``."""
     if not np.any(free):
         return p0.copy(), True
+    m, h, i = problem.m, problem.h, problem.i
 
     def fun(x):
         p = p0.copy()
@@ -477,9 +336,9 @@ def _solve(p0, free, m, h, i, loss, f_scale):
     def jac(x):
         p = p0.copy()
         p[free] = x
-        return _jacobian(p, m, i)[:, free]
+        return jacobian(p, m, i)[:, free]
 
-    res = least_squares(fun, p0[free], jac=jac, loss=loss, f_scale=f_scale, x_scale="jac",
+    res = least_squares(fun, p0[free], jac=jac, loss=problem.loss, f_scale=problem.f_scale, x_scale="jac",
                         method="trf", xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=200)
     p = p0.copy()
     p[free] = res.x

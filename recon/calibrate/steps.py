@@ -2,8 +2,8 @@
 
 Between two consecutive magnetometer samples ``k`` and ``k+1`` (sensor axes, interval ``dt_k``) the
 satellite turns by the gyro's rate ``w`` and the true field's components turn with it. With
-``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon._twostep`) and ``R_k = exp(-[w x] dt_k)`` (the change
-of the components of a fixed vector seen from a frame turning at ``w``;
+``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon.calibrate.model`) and ``R_k = exp(-[w x] dt_k)``
+(the change of the components of a fixed vector seen from a frame turning at ``w``;
 ``Rotation.from_rotvec(-w dt)``), the rotation-compensated difference is
 
     d_k = m_{k+1} - R_k m_k
@@ -58,7 +58,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from ..core import robust_scale
-from .linear import SYM_INDEX
+from .model import AXES, SYM_INDEX, crosstalk_name
 
 __all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
 
@@ -69,6 +69,8 @@ MIN_STEP_FRACTION = 0.05
 MIN_STEPS = 5
 # A log interval longer than this multiple of the median interval is a gap: no pair spans it.
 GAP_FACTOR = 1.5
+# Pairs whose residual lies more than this many robust sigma from the median are dropped (common
+# practice, no source; the 1.4826 MAD scale: Rousseeuw & Croux 1993).
 OUTLIER_FENCE = 5.0
 
 
@@ -100,7 +102,31 @@ class StepFit:
     n_rejected: int
 
 
-_AX = ("x", "y", "z")
+@dataclass(frozen=True)
+class _Pairs:
+    """Pairs of kept samples ``(first, first + 1)`` with no log gap and a gyro rate between them.
+
+    ``t_s`` (n,) s, ``m_nT`` (n, 3) nT sensor axes and ``i_A`` (n, 3) A are the kept samples (finite,
+    not read by the controller); ``first`` (P,) indexes each pair's first sample, ``dt_s`` (P,) s
+    its interval."""
+
+    t_s: np.ndarray
+    m_nT: np.ndarray
+    i_A: np.ndarray
+    first: np.ndarray
+    dt_s: np.ndarray
+
+
+@dataclass(frozen=True)
+class _Design:
+    """The stacked regression of the differences: ``x`` (P, 3, p) for K (the columns ``cols_k``,
+    (sensor axis, coil)), bias, soft iron and gyro bias; ``y`` (P, 3) nT; ``trend`` (P, 3, 3), the
+    field-rate columns of each pair's segment."""
+
+    x: np.ndarray
+    y: np.ndarray
+    trend: np.ndarray
+    cols_k: list[tuple[int, int]]
 
 
 def _interp_rate(t_query, t_gyro, w_gyro):
@@ -144,10 +170,38 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     tg = np.asarray(gyro_t_s, dtype=float)
     wg = np.asarray(w_sensor_rad_s, dtype=float)
     imax = np.asarray(max_current_A, dtype=float)
-
-    ok = np.all(np.isfinite(m), axis=1) & np.all(np.isfinite(i), axis=1)
     gyro_ok = np.all(np.isfinite(wg), axis=1)
     tg, wg = tg[gyro_ok], wg[gyro_ok]
+
+    pairs = _pairs(t, m, i, tg, skip)
+    n_steps, coils, undetermined = _steps_per_coil(pairs, imax, min_step_fraction, min_steps)
+    if not np.any(coils):
+        nan33 = np.full((3, 3), np.nan)
+        return StepFit(nan33, nan33.copy(), np.full((9, 9), np.nan), undetermined, n_steps, np.nan,
+                       len(pairs.first), 0)
+    r_mat, a_next, seg = _turns(pairs, tg, wg, block_s)
+    design = _design(pairs, r_mat, a_next, coils)
+    theta, rss, xt, use = _robust_fit(design, seg)
+    cov_all, sigma2 = _sandwich_covariance(xt, r_mat, pairs.first, use, len(pairs.t_s), rss, seg)
+
+    cols_k = design.cols_k
+    n_k = len(cols_k)
+    k_est = np.full((3, 3), np.nan)
+    cov = np.full((9, 9), np.nan)
+    flat = [3 * j + c for j, c in cols_k]
+    for col, (j, c) in enumerate(cols_k):
+        k_est[j, c] = theta[col]
+    cov[np.ix_(flat, flat)] = cov_all[:n_k, :n_k]
+    sig = np.full((3, 3), np.nan)
+    sig.ravel()[flat] = np.sqrt(np.diag(cov_all)[:n_k])
+    return StepFit(k_est, sig, cov, undetermined, n_steps, float(np.sqrt(sigma2)), len(pairs.first),
+                   int((~use).sum()))
+
+
+def _pairs(t, m, i, tg, skip) -> _Pairs:
+    """Consecutive kept samples form a pair unless the log has a gap between them or the gyro has
+    none at the pair's middle (``tg``: the valid gyro times)."""
+    ok = np.all(np.isfinite(m), axis=1) & np.all(np.isfinite(i), axis=1)
     dt_all = np.diff(t)
     nominal_dt = np.median(dt_all[dt_all > 0]) if np.any(dt_all > 0) else np.nan
     gap_count = np.r_[0, np.cumsum(dt_all > GAP_FACTOR * nominal_dt)]
@@ -156,7 +210,6 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     idx = np.flatnonzero(ok)
     t, m, i = t[idx], m[idx], i[idx]
     dt = np.diff(t)
-    # consecutive kept samples form a pair unless the log has a gap between them
     pair = (dt > 0) & (gap_count[idx[1:]] == gap_count[idx[:-1]])
     if len(tg) >= 2:
         tm = 0.5 * (t[1:] + t[:-1])
@@ -167,27 +220,34 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
         pair &= (tg[j] - tg[j - 1]) <= GAP_FACTOR * max(gyro_dt, float(np.median(dt)) if len(dt) else 0.0)
     else:
         pair[:] = False
-    undetermined: dict[str, str] = {}
-    k0 = np.flatnonzero(pair)  # pairs (k0, k0+1)
+    k0 = np.flatnonzero(pair)
+    return _Pairs(t, m, i, k0, dt[k0])
+
+
+def _steps_per_coil(pairs: _Pairs, imax, min_step_fraction, min_steps):
+    """Steps per coil (3,), which coils have enough of them (3,) bool, and the reasons for the
+    crosstalk columns of the others (name -> reason)."""
+    k0, i = pairs.first, pairs.i_A
     di = i[k0 + 1] - i[k0] if len(k0) else np.zeros((0, 3))
     n_steps = np.sum(np.abs(di) >= min_step_fraction * imax, axis=0)
     coils = n_steps >= min_steps
+    undetermined: dict[str, str] = {}
     for c in np.flatnonzero(~coils):
-        why = (f"coil {_AX[c]} current steps by at least {100 * min_step_fraction:g} % of its range "
+        why = (f"coil {AXES[c]} current steps by at least {100 * min_step_fraction:g} % of its range "
                f"{n_steps[c]} times between consecutive samples with a gyro rate (at least {min_steps} needed)")
         for j in range(3):
-            undetermined[f"crosstalk_{_AX[j]}_coil_{_AX[c]}"] = why
-    nan33 = np.full((3, 3), np.nan)
-    if not np.any(coils):
-        return StepFit(nan33, nan33.copy(), np.full((9, 9), np.nan), undetermined, n_steps, np.nan,
-                       len(k0), 0)
+            undetermined[crosstalk_name(j, c)] = why
+    return n_steps, coils, undetermined
 
+
+def _turns(pairs: _Pairs, tg, wg, block_s):
+    """Each pair's turn ``R_k`` (P, 3, 3); the attitude of the sensor frame relative to a frame fixed
+    in inertial space after it, ``A_{k+1} = R_k A_k`` (P, 3, 3), restarted at gaps and at block
+    starts; and the segment (P,) each pair belongs to."""
+    t, k0 = pairs.t_s, pairs.first
     w = _interp_rate(0.5 * (t[k0] + t[k0 + 1]), tg, wg)
-    rot = Rotation.from_rotvec(-w * dt[k0][:, None])
+    rot = Rotation.from_rotvec(-w * pairs.dt_s[:, None])
     r_mat = rot.as_matrix()  # (P, 3, 3)
-
-    # Attitude of the sensor frame relative to a frame fixed in inertial space, restarted at gaps
-    # and at block starts: A_{k+1} = R_k A_k.
     block = np.floor((t[k0] - t[0]) / block_s).astype(int)
     seg = np.cumsum(np.r_[0, (np.diff(k0) != 1) | (np.diff(block) != 0)])  # new segment at gaps/blocks
     a_next = np.empty_like(r_mat)
@@ -197,30 +257,46 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
             acc = np.eye(3)
         acc = r_mat[p] @ acc
         a_next[p] = acc
-    n_seg = int(seg[-1]) + 1
+    return r_mat, a_next, seg
 
+
+def _design(pairs: _Pairs, r_mat, a_next, coils) -> _Design:
+    """The regression of ``d_k = m_{k+1} - R_k m_k`` on K (the coils with steps), the bias, the soft
+    iron and the gyro bias; the field rates enter as the ``trend`` columns (see the module notes)."""
+    k0, m, i, dt = pairs.first, pairs.m_nT, pairs.i_A, pairs.dt_s
+    # columns: K (one per (sensor axis, coil) of a coil with steps), bias (3), soft iron (6, in the
+    # order of SYM_INDEX), gyro bias (3); the field rates are projected out
     cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
-    n_k = len(cols_k)
-    n_par = n_k + 3 + 6 + 3  # K, bias, soft iron, gyro bias; the field rates are projected out
+    bias_col = len(cols_k)
+    soft_col = bias_col + 3
+    gyro_col = soft_col + 6
+    n_par = gyro_col + 3
     n_p = len(k0)
     x = np.zeros((n_p, 3, n_par))
     eye = np.eye(3)
     for col, (j, c) in enumerate(cols_k):
         x[:, :, col] = i[k0 + 1, c][:, None] * eye[j] - i[k0, c][:, None] * r_mat[:, :, j]
-    x[:, :, n_k:n_k + 3] = eye - r_mat
+    x[:, :, bias_col:bias_col + 3] = eye - r_mat
     mk = m[k0]
     rm = np.einsum("pab,pb->pa", r_mat, mk)
     for n, (a, b) in enumerate(SYM_INDEX):
         xi = np.zeros((3, 3))
         xi[a, b] = xi[b, a] = 1.0
-        x[:, :, n_k + 3 + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
+        x[:, :, soft_col + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
     # gyro bias: -R_k [m_k x] dt_k, column e of [m x] is m x e_e
     for e in range(3):
-        x[:, :, n_k + 9 + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[k0][:, None]
-    trend = a_next * dt[k0][:, None, None]  # (P, 3, 3): the field-rate columns of each pair's segment
+        x[:, :, gyro_col + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[:, None]
+    trend = a_next * dt[:, None, None]  # (P, 3, 3): the field-rate columns of each pair's segment
     y = m[k0 + 1] - rm
+    return _Design(x, y, trend, cols_k)
 
-    use = np.ones(n_p, bool)
+
+def _robust_fit(design: _Design, seg):
+    """Least squares, then again without the pairs beyond the outlier fence (at most twice).
+    Returns (theta, RSS, the design with the field-rate columns projected out, the pairs used)."""
+    x, y, trend = design.x, design.y, design.trend
+    n_seg = int(seg[-1]) + 1
+    use = np.ones(len(x), bool)
     for _ in range(2):
         theta, rss, xt, yt = _ols_segments(x, y, trend, seg, n_seg, use)
         r_norm = np.linalg.norm(yt - xt @ theta, axis=1)
@@ -230,11 +306,15 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
             break
         use = new_use
     theta, rss, xt, _ = _ols_segments(x, y, trend, seg, n_seg, use)
+    return theta, rss, xt, use
 
-    # Sandwich covariance with the MA(1) noise of the differences: Z = D^T X (X with the field-rate
-    # columns projected out, which leaves the estimate and its covariance unchanged: Frisch-Waugh-Lovell).
+
+def _sandwich_covariance(xt, r_mat, k0, use, n_samples, rss, seg):
+    """Covariance of theta (p, p) and the noise variance sigma^2 (nT^2) from the sandwich with the
+    MA(1) noise of the differences: Z = D^T X (X with the field-rate columns projected out, which
+    leaves the estimate and its covariance unchanged: Frisch-Waugh-Lovell)."""
+    n_par = xt.shape[2]
     xu, ru, ku = xt[use], r_mat[use], k0[use]
-    n_samples = len(t)
     z = np.zeros((n_samples, 3, n_par))
     np.add.at(z, ku + 1, xu)
     np.add.at(z, ku, -np.einsum("pba,pbi->pai", ru, xu))
@@ -247,18 +327,7 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
     n_used_seg = len(np.unique(seg[use]))
     dof = 6.0 * len(ku) - float(np.trace(xx_inv @ zz)) - 3.0 * n_used_seg
     sigma2 = rss / max(dof, 1.0)
-    cov_all = sigma2 * xx_inv @ zz @ xx_inv
-
-    k_est = np.full((3, 3), np.nan)
-    cov = np.full((9, 9), np.nan)
-    flat = [3 * j + c for j, c in cols_k]
-    for col, (j, c) in enumerate(cols_k):
-        k_est[j, c] = theta[col]
-    cov[np.ix_(flat, flat)] = cov_all[:n_k, :n_k]
-    sig = np.full((3, 3), np.nan)
-    sig.ravel()[flat] = np.sqrt(np.diag(cov_all)[:n_k])
-    return StepFit(k_est, sig, cov, undetermined, n_steps, float(np.sqrt(sigma2)), n_p,
-                   int((~use).sum()))
+    return sigma2 * xx_inv @ zz @ xx_inv, sigma2
 
 
 def _ols_segments(x, y, trend, seg, n_seg, use):

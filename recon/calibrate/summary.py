@@ -6,9 +6,10 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["summary_block", "format_crosstalk_table", "contamination_nT"]
+from .agreement import CrosstalkAgreement
+from .model import AXES
 
-_AX = ("x", "y", "z")
+__all__ = ["summary_block", "agreement_block", "format_crosstalk_table", "contamination_nT"]
 
 
 def _val(x) -> float | None:
@@ -45,7 +46,7 @@ def summary_block(cal) -> dict[str, Any]:
         "crosstalk_step_nT_per_A_sigma": _list(cal.crosstalk_step_nT_per_A_sigma),
         "crosstalk_combined_nT_per_A": _list(cal.crosstalk_combined_nT_per_A),
         "crosstalk_combined_nT_per_A_sigma": _list(cal.crosstalk_combined_nT_per_A_sigma),
-        "crosstalk_agreement": dict(cal.agreement),
+        "crosstalk_agreement": agreement_block(cal.agreement),
         "contamination_full_current_nT": (None if imax is None
                                           else _list(contamination_nT(cal.crosstalk_combined_nT_per_A, imax))),
         "residual_rms_nT": {"before": _val(cal.residual_rms_nT.get("before")),
@@ -59,6 +60,13 @@ def summary_block(cal) -> dict[str, Any]:
     return out
 
 
+def agreement_block(agreement: CrosstalkAgreement) -> dict[str, Any]:
+    """The ``crosstalk_agreement`` entry of the calibration block (values not compared are None)."""
+    return {"chi2": agreement.chi2, "dof": agreement.dof, "p_value": agreement.p_value, "agree": agreement.agree,
+            "z": _list(agreement.z), "elements_beyond_3_sigma": list(agreement.elements_beyond_3_sigma),
+            "test": agreement.test}
+
+
 def _cell(v, s, width=18) -> str:
     if v is None or not np.isfinite(v):
         return "undetermined".rjust(width)
@@ -67,10 +75,10 @@ def _cell(v, s, width=18) -> str:
 
 
 def _k_table(k, k_s, imax) -> list[str]:
-    lines = ["          " + "".join(f"coil {a}".rjust(18) for a in _AX) + "  at full current".rjust(18)]
+    lines = ["          " + "".join(f"coil {a}".rjust(18) for a in AXES) + "  at full current".rjust(18)]
     cont = contamination_nT(k, imax) if imax is not None else np.full(3, np.nan)
     for j in range(3):
-        row = f"sensor {_AX[j]}  " + "".join(_cell(k[j, c], k_s[j, c]) for c in range(3))
+        row = f"sensor {AXES[j]}  " + "".join(_cell(k[j, c], k_s[j, c]) for c in range(3))
         row += ("undetermined" if not np.isfinite(cont[j]) else f"{cont[j]:.0f} nT").rjust(18)
         lines.append(row)
     return lines
@@ -109,14 +117,14 @@ def format_crosstalk_table(cal, max_current_A=None) -> str:
         out += _k_table(cal.crosstalk_combined_nT_per_A, cal.crosstalk_combined_nT_per_A_sigma, imax)
         out.append("")
         ag = cal.agreement
-        if ag.get("agree") is None:
+        if ag.agree is None:
             out.append("agreement of the two estimates: not tested (no element determined by both)")
         else:
-            verdict = "agree" if ag["agree"] else "DISAGREE"
-            out.append(f"agreement: chi-square {ag['chi2']:.1f} for {ag['dof']} elements, p = {ag['p_value']:.3g}: "
+            verdict = "agree" if ag.agree else "DISAGREE"
+            out.append(f"agreement: chi-square {ag.chi2:.1f} for {ag.dof} elements, p = {ag.p_value:.3g}: "
                        f"the two estimates {verdict}"
-                       + (f" (beyond 3 sigma: {', '.join(ag['elements_beyond_3_sigma'])})"
-                          if ag["elements_beyond_3_sigma"] else ""))
+                       + (f" (beyond 3 sigma: {', '.join(ag.elements_beyond_3_sigma)})"
+                          if ag.elements_beyond_3_sigma else ""))
     r = cal.residual_rms_nT
     if r.get("before") is not None:
         out.append(f"|b| - |b_ref| RMS: before {r['before']:.0f} nT, after {r['after']:.0f} nT "
