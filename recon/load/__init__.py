@@ -5,19 +5,16 @@ reason. ``timescales`` holds the only conversions of GPS seconds, UNIX seconds, 
 ticks to UTC.
 """
 
-from .logs import (
+from .ledger import (
     LEDGER_COLUMNS,
     REASON_BAD_TIME,
     REASON_MISSING,
     REASON_NON_FINITE,
     REASON_NON_NUMERIC,
-    LoadedPass,
-    SensorLog,
     empty_ledger,
     ledger_frame,
-    load_log,
-    load_pass,
 )
+from .logs import LoadedPass, SensorLog, load_log, load_pass
 from .timescales import (
     EARLIEST_UTC,
     LATEST_UTC,

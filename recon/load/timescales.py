@@ -20,6 +20,7 @@ import warnings
 
 import erfa
 import numpy as np
+import pandas as pd
 from numpy.lib.stride_tricks import sliding_window_view
 
 from ..core import GPS_EPOCH_UTC, NS_PER_S
@@ -76,8 +77,6 @@ def iso_to_utc(text) -> np.ndarray:
     -------
     (N,) datetime64[ns], UTC
     """
-    import pandas as pd
-
     s = pd.Series(np.asarray(text, dtype=object), dtype=object)
     dt = pd.to_datetime(s, format="ISO8601", utc=True, errors="coerce")
     naive = dt.dt.tz_localize(None).to_numpy()  # resolution chosen by pandas (s ... ns)
