@@ -14,7 +14,7 @@ from .ledger import (
     empty_ledger,
     ledger_frame,
 )
-from .logs import LoadedPass, SensorLog, load_log, load_pass
+from .logs import LoadedPass, SensorLog, amps_per_file_unit, load_log, load_pass
 from .timescales import (
     EARLIEST_UTC,
     LATEST_UTC,
@@ -31,6 +31,7 @@ __all__ = [
     "LoadedPass",
     "load_pass",
     "load_log",
+    "amps_per_file_unit",
     "ledger_frame",
     "empty_ledger",
     "REASON_BAD_TIME",

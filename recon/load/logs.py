@@ -32,7 +32,7 @@ from .columns import CODE_NON_FINITE, CODE_REASON, RowFaults, parse_times, parse
 from .csvscan import Scan, read_log_bytes, scan_bytes
 from .ledger import empty_ledger, ledger_frame
 
-__all__ = ["SensorLog", "LoadedPass", "load_pass", "load_log"]
+__all__ = ["SensorLog", "LoadedPass", "load_pass", "load_log", "amps_per_file_unit"]
 
 @dataclass(frozen=True)
 class SensorLog:
@@ -211,12 +211,17 @@ def _label(path: Path, mission: Mission | None) -> str:
     return str(path) if rel.startswith("..") else rel.replace(os.sep, "/")
 
 
+def amps_per_file_unit(spec: CoilSpec) -> np.ndarray:
+    """(3,) A per file unit for each coil: ``max_current_A`` for a "duty" log, else the unit factor."""
+    if spec.unit == "duty":
+        return np.asarray(spec.max_current_A, dtype=float)
+    return np.full(3, A_PER_UNIT[spec.unit])
+
+
 def _to_internal(file_unit: np.ndarray, spec: SensorSpec | CoilSpec, name: str) -> np.ndarray:
     """File unit, sensor axes -> internal unit, body axes (coils: A per coil, no rotation)."""
     if name == "coils":
-        if spec.unit == "duty":
-            return file_unit * np.asarray(spec.max_current_A, dtype=float)[None, :]
-        return file_unit * A_PER_UNIT[spec.unit]
+        return file_unit * amps_per_file_unit(spec)[None, :]
     factor = NT_PER_UNIT[spec.unit] if name == "magnetometer" else RAD_S_PER_UNIT[spec.unit]
     m = np.asarray(spec.sensor_to_body, dtype=float) * factor
     # v_body = M @ v_sensor row by row, written out: a (N, 3) x (3, 3) product through BLAS pays
