@@ -1,10 +1,12 @@
 """Load the logs of one pass: read each CSV, map its columns, convert units and time bases to UTC.
 
 Every input line is either a row of a :class:`SensorLog` or a ledger row naming its file, line and
-reason. ``timescales`` holds the only conversions of GPS seconds, UNIX seconds, ISO text and onboard
-ticks to UTC.
+reason. ``timescales`` holds the only conversions of GPS seconds, UNIX seconds, ISO text, onboard
+ticks and TAI, TT or GPS calendar labels to UTC; ``column_times`` the one conversion of a time
+column as a mission file's time spec describes it.
 """
 
+from .columns import column_times, expected_time_text
 from .ledger import (
     LEDGER_COLUMNS,
     REASON_BAD_TIME,
@@ -21,6 +23,7 @@ from .timescales import (
     gps_seconds_to_utc,
     iso_to_utc,
     ticks_to_utc,
+    time_system_to_utc_ns,
     unix_seconds_to_utc,
     unwrap_ticks,
 )
@@ -45,4 +48,7 @@ __all__ = [
     "gps_seconds_to_utc",
     "unwrap_ticks",
     "ticks_to_utc",
+    "time_system_to_utc_ns",
+    "column_times",
+    "expected_time_text",
 ]

@@ -26,7 +26,7 @@ from .ledger import REASON_BAD_TIME, REASON_MISSING, REASON_NON_FINITE, REASON_N
 __all__ = [
     "CODE_OK", "CODE_MISSING", "CODE_NON_NUMERIC", "CODE_NON_FINITE", "CODE_BAD_TIME", "CODE_REASON",
     "Fields", "RowFaults", "column_index", "read_columns", "read_fields", "numbers", "column_times",
-    "parse_values", "parse_times",
+    "expected_time_text", "parse_values", "parse_times",
 ]
 
 # Why a row cannot be used, as a small code per row (0: usable); the ledger gets the reason text
@@ -188,7 +188,8 @@ def _shown(value, width: int = 32) -> str:
     return repr(text if len(text) <= width else text[:width] + "...")
 
 
-def _time_detail(spec: TimeSpec) -> str:
+def expected_time_text(spec: TimeSpec) -> str:
+    """What a readable time of this format looks like, for error and ledger texts."""
     return {"iso": "an ISO 8601 UTC time", "unix": "UNIX seconds", "gps": "GPS seconds >= 0",
             "ticks": "a whole tick count" + (f" below 2**{spec.rollover_bits}" if spec.rollover_bits else ""),
             }[spec.format]
@@ -228,6 +229,6 @@ def parse_times(fields: Fields, spec: TimeSpec) -> tuple[np.ndarray, np.ndarray,
     else:
         shown = list(fields.cols[fields.i_time][bad_t])
     code[bad_t] = CODE_BAD_TIME
-    detail = {int(i): f"column {spec.column!r}: expected {_time_detail(spec)}, got {_shown(text)}"
+    detail = {int(i): f"column {spec.column!r}: expected {expected_time_text(spec)}, got {_shown(text)}"
               for i, text in zip(bad_t, shown, strict=True)}
     return t, wraps, RowFaults(code, detail)
