@@ -9,10 +9,10 @@ import numpy as np
 import ppigrf
 import pytest
 
+from recon import orbit
 from recon.config import OrbitSpec
 from recon.core import InputError, frames
 from recon.field import along_orbit as field
-from recon.orbit import sources as orbit
 
 DEMO_TLE = ("1 99990U 26001A   26195.37500000  .00001200  00000-0  61000-4 0  9997",
             "2 99990  97.4100  83.2000 0012000 141.0000 219.2000 15.19000000 28506")
@@ -199,7 +199,7 @@ def test_reference_field_from_a_mission_file(mission_dir):
 def test_nan_orbit_rows_stay_nan(tmp_path):
     st = orbit.orbit_from_tle(*DEMO_TLE, T0 + (np.arange(0, 3601, 60) * 1e9).astype("timedelta64[ns]"))
     keep = np.r_[0:20, 40:61]  # a 20-minute hole between two segments
-    from recon.orbit.oem import write_oem
+    from recon.orbit import write_oem
 
     lines = []
     for part in (keep[:20], keep[20:]):

@@ -9,10 +9,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from recon import orbit
 from recon.config import OrbitSpec, PositionsSpec, TimeSpec
 from recon.core import InputError, frames
-from recon.orbit import sources as orbit
-from recon.orbit.oem import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
+from recon.orbit import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
 
 AUTH = Path(__file__).parent / "authorities"
 
