@@ -34,7 +34,7 @@ def _log_times(values: pd.Series, spec: TimeSpec, path: Path) -> np.ndarray:
     bad = np.isnat(t)
     if np.any(bad):
         i = int(np.argmax(bad))
-        raise InputError(f"expected {expected_time_text(spec)} in column {spec.column!r}, got {values.iloc[i]!r}",
+        raise InputError(f"expected {expected_time_text(spec)} in column {spec.column!r}, got {str(values.iloc[i])!r}",
                          path, line=i + 2, key=spec.column)
     return t
 
