@@ -3,7 +3,7 @@
 Every line after the header is accounted for. A line that cannot be used (blank, not text, wrong
 number of fields, unreadable time, a value that is not a finite number) does not stop the load: it
 becomes a ledger row with its file, 1-based line number (the header is line 1) and reason, action
-"dropped". Only problems with a whole file raise :class:`recon.errors.InputError`: missing or
+"dropped". Only problems with a whole file raise :class:`recon.core.InputError`: missing or
 unreadable, empty, no header, a configured column absent from the header, no usable data row.
 
 Units: values are converted once, here, into recon's internal units (nT, rad/s, A) and rotated from

@@ -64,7 +64,7 @@ class OrbitState:
 # ------------------------------------------------------------------------------------- frames
 def itrf_to_gcrf_matrix_fast(time_utc: np.ndarray, dut1_s: float = 0.0,
                              node_step_s: float = CIO_NODE_STEP_s) -> np.ndarray:
-    """Matrices M (N, 3, 3) with r_gcrf = M @ r_itrf, as :func:`recon.frames.itrf_to_gcrf_matrix`.
+    """Matrices M (N, 3, 3) with r_gcrf = M @ r_itrf, as :func:`recon.core.frames.itrf_to_gcrf_matrix`.
 
     The IAU 2006/2000A celestial-to-intermediate matrix (pyerfa ``c2i06a``) changes slowly, so it is
     evaluated on nodes ``node_step_s`` apart and interpolated linearly element by element; the Earth
