@@ -14,9 +14,8 @@ import time
 
 import numpy as np
 
+from recon import field, orbit
 from recon.config import OrbitSpec
-from recon.field import along_orbit as field
-from recon.orbit import sources as orbit
 
 DEMO_TLE = ("1 99990U 26001A   26195.37500000  .00001200  00000-0  61000-4 0  9997",
             "2 99990  97.4100  83.2000 0012000 141.0000 219.2000 15.19000000 28506")

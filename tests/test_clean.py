@@ -11,8 +11,7 @@ import pytest
 from scipy.spatial.transform import Rotation
 from scipy.stats import norm
 
-from recon.clean import clean_pass, find_gaps, format_inspect_table, write_ledger
-from recon.clean import hampel as _hampel
+from recon.clean import clean_pass, find_gaps, format_inspect_table, hampel, spikes, write_ledger
 from recon.config import load_mission
 from recon.core import InputError
 from recon.load import load_pass
@@ -103,18 +102,18 @@ def test_numba_moving_median_mad_matches_numpy_reference():
     x = np.round(rng.normal(0, 5, 997), 1)  # ties included
     for seg in (np.array([0]), np.array([0, 1, 2, 50, 51, 400, 995])):
         for sym in (False, True):
-            lo, hi = _hampel.window_bounds(seg, x.size, 5, symmetric=sym)
-            fast = _hampel.moving_median_mad(x, lo, hi)
-            ref = _hampel.moving_median_mad_reference(x, lo, hi)
+            lo, hi = hampel.window_bounds(seg, x.size, 5, symmetric=sym)
+            fast = hampel.moving_median_mad(x, lo, hi)
+            ref = hampel.moving_median_mad_reference(x, lo, hi)
             np.testing.assert_array_equal(fast[0], ref[0])
             np.testing.assert_array_equal(fast[1], ref[1])
 
 
 def test_windows_stay_inside_segments_and_symmetric_ones_shrink_on_both_sides():
-    lo, hi = _hampel.window_bounds(np.array([0, 4]), 12, 2)
+    lo, hi = hampel.window_bounds(np.array([0, 4]), 12, 2)
     np.testing.assert_array_equal(lo, [0, 0, 0, 1, 4, 4, 4, 5, 6, 7, 8, 9])
     np.testing.assert_array_equal(hi, [2, 3, 3, 3, 6, 7, 8, 9, 10, 11, 11, 11])
-    lo, hi = _hampel.window_bounds(np.array([0, 4]), 12, 2, symmetric=True)
+    lo, hi = hampel.window_bounds(np.array([0, 4]), 12, 2, symmetric=True)
     np.testing.assert_array_equal(hi - np.arange(12), np.arange(12) - lo)
     np.testing.assert_array_equal(hi - lo, [0, 2, 2, 0, 0, 2, 4, 4, 4, 4, 2, 0])
 
@@ -122,9 +121,9 @@ def test_windows_stay_inside_segments_and_symmetric_ones_shrink_on_both_sides():
 def test_threshold_is_a_bonferroni_bound_never_below_hampel_3():
     # two-sided Gaussian tail at t, times the number of tests, equals the false-alarm budget
     for n in (10, 1_000, 1_000_000):
-        t = _hampel.hampel_threshold(n, 1e-3)
+        t = hampel.hampel_threshold(n, 1e-3)
         assert t > 3.0 and 2 * norm.sf(t) * n == pytest.approx(1e-3, rel=1e-9)
-    assert _hampel.hampel_threshold(1, 0.5) == 3.0  # the Bonferroni bound would be 0.67
+    assert hampel.hampel_threshold(1, 0.5) == 3.0  # the Bonferroni bound would be 0.67
 
 
 def test_noise_sigma_from_second_differences_ignores_trend_and_spikes():
@@ -133,7 +132,7 @@ def test_noise_sigma_from_second_differences_ignores_trend_and_spikes():
     x = 30.0 * t + 1e-3 * t**2 + rng.normal(0, 50, t.size)
     x[::500] += 1e5
     # 20,000 samples: the MAD-based estimate has a relative standard error near 1 %; 5 % is 5 sigma
-    assert _hampel.noise_sigma(x, np.array([0])) == pytest.approx(50.0, rel=0.05)
+    assert hampel.noise_sigma(x, np.array([0])) == pytest.approx(50.0, rel=0.05)
 
 
 @pytest.mark.parametrize("fs, rate", [(10.0, 20.0), (10.0, 2.0), (1.0, 20.0), (0.5, 20.0), (10.0, 0.0)])
@@ -142,7 +141,7 @@ def test_tumbling_field_without_spikes_loses_no_sample(fs, rate):
     # samples at 1 Hz, and none of it may be called a spike
     for seed in range(2):
         t, b = tumbling_field(8000, fs, rate, 100.0, seed)
-        f = _hampel.spike_flags(b, t, np.array([0]), np.full(3, 10.0))
+        f = spikes.spike_flags(b, t, np.array([0]), np.full(3, 10.0))
         assert not f.any.any(), (fs, rate, seed, np.flatnonzero(f.any))
 
 
@@ -150,7 +149,7 @@ def test_spikes_on_a_field_tumbling_at_20_deg_s_are_found_at_10_hz():
     for seed in range(3):
         t, b = tumbling_field(6000, 10.0, 20.0, 100.0, seed)
         rows = add_spikes(b, 20, 20_000.0, seed)
-        f = _hampel.spike_flags(b, t, np.array([0]), np.full(3, 10.0))
+        f = spikes.spike_flags(b, t, np.array([0]), np.full(3, 10.0))
         np.testing.assert_array_equal(np.flatnonzero(f.any), rows)
 
 
@@ -162,7 +161,7 @@ def test_spikes_at_1_hz_and_20_deg_s_mostly_found_and_no_good_sample_dropped():
     for seed in range(3):
         t, b = tumbling_field(6000, 1.0, 20.0, 100.0, seed)
         rows = add_spikes(b, 20, 20_000.0, seed)
-        flagged = np.flatnonzero(_hampel.spike_flags(b, t, np.array([0]), np.full(3, 10.0)).any)
+        flagged = np.flatnonzero(spikes.spike_flags(b, t, np.array([0]), np.full(3, 10.0)).any)
         assert set(flagged) <= set(rows)
         found += len(flagged)
     assert found >= 50
@@ -176,7 +175,7 @@ def test_spike_next_to_a_genuine_step_does_not_take_the_step_with_it():
     x += 30000.0 + rng.normal(0, 50, (n, 3))
     x[99, 0] += 20_000.0  # spike just before the step at 100
     x[201, 1] -= 20_000.0  # spike just after the step at 200
-    f = _hampel.spike_flags(x, t, np.array([0]), np.full(3, 1.0))
+    f = spikes.spike_flags(x, t, np.array([0]), np.full(3, 1.0))
     np.testing.assert_array_equal(np.flatnonzero(f.any), [99, 201])
 
 
@@ -388,7 +387,7 @@ def test_simulated_pass_with_every_data_fault(tmp_path, seed, overrides):
 
 
 def test_gyro_angle_random_walk_becomes_per_sample_noise(tmp_path):
-    from recon.clean.logs import _sample_noise
+    from recon.clean.spikes import sample_noise
 
     gyro = """
 [gyro]
@@ -406,5 +405,5 @@ noise = 0.004
     m = load_mission(tmp_path / "mission.toml")
     log = load_pass(m).gyro
     # IEEE Std 952-1997: Allan deviation N / sqrt(tau) for angle random walk; tau = 1 / 20 s
-    assert _sample_noise(log, m.gyro, np.arange(40)) == pytest.approx(0.004 * np.sqrt(20.0), rel=1e-9)
-    assert _sample_noise(load_pass(m).magnetometer, m.magnetometer, np.arange(40)) is None
+    assert sample_noise(log, m.gyro, np.arange(40)) == pytest.approx(0.004 * np.sqrt(20.0), rel=1e-9)
+    assert sample_noise(load_pass(m).magnetometer, m.magnetometer, np.arange(40)) is None

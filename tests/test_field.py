@@ -9,10 +9,10 @@ import numpy as np
 import ppigrf
 import pytest
 
+from recon import field, orbit
 from recon.config import OrbitSpec
 from recon.core import InputError, frames
-from recon.field import along_orbit as field
-from recon.orbit import sources as orbit
+from recon.field.along_orbit import dense_orbit
 
 DEMO_TLE = ("1 99990U 26001A   26195.37500000  .00001200  00000-0  61000-4 0  9997",
             "2 99990  97.4100  83.2000 0012000 141.0000 219.2000 15.19000000 28506")
@@ -168,11 +168,11 @@ def test_dense_orbit_path_is_used_and_matches_sgp4(leo_pass):
     """The node path applies only when many samples share a node; then it reproduces SGP4 to < 0.1 m."""
     spec = OrbitSpec(tle=DEMO_TLE)
     t = leo_pass.time_utc
-    dense = field._orbit_dense(spec, t, 0.0, None)
+    dense = dense_orbit(spec, t, 0.0, None)
     assert dense is not None
     err_m = 1e3 * np.linalg.norm(dense.r_gcrf_km - leo_pass.r_gcrf_km, axis=1).max()
     assert err_m < 0.1, err_m
-    assert field._orbit_dense(spec, t[::200], 0.0, None) is None  # sparse samples: evaluated directly
+    assert dense_orbit(spec, t[::200], 0.0, None) is None  # sparse samples: evaluated directly
 
 
 def test_gcrf_is_the_rotated_itrf_field(leo_pass):
@@ -199,7 +199,7 @@ def test_reference_field_from_a_mission_file(mission_dir):
 def test_nan_orbit_rows_stay_nan(tmp_path):
     st = orbit.orbit_from_tle(*DEMO_TLE, T0 + (np.arange(0, 3601, 60) * 1e9).astype("timedelta64[ns]"))
     keep = np.r_[0:20, 40:61]  # a 20-minute hole between two segments
-    from recon.orbit.oem import write_oem
+    from recon.orbit import write_oem
 
     lines = []
     for part in (keep[:20], keep[20:]):

@@ -9,10 +9,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from recon import orbit
 from recon.config import OrbitSpec, PositionsSpec, TimeSpec
 from recon.core import InputError, frames
-from recon.orbit import sources as orbit
-from recon.orbit.oem import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
+from recon.orbit import hermite_interpolate, lagrange_interpolate, parse_ccsds_time, read_oem, write_oem
 
 AUTH = Path(__file__).parent / "authorities"
 
@@ -414,6 +414,41 @@ def test_position_log_bad_value_names_line_and_column(tmp_path, demo_truth):
     (tmp_path / "gnss.csv").write_text("\n".join(text) + "\n")
     with pytest.raises(InputError, match=r"gnss.csv:5: key 'z': expected a finite number in column 'z', got 'oops'"):
         orbit.orbit_from_positions(_positions_spec(tmp_path / "gnss.csv"), st.time_utc[10:20])
+
+
+def test_position_log_gps_times_across_the_2015_leap_second(tmp_path):
+    """A position log's GPS time column goes through the loader's conversion (one implementation): a
+    leap second was inserted at the end of 2015-06-30, after which GPS - UTC = 17 s (IERS Bulletin C
+    49). GPS 1119744016.0 is 2015-06-30T23:59:60 (datetime64 has no 23:59:60: it is labelled with the
+    next second), GPS 1119744017.5 is 2015-07-01T00:00:00.5 and GPS 1119744015.0 is 23:59:59 (GPS - UTC
+    = 16 s). A conversion that looked the leap count up one second off puts the first second of July
+    one second late; this pins it to the second."""
+    (tmp_path / "gnss.csv").write_text("t,x,y,z\n1119744015.000,7000,0,0\n1119744017.500,7000,1,0\n"
+                                       "1119744019.250,7000,2,0\n")
+    spec = _positions_spec(tmp_path / "gnss.csv", fmt="gps", frame="gcrf", unit="km")
+    t, xyz = orbit.read_positions(spec)
+    assert t.tolist() == np.array(["2015-06-30T23:59:59", "2015-07-01T00:00:00.5", "2015-07-01T00:00:02.25"],
+                                  dtype="datetime64[ns]").tolist()
+    np.testing.assert_array_equal(xyz[:, 1], [0.0, 1.0, 2.0])
+
+
+def test_position_log_tick_counter_rollover(tmp_path):
+    """Tick time columns unwrap a counter that rolls over, as the loader does: a 4-bit counter at
+    2 Hz counting 14, 15, 0, 1 is 7.0, 7.5, 8.0 and 8.5 s after the epoch."""
+    (tmp_path / "gnss.csv").write_text("t,x,y,z\n14,7000,0,0\n15,7000,1,0\n0,7000,2,0\n1,7000,3,0\n")
+    epoch = np.datetime64("2026-07-14T09:00:00", "ns")
+    spec = PositionsSpec(file=tmp_path / "gnss.csv", time=TimeSpec("t", "ticks", epoch, 2.0, 4),
+                         columns=("x", "y", "z"), frame="gcrf", unit="km")
+    t, xyz = orbit.read_positions(spec)
+    np.testing.assert_array_equal((t - epoch) / np.timedelta64(1, "ms"), [7000, 7500, 8000, 8500])
+    np.testing.assert_array_equal(xyz[:, 1], [0.0, 1.0, 2.0, 3.0])
+
+
+def test_position_log_unreadable_time_names_the_format(tmp_path):
+    (tmp_path / "gnss.csv").write_text("t,x,y,z\n1119744015.0,7000,0,0\n-5,7000,1,0\n")
+    spec = _positions_spec(tmp_path / "gnss.csv", fmt="gps", frame="gcrf", unit="km")
+    with pytest.raises(InputError, match=r"gnss.csv:3: key 't': expected GPS seconds >= 0 in column 't', got '-5.0'"):
+        orbit.read_positions(spec)
 
 
 def test_orbit_at_from_a_mission_file(mission_dir):

@@ -2,17 +2,9 @@
 saturation, and write every decision into the ledger.
 """
 
-from .logs import (
-    GAP_FACTOR,
-    RANGE_MARGIN,
-    CleanedLog,
-    CleanedPass,
-    clean_log,
-    clean_pass,
-    find_gaps,
-    format_inspect_table,
-    write_ledger,
-)
+from .findings import format_inspect_table, write_ledger
+from .logs import CleanedLog, CleanedPass, clean_log, clean_pass
+from .rows import GAP_FACTOR, RANGE_MARGIN, find_gaps
 
 __all__ = [
     "CleanedLog",

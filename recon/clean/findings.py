@@ -1,6 +1,7 @@
 """What the clean stage reports: its anomalies, the ``recon inspect`` table and the ledger file.
 
-Kept apart from :mod:`recon.clean` so that the cleaning steps stay short; imported from there.
+The anomalies are this stage's own; the table and the ledger file are outputs that may move to
+``recon.report`` later (the clean face keeps exporting them).
 """
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from ..core import NT_PER_UNIT, Anomaly, utc_texts
+from .rows import GAP_FACTOR
 
 __all__ = [
     "LEO_FIELD_MIN_nT", "LEO_FIELD_MAX_nT", "ROWS_DROPPED_WARN_FRACTION", "STUCK_MIN_SAMPLES",
@@ -138,7 +140,7 @@ def stage_anomalies(logs, ledger: pd.DataFrame, mission, loaded) -> list[Anomaly
         for t0, t1, dur in zip(starts, stops, g.gaps["duration_s"].to_numpy(dtype=float), strict=True):
             out.append(Anomaly(
                 "telemetry_gap", "warning",
-                f"no {g.name} samples for {dur:.6g} s in {g.label} (gap threshold 3 x the "
+                f"no {g.name} samples for {dur:.6g} s in {g.label} (gap threshold {GAP_FACTOR:g} x the "
                 f"median spacing {g.median_period_s:.6g} s)",
                 start_utc=t0, stop_utc=t1, value=float(dur)))
         mine = ledger[(ledger["sensor"] == g.name) & (ledger["action"] == "dropped")]

@@ -1,4 +1,5 @@
-"""Hampel identifier on a signal, its rate of change and its magnitude: robust spike detection.
+"""The Hampel identifier: moving median and MAD over windows inside segments, its threshold and
+its noise floor.
 
 The Hampel identifier (Hampel 1974; Pearson, Neuvo, Astola & Gabbouj 2016) flags sample i when it
 lies more than t robust standard deviations from the median of a moving window centred on it, the
@@ -12,18 +13,8 @@ location and scale estimates; here the scale is the larger of
   quiet stretch (MAD near 0 by chance, or exactly 0 on a quantised signal) would turn ordinary noise
   into spikes.
 
-A spike on a fast-moving signal can hide inside the local MAD of the signal; it cannot hide in the
-rate of change: the rate ``(x[i+1] - x[i]) / dt`` jumps out and back, so the two rates either side of
-sample i are both outliers of the rate series, with opposite signs. A genuine step in the signal
-(a coil switching) gives only one outlying rate. The same out-and-back test runs on the vector's
-magnitude, which a rotation leaves unchanged, so that a spike shows even when the vector turns so
-fast between samples that each axis changes more than the spike's size. (Not the value test: with
-the coils on, the magnitude steps at each coil switch and then drifts as the coil field turns
-against the Earth's, and the first sample of such a sloping plateau would stand out from a window
-median.) All windows stay inside one segment (no window spans a telemetry gap)
-and are symmetric about their sample, shrinking on both sides near a segment end: a one-sided window
-would call the samples next to a genuine step (a coil switching on just before a gap) spikes. So the
-first and last sample of each segment are never tested.
+All windows stay inside one segment (no window spans a telemetry gap). Which tests run on a log,
+and how their flags become spikes, is :mod:`recon.clean.spikes`' job.
 
 References
 ----------
@@ -35,8 +26,6 @@ Adv. Signal Process. 2016:87.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numba
 import numpy as np
 from scipy.stats import norm
@@ -44,9 +33,8 @@ from scipy.stats import norm
 from ..core import robust_scale
 
 __all__ = [
-    "MAD_TO_SIGMA", "HALF_WIDTH", "FALSE_ALARMS_PER_LOG", "window_bounds", "moving_median_mad",
-    "moving_median_mad_reference", "hampel_threshold", "hampel_flags", "noise_sigma", "spike_flags",
-    "SpikeFlags",
+    "MAD_TO_SIGMA", "HALF_WIDTH", "FALSE_ALARMS_PER_LOG", "T_MIN", "window_bounds", "moving_median_mad",
+    "moving_median_mad_reference", "hampel_threshold", "hampel_flags", "noise_sigma",
 ]
 
 # 1 / Phi^-1(3/4): makes the MAD a consistent estimate of a Gaussian standard deviation (Hampel 1974)
@@ -283,133 +271,3 @@ def _decide(x, med, mad, lo, hi, t, floor):  # pragma: no cover - compiled
         scale[i] = s
         flag[i] = (hi[i] - lo[i] >= 2) and abs(r) > t * s
     return flag, resid, scale
-
-
-def _rate_flags(x: np.ndarray, t_s: np.ndarray, seg_start: np.ndarray, sigma: float, t: float,
-                half_width: int) -> np.ndarray:
-    """Samples whose rates in and out are both Hampel outliers of the rate series, opposite in sign.
-
-    Two passes. The first finds candidates from the rates between consecutive samples. A spike next
-    to a genuine step (a coil switching) makes the step's sample look like a spike too, since its
-    rate in is the spike's return and its rate out the step. So the second pass re-tests each
-    candidate against its nearest neighbours that are not candidates themselves: the step's sample,
-    measured from the sample before the spike, no longer jumps out and back, while a spike (or each
-    sample of a two-sample burst) still does.
-    """
-    n = x.size
-    cut = np.zeros(n, dtype=bool)
-    cut[seg_start[seg_start > 0]] = True  # pair (j-1, j) crosses a gap when j starts a segment
-    j = np.flatnonzero(~cut[1:])
-    if j.size < 3:
-        return np.zeros(n, dtype=bool)
-    dt = np.diff(t_s)[j]
-    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        rate = np.diff(x)[j] / dt
-        # white noise of std sigma on x gives rate noise sqrt(2) sigma / dt on each pair
-        floor = np.sqrt(2.0) * sigma / dt
-    rate = np.nan_to_num(rate, nan=0.0, posinf=0.0, neginf=0.0)
-    rseg = np.flatnonzero(np.diff(j) != 1) + 1
-    rlo, rhi = window_bounds(np.concatenate(([0], rseg)), j.size, half_width, symmetric=True)
-    r_flag, r_resid, r_scale = hampel_flags(rate, rlo, rhi, t, floor)
-    return _out_and_back(np.ascontiguousarray(x, dtype=np.float64), np.ascontiguousarray(t_s, dtype=np.float64),
-                         j, np.cumsum(cut), r_flag, r_resid, r_scale, rate - r_resid, float(t))
-
-
-@numba.njit(cache=True, nogil=True)
-def _out_and_back(x, t_s, j, seg_id, r_flag, r_resid, r_scale, r_med, t):  # pragma: no cover - compiled
-    """Both passes of the out-and-back test (see :func:`_rate_flags`) over the pair series ``j``."""
-    n = x.size
-    into = np.full(n, -1, dtype=np.int64)
-    outof = np.full(n, -1, dtype=np.int64)
-    for k in range(j.size):
-        outof[j[k]] = k
-        into[j[k] + 1] = k
-    cand = np.zeros(n, dtype=np.bool_)
-    for i in range(n):
-        a, b = into[i], outof[i]
-        if a >= 0 and b >= 0 and r_flag[a] and r_flag[b] and (
-                (r_resid[a] > 0 and r_resid[b] < 0) or (r_resid[a] < 0 and r_resid[b] > 0)):
-            cand[i] = True
-    # nearest non-candidate before and after each sample
-    prev = np.full(n, -1, dtype=np.int64)
-    nxt = np.full(n, n, dtype=np.int64)
-    last = -1
-    for i in range(n):
-        prev[i] = last
-        if not cand[i]:
-            last = i
-    last = n
-    for i in range(n - 1, -1, -1):
-        nxt[i] = last
-        if not cand[i]:
-            last = i
-    out = np.zeros(n, dtype=np.bool_)
-    for i in range(n):
-        if not cand[i]:
-            continue
-        p, q = prev[i], nxt[i]
-        if p < 0 or q >= n or seg_id[p] != seg_id[i] or seg_id[q] != seg_id[i]:
-            continue
-        a, b = into[i], outof[i]
-        e_in = (x[i] - x[p]) / (t_s[i] - t_s[p]) - r_med[a]
-        e_out = (x[q] - x[i]) / (t_s[q] - t_s[i]) - r_med[b]
-        if (abs(e_in) > t * r_scale[a] and abs(e_out) > t * r_scale[b]
-                and ((e_in > 0 and e_out < 0) or (e_in < 0 and e_out > 0))):
-            out[i] = True
-    return out
-
-
-@dataclass(frozen=True)
-class SpikeFlags:
-    """Which test flagged which sample: ``value`` and ``rate`` per axis (N, 3), ``norm`` (N,)."""
-
-    value: np.ndarray
-    rate: np.ndarray
-    norm: np.ndarray
-    threshold: float
-
-    @property
-    def any(self) -> np.ndarray:
-        return self.value.any(axis=1) | self.rate.any(axis=1) | self.norm
-
-
-def spike_flags(v: np.ndarray, t_s: np.ndarray, segment_start: np.ndarray, floor: np.ndarray,
-                t: float | None = None, half_width: int = HALF_WIDTH) -> SpikeFlags:
-    """Spikes in a 3-axis log: Hampel tests on each axis, on each axis's rate of change, and on the
-    rate of change of the vector's magnitude.
-
-    Parameters
-    ----------
-    v : (N, 3) float array, sorted by time (sensor axes, file unit); the same windows serve all tests
-    t_s : (N,) float array, s, strictly increasing
-    segment_start : (S,) int array, first sample of each stretch without a gap (starts with 0)
-    floor : (3,) float array, least scale per axis (stated noise or quantisation step), unit of v
-    t : float, optional, threshold; default :func:`hampel_threshold` over the 7 N tests
-
-    Returns
-    -------
-    SpikeFlags
-    """
-    v = np.asarray(v, dtype=float)
-    n = v.shape[0]
-    z3 = np.zeros((n, 3), dtype=bool)
-    if n < 3:
-        return SpikeFlags(z3, z3.copy(), np.zeros(n, dtype=bool), float("nan"))
-    if t is None:
-        t = hampel_threshold(7 * n)
-    seg = np.asarray(segment_start, dtype=np.int64)
-    lo, hi = window_bounds(seg, n, half_width, symmetric=True)
-    by_value = z3.copy()
-    by_rate = z3.copy()
-    floor = np.broadcast_to(np.asarray(floor, dtype=float), (3,))
-    for a in range(3):
-        x = np.ascontiguousarray(v[:, a])
-        sigma = max(noise_sigma(x, seg), floor[a])
-        by_value[:, a], _, _ = hampel_flags(x, lo, hi, t, sigma)
-        by_rate[:, a] = _rate_flags(x, t_s, seg, sigma, t, half_width)
-    with np.errstate(over="ignore", invalid="ignore"):
-        mag = np.sqrt(np.einsum("ij,ij->i", v, v))
-    mag = np.nan_to_num(mag, nan=0.0, posinf=np.finfo(float).max)
-    sigma_m = max(noise_sigma(mag, seg), float(floor.max()))
-    by_norm = _rate_flags(mag, t_s, seg, sigma_m, t, half_width)
-    return SpikeFlags(by_value, by_rate, by_norm, float(t))

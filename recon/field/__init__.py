@@ -1,15 +1,7 @@
 """The reference magnetic field: IGRF-14 (ppigrf) along the orbit, in GCRF."""
 
-from .along_orbit import (
-    IGRF14_START_UTC,
-    IGRF14_STOP_UTC,
-    ReferenceField,
-    field_along_orbit,
-    field_for_orbit,
-    igrf_gcrf_nT,
-    igrf_itrf_nT,
-    reference_field,
-)
+from .along_orbit import GRID_STEP_s, ReferenceField, field_along_orbit, field_for_orbit, reference_field
+from .igrf import IGRF14_START_UTC, IGRF14_STOP_UTC, igrf_gcrf_nT, igrf_itrf_nT
 
 __all__ = [
     "ReferenceField",
@@ -20,4 +12,5 @@ __all__ = [
     "igrf_gcrf_nT",
     "IGRF14_START_UTC",
     "IGRF14_STOP_UTC",
+    "GRID_STEP_s",
 ]

@@ -1,7 +1,8 @@
 """Time bases of onboard logs, converted to UTC as ``datetime64[ns]``.
 
 Four bases are understood: ISO 8601 UTC text, UNIX seconds, GPS seconds (continuous atomic scale,
-origin 1980-01-06T00:00:00 UTC) and an onboard tick counter that may wrap. Leap seconds come from
+origin 1980-01-06T00:00:00 UTC) and an onboard tick counter that may wrap; and calendar labels on
+the TAI, TT or GPS scale (as an ephemeris file's ``TIME_SYSTEM`` names them). Leap seconds come from
 pyerfa's table (``erfa.dat``), never from a constant.
 
 Conventions
@@ -20,13 +21,15 @@ import warnings
 
 import erfa
 import numpy as np
+import pandas as pd
 from numpy.lib.stride_tricks import sliding_window_view
 
-from ..core import GPS_EPOCH_UTC, NS_PER_S
+from ..core import GPS_EPOCH_UTC, NS_PER_S, frames
 
 __all__ = [
     "TAI_MINUS_GPS_s", "EARLIEST_UTC", "LATEST_UTC",
     "iso_to_utc", "iso_bytes_to_utc", "unix_seconds_to_utc", "gps_seconds_to_utc", "unwrap_ticks", "ticks_to_utc",
+    "time_system_to_utc_ns",
 ]
 
 # TAI - GPS, fixed by the definition of GPS time (ICD-GPS-200: GPS = UTC at 1980-01-06, when
@@ -39,6 +42,8 @@ EARLIEST_UTC = np.datetime64("1970-01-01T00:00:00", "ns")
 LATEST_UTC = np.datetime64("2200-01-01T00:00:00", "ns")
 
 _NAT = np.datetime64("NaT", "ns")
+_NS_PER_DAY = 86_400 * NS_PER_S
+_UNIX_EPOCH_JD = 2440587.5  # 1970-01-01T00:00:00 as a Julian date
 _GPS_EPOCH_NS = np.datetime64(GPS_EPOCH_UTC, "ns").astype(np.int64)
 
 
@@ -76,8 +81,6 @@ def iso_to_utc(text) -> np.ndarray:
     -------
     (N,) datetime64[ns], UTC
     """
-    import pandas as pd
-
     s = pd.Series(np.asarray(text, dtype=object), dtype=object)
     dt = pd.to_datetime(s, format="ISO8601", utc=True, errors="coerce")
     naive = dt.dt.tz_localize(None).to_numpy()  # resolution chosen by pandas (s ... ns)
@@ -302,3 +305,40 @@ def ticks_to_utc(count: np.ndarray, epoch_utc: np.datetime64, rate_hz: float,
     origin = int(np.datetime64(epoch_utc, "ns").astype(np.int64))
     out = _seconds_to_ns(origin, seconds)
     return out, wraps
+
+
+def _jd_to_ns(d1: np.ndarray, d2: np.ndarray) -> np.ndarray:
+    """Two-part Julian date (d1 a whole day + 0.5, d2 the fraction and any carry) to ns since 1970."""
+    whole = np.floor(d2)
+    days = np.round(d1 - _UNIX_EPOCH_JD + whole).astype(np.int64)
+    return days * _NS_PER_DAY + np.round((d2 - whole) * _NS_PER_DAY).astype(np.int64)
+
+
+def time_system_to_utc_ns(label_ns: np.ndarray, system: str) -> np.ndarray:
+    """Calendar labels on the ``system`` scale ("UTC", "TAI", "TT" or "GPS") to UTC labels.
+
+    TAI = TT - 32.184 s (IAU 1991 Resolution A4) and TAI = GPS + 19 s (ICD-GPS-200); TAI -> UTC with
+    pyerfa's ``taiutc`` (leap-second table). datetime64 has no 23:59:60, so erfa's UTC quasi-JD,
+    which stretches a leap-second day to 86401 s, is rescaled to 86400 s on such a day.
+
+    Parameters
+    ----------
+    label_ns : (N,) int64 array, ns since 1970-01-01 of the calendar label on ``system``
+    system : str
+
+    Returns
+    -------
+    (N,) int64 array, ns since 1970-01-01, UTC
+    """
+    if system == "UTC":
+        return label_ns
+    shift_s = {"TAI": 0.0, "TT": frames.TT_MINUS_TAI_s, "GPS": -TAI_MINUS_GPS_s}[system]
+    tai_ns = label_ns - np.int64(round(shift_s * NS_PER_S))
+    u1, u2 = erfa.taiutc(*frames.utc_to_jd(tai_ns.astype("datetime64[ns]")))
+    utc_ns = _jd_to_ns(u1, u2)
+    # erfa's UTC quasi-JD stretches a leap-second day to 86401 s: undo that for datetime64
+    iy, im, iday, _ = erfa.jd2cal(u1, np.floor(u2))
+    ny, nm, nday, _ = erfa.jd2cal(u1 + 1.0, np.floor(u2))
+    day_s = 86400.0 + (erfa.dat(ny, nm, nday, 0.0) - erfa.dat(iy, im, iday, 0.0))
+    day0 = (utc_ns // _NS_PER_DAY) * _NS_PER_DAY
+    return day0 + np.round((utc_ns - day0) * (day_s / 86400.0)).astype(np.int64)

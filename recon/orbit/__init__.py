@@ -2,29 +2,23 @@
 (SGP4), a position log or a CCSDS OEM file.
 """
 
+from .interpolate import hermite_interpolate, lagrange_interpolate
 from .oem import (
     OemSegment,
     parse_ccsds_time,
     read_oem,
     write_oem,
 )
-from .sources import (
-    MAX_GAP_s,
+from .positions import MAX_GAP_s, orbit_from_positions, read_positions
+from .sources import orbit_at, orbit_from_oem
+from .state import (
     OrbitState,
     gcrf_to_itrf,
     itrf_to_gcrf,
     itrf_to_gcrf_matrix_fast,
-    orbit_at,
-    orbit_from_oem,
-    orbit_from_positions,
-    orbit_from_tle,
-    parse_tle,
-    read_positions,
     state_from_gcrf_nodes,
-    state_from_teme,
-    tle_checksum,
-    tle_teme,
 )
+from .tle import orbit_from_tle, parse_tle, state_from_teme, tle_checksum, tle_teme
 
 __all__ = [
     "OrbitState",
@@ -46,4 +40,6 @@ __all__ = [
     "read_oem",
     "write_oem",
     "parse_ccsds_time",
+    "lagrange_interpolate",
+    "hermite_interpolate",
 ]
