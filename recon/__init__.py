@@ -14,10 +14,10 @@ __all__ = [
 ]
 
 _LAZY = {
-    "load_pass": "load.logs", "clean_pass": "clean.logs", "reference_field": "field.along_orbit",
-    "orbit_at": "orbit.sources", "calibrate_pass": "calibrate.calibration", "estimate_attitude": "estimate.attitude",
-    "judge_pass": "judge.judgement", "run_pass": "pipeline", "inspect_pass": "pipeline", "simulate_pass": "simulate",
-    "write_aem": "report.aem", "read_aem": "report.aem",
+    "load_pass": "load", "clean_pass": "clean", "reference_field": "field", "orbit_at": "orbit",
+    "calibrate_pass": "calibrate", "estimate_attitude": "estimate", "judge_pass": "judge",
+    "run_pass": "pipeline", "inspect_pass": "pipeline", "simulate_pass": "simulate",
+    "write_aem": "report", "read_aem": "report",
 }
 
 
