@@ -14,6 +14,7 @@ from recon.judge import effect as eff
 from recon.judge import replay as rep
 from recon.judge.dipole import identify as dip
 from recon.judge.judgement import _latency_profile, judge_pass
+from recon.judge.thresholds import MODEL_FLOOR_FRACTION
 
 C_NOM = np.diag([1.5, 1.5, 1.1])
 IMAX = np.array([0.12, 0.12, 0.12])
@@ -138,7 +139,7 @@ def test_classify_coil(est, sig, expect):
     pol, conf, r, s = dip.classify_coil(est, sig, 1.5)
     assert pol == expect
     assert r == pytest.approx(est / 1.5)
-    assert s == pytest.approx(np.hypot(sig / 1.5, dip.MODEL_FLOOR_FRACTION))
+    assert s == pytest.approx(np.hypot(sig / 1.5, MODEL_FLOOR_FRACTION))
     if expect == "inverted":   # -1.46 +- 0.05 on 1.5: |r| / s = 0.973 / 0.0583 = 16.7 sigma from zero
         assert conf == pytest.approx(0.97333 / np.hypot(0.05 / 1.5, 0.05), rel=1e-4)
 

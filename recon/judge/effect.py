@@ -32,16 +32,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import MU_EARTH_km3_s2
+from .thresholds import TREND_MIN_CHANGE, TREND_SIGMAS
 
 __all__ = ["Trend", "assess_effect", "kinetic_energy_J", "magnetic_power_W", "block_log_trend", "expected_log_trend",
            "trend_label", "mean_motion_rad_s", "geomagnetic_inclination_rad", "near_optimal_gain_Nms",
-           "TREND_SIGMAS", "TREND_MIN_CHANGE", "N_BLOCKS"]
+           "N_BLOCKS"]
 
-# A trend is called when its slope is both significant and large: |slope| > 3 sigma (about 1 %
-# false-alarm rate for Student's t with 8 degrees of freedom) and a change of ln x over the pass
-# of at least 0.1 (10 % in energy, 5 % in rate) (common practice, no source).
-TREND_SIGMAS = 3.0
-TREND_MIN_CHANGE = 0.1
 # Block means remove the sample-to-sample correlation of a smooth history; ten blocks leave eight
 # degrees of freedom for the slope's uncertainty.
 N_BLOCKS = 10

@@ -18,7 +18,7 @@ Four independent lines of evidence, each from plain arrays:
 4. Crosstalk feedback: the loop gain of the coils' own field through B-dot's derivative, and a
    replay with that field removed from the samples.
 
-The decision thresholds are module constants below, each with its reason. A finding needs its own
+The decision thresholds are in :mod:`.thresholds`, each with its reason. A finding needs its own
 evidence at the stated confidence; where the data cannot decide (a short pass, coils that hardly
 switched, no law configured) the verdict is "undetermined" and says why.
 
@@ -45,67 +45,31 @@ from ..core import Anomaly, InputError, applied_current, body_from_gcrf, control
 from . import effect as eff
 from . import replay as rep
 from .dipole import identify as dip
+from .thresholds import (
+    CHATTER_FRACTION_LIMIT,
+    CHATTER_ROTATION_FACTOR,
+    COIL_GAIN_SIGMAS,
+    COIL_GAIN_TOLERANCE,
+    COMMAND_GAIN_TOLERANCE,
+    COMMAND_MIN_CORRELATION,
+    COMMAND_MIN_TICKS,
+    DETUMBLE_SLOW_FACTOR,
+    EXPECTED_MIN_CHANGE,
+    LATENCY_DELTA_CHI2,
+    LATENCY_DETERMINED_PERIODS,
+    LATENCY_LIMIT_PERIODS,
+    LOOP_GAIN_LIMIT,
+    MAX_LATENCY_PERIODS,
+    MIN_SEGMENTS,
+    MODEL_FLOOR_FRACTION,
+    RATE_BIAS_KNOT_S,
+    SATURATION_FRACTION_LIMIT,
+    SEGMENT_POINTS,
+)
 
-__all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass", "THRESHOLDS"]
+__all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass"]
 
 AXES = ("x", "y", "z")
-
-# ------------------------------------------------------------------------------ decision thresholds
-# Command replay. The replay uses the very samples the onboard computer used, so a healthy law
-# matches its log to the drive's rounding (gain ratio 1.000, correlation 1.000 on B-dot); the
-# cross-product replay uses the gyro as logged, so its match is a little looser. A 20 % band equals
-# the coil-gain band below; correlation below 0.8 means the log follows some other law.
-COMMAND_GAIN_TOLERANCE = 0.2
-COMMAND_MIN_CORRELATION = 0.8
-COMMAND_MIN_TICKS = 20          # unsaturated ticks above 1 % of the limit needed to judge an axis
-# Time at the current limit above which the controller is reported as saturated: beyond half the
-# pass the law is no longer the linear one its gain describes (common practice, no source).
-SATURATION_FRACTION_LIMIT = 0.5
-# Chatter: limit-to-limit sign flips on at least a quarter of the ticks, and at least three times the
-# flips the body's rotation alone would cause (a component of the body-frame field changes sign
-# twice per turn, i.e. on |w| T / pi of the ticks). A quarter corresponds to a rotation of 45 deg
-# per tick, beyond what a sampled B-dot can follow (common practice, no source).
-CHATTER_FRACTION_LIMIT = 0.25
-CHATTER_ROTATION_FACTOR = 3.0
-LOOP_GAIN_LIMIT = 1.0           # >= 1: the coil-field loop oscillates (see rep.crosstalk_loop_gain)
-# Coil gain: flagged when the whole 3-sigma interval of |C_jj / C_nominal_jj| lies outside
-# 1 +- 0.2 ("off by more than 20 % at high confidence").
-COIL_GAIN_TOLERANCE = 0.2
-COIL_GAIN_SIGMAS = 3.0
-# Latency from tick to torque flagged from one control period (the law assumes its command acts
-# within the period it was computed for) when the motion rejects zero delay at 3 sigma
-# (profile chi-square difference >= 9).
-LATENCY_LIMIT_PERIODS = 1.0
-LATENCY_DELTA_CHI2 = 9.0
-# Effect: detumble_slow when the observed energy time constant exceeds this factor times the one the
-# replayed law should have produced along the same trajectory, judged only when the expected decay
-# over the pass is at least EXPECTED_MIN_CHANGE in ln E (40 %). Healthy coils within the 20 % gain
-# band and the disturbance torques cannot account for a factor 3; missing or opposing torque can.
-DETUMBLE_SLOW_FACTOR = 3.0
-EXPECTED_MIN_CHANGE = 0.5
-# Dipole identification needs at least this many independent segments (of ``SEGMENT_POINTS``
-# ticks): fewer leave the residual variance and its autocorrelation, which set every sigma, resting
-# on too few stretches of data.
-SEGMENT_POINTS = 31
-MIN_SEGMENTS = 5
-MAX_LATENCY_PERIODS = 5
-
-# Every decision threshold in one place (the contributor guide lists them with their reasons).
-THRESHOLDS: dict[str, float] = {
-    "COMMAND_GAIN_TOLERANCE": COMMAND_GAIN_TOLERANCE, "COMMAND_MIN_CORRELATION": COMMAND_MIN_CORRELATION,
-    "COMMAND_MIN_TICKS": COMMAND_MIN_TICKS, "SATURATION_LEVEL": rep.SATURATION_LEVEL,
-    "SATURATION_FRACTION_LIMIT": SATURATION_FRACTION_LIMIT, "NEAR_LIMIT_LEVEL": rep.NEAR_LIMIT_LEVEL,
-    "INFORMATIVE_LEVEL": rep.INFORMATIVE_LEVEL,
-    "CHATTER_FRACTION_LIMIT": CHATTER_FRACTION_LIMIT, "CHATTER_ROTATION_FACTOR": CHATTER_ROTATION_FACTOR,
-    "LOOP_GAIN_LIMIT": LOOP_GAIN_LIMIT, "COIL_GAIN_TOLERANCE": COIL_GAIN_TOLERANCE,
-    "COIL_GAIN_SIGMAS": COIL_GAIN_SIGMAS, "MODEL_FLOOR_FRACTION": dip.MODEL_FLOOR_FRACTION,
-    "OUTLIER_PROBABILITY": dip.OUTLIER_PROBABILITY, "LATENCY_LIMIT_PERIODS": LATENCY_LIMIT_PERIODS,
-    "LATENCY_DELTA_CHI2": LATENCY_DELTA_CHI2, "DETUMBLE_SLOW_FACTOR": DETUMBLE_SLOW_FACTOR,
-    "EXPECTED_MIN_CHANGE": EXPECTED_MIN_CHANGE, "TREND_SIGMAS": eff.TREND_SIGMAS,
-    "TREND_MIN_CHANGE": eff.TREND_MIN_CHANGE, "SEGMENT_POINTS": SEGMENT_POINTS, "MIN_SEGMENTS": MIN_SEGMENTS,
-    "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS, "RATE_BIAS_KNOT_S": dip.RATE_BIAS_KNOT_S,
-}
-
 
 # ----------------------------------------------------------------------------------- result types
 @dataclass(frozen=True)
@@ -401,9 +365,9 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         scans = {kn: dip.scan_actuation_latency(
             t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
             r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T, rate_bias_knot_s=kn)
-            for kn in (None, dip.RATE_BIAS_KNOT_S)}
-        used, gain, penalty = dip.rate_bias_evidence(scans[None][0], scans[dip.RATE_BIAS_KNOT_S][0])
-        knot = dip.RATE_BIAS_KNOT_S if used else None
+            for kn in (None, RATE_BIAS_KNOT_S)}
+        used, gain, penalty = dip.rate_bias_evidence(scans[None][0], scans[RATE_BIAS_KNOT_S][0])
+        knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot]
         lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
@@ -518,7 +482,7 @@ def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | N
             "acausal_latency_s": float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
             # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
             # at most two periods, i.e. the latency is known to within about one period
-            "determined": bool(not acausal and wide.max() - wide.min() <= 2.0 * period_s + 1e-9)}
+            "determined": bool(not acausal and wide.max() - wide.min() <= LATENCY_DETERMINED_PERIODS * period_s + 1e-9)}
 
 
 def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
@@ -528,7 +492,7 @@ def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
         rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
         if fit is not None and np.isfinite(fit.C_sigma[a, a]):
             pol, conf, r, rs = dip.classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
-            est, sig = float(fit.C[a, a]), float(np.hypot(fit.C_sigma[a, a], dip.MODEL_FLOOR_FRACTION * abs(c0)))
+            est, sig = float(fit.C[a, a]), float(np.hypot(fit.C_sigma[a, a], MODEL_FLOOR_FRACTION * abs(c0)))
         else:  # not identified, or the coil never carried current
             pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
         out.append(AxisJudgement(

@@ -25,26 +25,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import held_values
+from .thresholds import INFORMATIVE_LEVEL, NEAR_LIMIT_LEVEL, SATURATION_LEVEL
 
 __all__ = [
-    "SATURATION_LEVEL", "NEAR_LIMIT_LEVEL", "INFORMATIVE_LEVEL",
     "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
     "CommandComparison", "compare_commands", "chatter_fraction", "crosstalk_loop_gain",
     "assess_crosstalk_feedback",
 ]
-
-# A logged current counts as "at the limit" from 99 % of max_current_A: the drive rounds commands to
-# its resolution (micro-amps) and the log to its unit, so an exact-equality test would miss samples
-# (common practice, no source).
-SATURATION_LEVEL = 0.99
-# A flip between consecutive commands counts as limit-to-limit chatter when both ends are at 90 % of
-# the limit or more (common practice, no source): a linear controller crossing zero passes through
-# small currents; a feedback oscillation jumps from one rail to the other.
-NEAR_LIMIT_LEVEL = 0.90
-# A replayed command counts towards the gain ratio from 1 % of the limit: a thousand times the
-# drive's micro-amp resolution, so rounding cannot move the ratio by more than 0.1 %.
-INFORMATIVE_LEVEL = 0.01
-
 
 def tick_samples_nT(t_mag_s: np.ndarray, b_mag_body_nT: np.ndarray, ticks_s: np.ndarray, *,
                     sampling: str, off_window_s: tuple[float, float] | None = None,

@@ -58,26 +58,10 @@ from scipy.interpolate import CubicSpline
 from scipy.stats import chi2
 
 from ...core import MU_EARTH_m3_s2, held_values, in_off_window
+from ..thresholds import MODEL_FLOOR_FRACTION, NO_RESPONSE_RATIO, OUTLIER_PROBABILITY, POLARITY_SIGMAS
 
 __all__ = ["DipoleFit", "identify_dipole", "scan_actuation_latency", "classify_coil",
-           "rate_bias_knots_s", "rate_bias_evidence", "MODEL_FLOOR_FRACTION", "OUTLIER_PROBABILITY",
-           "RATE_BIAS_KNOT_S"]
-
-# Systematic floor on each estimated dipole, as a fraction of the nominal diagonal: an attitude
-# error of ~3 deg turns the modelled torque by sin(3 deg) = 0.05 of itself, and the reference field
-# leaves out ~100 nT of 20,000-50,000 nT (IGRF-14, Alken et al. 2025); the floor keeps such
-# model errors from passing for a sign or a dead coil (common practice, no source).
-MODEL_FLOOR_FRACTION = 0.05
-# Intervals whose whitened residual has chi-square(3) tail probability below this are dropped once.
-OUTLIER_PROBABILITY = 1e-4
-# Knot spacing of the rate history's optional bias (see identify_dipole), s. The bias a smoother
-# leaves in a gyro-based rate moves with the gyro's bias walk and with how fast the field direction
-# turns in body axes, over minutes rather than seconds; knots ten 30-s segments apart keep its
-# unknowns from competing with the per-segment initial momenta. On simulated passes knots every
-# 150 s, 300 s, 600 s and a single straight line over the pass gave the same latencies and
-# polarities (common practice, no source).
-RATE_BIAS_KNOT_S = 300.0
-
+           "rate_bias_knots_s", "rate_bias_evidence"]
 
 @dataclass(frozen=True)
 class DipoleFit:
@@ -654,11 +638,11 @@ def classify_coil(c_est: float, c_sigma: float, c_nominal: float) -> tuple[str, 
     """
     r = c_est / c_nominal
     s = float(np.hypot(c_sigma / abs(c_nominal), MODEL_FLOOR_FRACTION))
-    lo, hi = r - 3.0 * s, r + 3.0 * s
+    lo, hi = r - POLARITY_SIGMAS * s, r + POLARITY_SIGMAS * s
     if lo > 0:
         return "nominal", abs(r) / s, r, s
     if hi < 0:
         return "inverted", abs(r) / s, r, s
-    if hi < 0.5:
+    if hi < NO_RESPONSE_RATIO:
         return "no_response", (1.0 - r) / s, r, s
     return "undetermined", abs(r) / s, r, s
