@@ -10,9 +10,9 @@ import pytest
 
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.core import InputError, MU_EARTH_km3_s2
+from recon.judge import dipole as dip
 from recon.judge import effect as eff
 from recon.judge import replay as rep
-from recon.judge.dipole import identify as dip
 from recon.judge.judgement import _latency_profile, judge_pass
 from recon.judge.thresholds import MODEL_FLOOR_FRACTION
 

@@ -2,17 +2,17 @@
 
 Four independent lines of evidence, each from plain arrays:
 
-1. Command replay (:mod:`recon._replay`): the configured law recomputed from the raw telemetry the
+1. Command replay (:mod:`.replay`): the configured law recomputed from the raw telemetry the
    onboard computer saw, against the logged commands (gain ratio, correlation, lag, saturation,
    limit-to-limit chatter).
-2. Dipole identification (:mod:`recon._dipole_id`): each coil's effective dipole per amp from the
+2. Dipole identification (:mod:`.dipole`, :mod:`.latency`): each coil's effective dipole per amp from the
    motion (Euler's equation, least squares), hence polarity, response and gain, plus the actuation
    latency that best explains the motion. The latency is sought from zero up (a current cannot flow
    before its command; a motion that insists on a negative one points to wrong time tags), and a
    slowly varying bias of the rate history is estimated alongside where Schwarz's criterion asks
    for it (a wrong gyro bias mimics a torque through the gyroscopic term, and a latency can imitate
    part of that torque).
-3. Physical effect (:mod:`recon._effect`): the kinetic-energy (B-dot) or momentum-error
+3. Physical effect (:mod:`.effect`): the kinetic-energy (B-dot) or momentum-error
    (cross-product) trend against what the configured law should have achieved along the same
    trajectory, and the sign of the magnetic torque's power.
 4. Crosstalk feedback: the loop gain of the coils' own field through B-dot's derivative, and a
@@ -44,7 +44,8 @@ from ..config import CoilSpec, ControllerSpec
 from ..core import Anomaly, InputError, applied_current, body_from_gcrf, control_ticks, held_values, tick_phase
 from . import effect as eff
 from . import replay as rep
-from .dipole import identify as dip
+from .dipole import chi2_unit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .latency import scan_actuation_latency
 from .thresholds import (
     CHATTER_FRACTION_LIMIT,
     CHATTER_ROTATION_FACTOR,
@@ -61,7 +62,6 @@ from .thresholds import (
     LOOP_GAIN_LIMIT,
     MAX_LATENCY_PERIODS,
     MIN_SEGMENTS,
-    MODEL_FLOOR_FRACTION,
     RATE_BIAS_KNOT_S,
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
@@ -362,19 +362,19 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         # The rate history may carry a slowly varying bias (a gyro bias the estimator got wrong); through
         # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
-        scans = {kn: dip.scan_actuation_latency(
+        scans = {kn: scan_actuation_latency(
             t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
             r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T, rate_bias_knot_s=kn)
             for kn in (None, RATE_BIAS_KNOT_S)}
-        used, gain, penalty = dip.rate_bias_evidence(scans[None][0], scans[RATE_BIAS_KNOT_S][0])
+        used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
-        scan_fit, lat_trials, lat_wrss = scans[knot]
+        scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
         lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else 0.0
-        fit = dip.identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
-                                  latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
-                                  rate_bias_knot_s=knot)
+        fit = identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
+                             latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
+                             rate_bias_knot_s=knot)
         rate_bias = {"used": used and fit is not None and fit.rate_bias_rad_s is not None,
                      "delta_chi2": gain, "penalty": penalty}
         if rate_bias["used"]:
@@ -464,8 +464,7 @@ def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | N
     causal = lat >= -1e-9
     if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss[causal])):
         return None
-    infl = (1 + scan_fit.ar1) / (1 - scan_fit.ar1) if 0 < scan_fit.ar1 < 0.99 else 1.0
-    unit = scan_fit.chi2_per_dof * infl
+    unit = chi2_unit(scan_fit)
     d = (wrss - np.nanmin(wrss[causal])) / unit
     dd = np.where(causal, np.nan_to_num(d, nan=np.inf), np.inf)
     inside = lat[dd <= 1.0]
@@ -491,8 +490,8 @@ def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
         c0 = float(ctx.C_nom[a, a])
         rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
         if fit is not None and np.isfinite(fit.C_sigma[a, a]):
-            pol, conf, r, rs = dip.classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
-            est, sig = float(fit.C[a, a]), float(np.hypot(fit.C_sigma[a, a], MODEL_FLOOR_FRACTION * abs(c0)))
+            pol, conf, r, rs = classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
+            est, sig = float(fit.C[a, a]), dipole_sigma_with_floor(fit.C_sigma[a, a], c0)
         else:  # not identified, or the coil never carried current
             pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
         out.append(AxisJudgement(

@@ -5,7 +5,7 @@ it had: its raw magnetometer readings turned into body axes with the nominal mou
 iron and coil crosstalk still in them), its raw gyro for the cross-product law, the configured gain,
 the nominal dipole-per-amp matrix and the per-axis current limit. Comparing that with the logged
 commands tells a software or configuration error (wrong gain, sign, latency) apart from a hardware
-one (which the dipole identification in :mod:`recon._dipole_id` sees).
+one (which the dipole identification in :mod:`.dipole` sees).
 
 All times here are float seconds since one epoch chosen by the caller (``t_s``); all currents A;
 fields nT in body axes.
