@@ -35,16 +35,17 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import Anomaly, InputError, applied_current, body_from_gcrf, control_ticks, held_values, tick_phase
+from ..core import Anomaly, applied_current, control_ticks, held_values, tick_phase
 from . import effect as eff
 from . import replay as rep
 from .dipole import chi2_unit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .inputs import check_pass_inputs, checked_array, seconds_since
 from .latency import scan_actuation_latency
 from .thresholds import (
     CHATTER_FRACTION_LIMIT,
@@ -66,182 +67,9 @@ from .thresholds import (
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
 )
+from .types import AXES, AxisJudgement, ControllerJudgement, finite_or_none
 
-__all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass"]
-
-AXES = ("x", "y", "z")
-
-# ----------------------------------------------------------------------------------- result types
-@dataclass(frozen=True)
-class AxisJudgement:
-    """What recon concludes about one coil (body axis).
-
-    Attributes
-    ----------
-    axis : "x" | "y" | "z"
-    polarity : "nominal" | "inverted" | "no_response" | "undetermined" (see ``classify_coil``)
-    polarity_confidence : sigmas from zero (nominal, inverted), from nominal (no_response)
-    dipole_per_amp_estimated, dipole_per_amp_sigma : C_jj identified from the motion and its total
-        1-sigma (statistical with the model floor), A m^2 per A
-    dipole_per_amp_nominal : C_jj of the mission file, A m^2 per A
-    gain_ratio, gain_ratio_sigma : C_jj / nominal and its 1-sigma
-    command_gain_ratio, correlation : logged against replayed commands (unsaturated ticks / all)
-    saturation_fraction : fraction of control ticks at the current limit
-    chatter_fraction : fraction of tick pairs flipping from one current limit to the other
-    rms_current_A : rms current flowing during the pass, A
-    """
-
-    axis: str
-    polarity: str
-    polarity_confidence: float | None
-    dipole_per_amp_estimated: float | None
-    dipole_per_amp_sigma: float | None
-    dipole_per_amp_nominal: float
-    gain_ratio: float | None
-    gain_ratio_sigma: float | None
-    command_gain_ratio: float | None
-    correlation: float | None
-    saturation_fraction: float | None
-    chatter_fraction: float | None
-    rms_current_A: float | None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"polarity": self.polarity, "polarity_confidence": self.polarity_confidence,
-                "dipole_per_amp_estimated": self.dipole_per_amp_estimated,
-                "dipole_per_amp_sigma": self.dipole_per_amp_sigma,
-                "dipole_per_amp_nominal": self.dipole_per_amp_nominal, "gain_ratio": self.gain_ratio,
-                "gain_ratio_sigma": self.gain_ratio_sigma, "command_gain_ratio": self.command_gain_ratio,
-                "correlation": self.correlation, "saturation_fraction": self.saturation_fraction,
-                "chatter_fraction": self.chatter_fraction, "rms_current_A": self.rms_current_A}
-
-
-@dataclass(frozen=True)
-class ControllerJudgement:
-    """The controller judgement of one pass (see :func:`judge_pass`); ``to_summary()`` gives the
-    summary.json "controller" block.
-
-    Attributes
-    ----------
-    law : the configured law; axes : three AxisJudgement (x, y, z)
-    verdict : "as_intended" | "not_as_intended" | "undetermined"
-    reasons : why parts could not be judged (non-empty whenever the verdict is "undetermined")
-    anomalies : Anomaly records, each with an evidence sentence carrying its numbers
-    latency_s : tick to torque, s: command_lag_s (tick to logged command, from the replay) plus
-        actuation_latency_s (logged command to torque, from the motion); None where undetermined
-    actuation_latency_interval_s : 3-sigma range of the actuation latency, s
-    rate_trend : "decreasing" | "steady" | "increasing" (kinetic energy)
-    energy_time_constant_s : e-folding time of the kinetic energy (the rate's is twice it), s;
-        negative for a rise. energy_time_constant_expected_s: what the replayed law should have
-        given along the observed trajectory, s
-    momentum_error_trend, momentum_error_time_constant_s(_expected_s) : cross-product law only
-    magnetic_power_mean_W : mean of w . (m x B) with the identified dipoles, W (negative damps)
-    damping_fraction : fraction of the time that power is negative
-    loop_gain : coil-field feedback loop gain (>= 1 oscillates), crosstalk_coupling : spectral
-        radius of (k/T) 1e-9 C^-1 K_body; chatter_fraction_without_coil_field : chatter of the law
-        replayed with the coils' field taken out of its samples
-    bdot_equivalent_gain_Nms : k <|B|^2>, near_optimal_gain_Nms : 2 n (1 + sin xi_m) J_min
-        (Avanzini and Giulietti 2012), rate_floor_rad_s : 2 n
-    dipole_per_amp_matrix, dipole_per_amp_matrix_sigma : identified C (3, 3) and its 1-sigma
-    residual_dipole_Am2 : (3,) constant dipole identified alongside C
-    replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
-        (NaN where the law could not be replayed)
-    extras : diagnostics, not part of the summary: latency profile (trial latencies and weighted
-        residual sums), ``latency`` (best causal latency, ranges, causality check), ``rate_bias`` (whether
-        the rate history's bias was estimated, its chi-square gain and penalty, knot values), effect figures
-    """
-
-    law: str
-    axes: tuple[AxisJudgement, ...]
-    verdict: str
-    reasons: tuple[str, ...]
-    anomalies: tuple[Anomaly, ...]
-    latency_s: float | None = None
-    command_lag_s: float | None = None
-    actuation_latency_s: float | None = None
-    actuation_latency_interval_s: tuple[float, float] | None = None
-    rate_trend: str = "steady"
-    energy_time_constant_s: float | None = None
-    energy_time_constant_expected_s: float | None = None
-    momentum_error_trend: str | None = None
-    momentum_error_time_constant_s: float | None = None
-    momentum_error_time_constant_expected_s: float | None = None
-    magnetic_power_mean_W: float | None = None
-    damping_fraction: float | None = None
-    loop_gain: float | None = None
-    crosstalk_coupling: float | None = None
-    chatter_fraction_without_coil_field: float | None = None
-    bdot_equivalent_gain_Nms: float | None = None
-    near_optimal_gain_Nms: float | None = None
-    rate_floor_rad_s: float | None = None
-    dipole_per_amp_matrix: np.ndarray | None = None
-    dipole_per_amp_matrix_sigma: np.ndarray | None = None
-    residual_dipole_Am2: np.ndarray | None = None
-    replay_time_utc: np.ndarray | None = None
-    replay_i_A: np.ndarray | None = None
-    extras: dict[str, Any] = field(default_factory=dict)
-
-    def to_summary(self) -> dict[str, Any]:
-        """The "controller" block of summary.json (floats, lists, strings, None)."""
-        def f(x):
-            return None if x is None or not np.isfinite(x) else float(x) + 0.0  # + 0.0: no "-0.0"
-        out: dict[str, Any] = {"law": self.law}
-        for a in self.axes:
-            out[a.axis] = {k: (f(v) if isinstance(v, float | np.floating) else v) for k, v in a.to_dict().items()}
-        out.update({
-            "latency_s": f(self.latency_s), "command_lag_s": f(self.command_lag_s),
-            "actuation_latency_s": f(self.actuation_latency_s),
-            "rate_trend": self.rate_trend,
-            "energy_time_constant_s": f(self.energy_time_constant_s),
-            "energy_time_constant_expected_s": f(self.energy_time_constant_expected_s),
-            "momentum_error_trend": self.momentum_error_trend,
-            "momentum_error_time_constant_s": f(self.momentum_error_time_constant_s),
-            "momentum_error_time_constant_expected_s": f(self.momentum_error_time_constant_expected_s),
-            "magnetic_power_mean_W": f(self.magnetic_power_mean_W),
-            "damping_fraction": f(self.damping_fraction),
-            "loop_gain": f(self.loop_gain), "crosstalk_coupling": f(self.crosstalk_coupling),
-            "bdot_equivalent_gain_Nms": f(self.bdot_equivalent_gain_Nms),
-            "near_optimal_gain_Nms": f(self.near_optimal_gain_Nms),
-            "rate_floor_rad_s": f(self.rate_floor_rad_s),
-            "dipole_per_amp_matrix": None if self.dipole_per_amp_matrix is None
-            else np.asarray(self.dipole_per_amp_matrix).tolist(),
-            "dipole_per_amp_matrix_sigma": None if self.dipole_per_amp_matrix_sigma is None
-            else [[f(v) for v in row] for row in np.asarray(self.dipole_per_amp_matrix_sigma)],
-            "verdict": self.verdict, "reasons": list(self.reasons),
-            "anomalies": [a.to_dict() for a in self.anomalies],
-        })
-        return out
-
-
-# ------------------------------------------------------------------------------------ input checks
-def _arr(name: str, a: Any, tail: tuple[int, ...], n: int | None = None, allow_none: bool = False):
-    if a is None:
-        if allow_none:
-            return None
-        raise InputError(f"expected an array of shape (N, {', '.join(map(str, tail))}), got None", key=name)
-    x = np.asarray(a, float)
-    if x.ndim != 1 + len(tail) or x.shape[1:] != tail or (n is not None and len(x) != n):
-        want = f"({n if n is not None else 'N'}{''.join(', ' + str(t) for t in tail)})"
-        raise InputError(f"expected an array of shape {want}, got {x.shape}", key=name)
-    return x
-
-
-def _seconds(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
-    try:
-        tt = np.asarray(t, dtype="datetime64[ns]")
-    except (TypeError, ValueError):
-        raise InputError(f"expected UTC times (datetime64[ns]), got {np.asarray(t).dtype}", key=name) from None
-    if tt.ndim != 1:
-        raise InputError(f"expected a 1-D array of times, got shape {tt.shape}", key=name)
-    s = (tt - epoch).astype(np.int64) / 1e9
-    if len(s) > 1 and np.any(np.diff(s) <= 0):
-        raise InputError("expected strictly increasing times (clean the log first), got a step back or a "
-                         f"repeat at row {int(np.argmax(np.diff(s) <= 0)) + 1}", key=name)
-    return s
-
-
-def _f(x) -> float | None:
-    return None if x is None or not np.isfinite(x) else float(x) + 0.0
-
+__all__ = ["judge_pass"]
 
 # --------------------------------------------------------------------------------------- the judge
 def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np.ndarray,
@@ -294,33 +122,14 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     InputError
         Arrays of the wrong shape or time stamps that are not strictly increasing.
     """
-    J = _arr("inertia_kg_m2", inertia_kg_m2, (3,))
-    if J.shape != (3, 3):
-        raise InputError(f"expected a 3x3 inertia matrix, got shape {J.shape}", key="inertia_kg_m2")
-    M = _arr("mag_sensor_to_body", mag_sensor_to_body, (3,))
-    epoch = np.asarray(time_utc, dtype="datetime64[ns]")[0]
-    t = _seconds("time_utc", time_utc, epoch)
-    w = _arr("w_body_rad_s", w_body_rad_s, (3,), len(t))
-    t_mag = _seconds("time_mag_utc", time_mag_utc, epoch)
-    b_mag_body = _arr("b_mag_sensor_nT", b_mag_sensor_nT, (3,), len(t_mag)) @ M.T
-    t_coil = _seconds("time_coil_utc", time_coil_utc, epoch)
-    i_coil = _arr("i_coil_A", i_coil_A, (3,), len(t_coil))
-    q = _arr("q_body_from_gcrf", q_body_from_gcrf, (4,), len(t), allow_none=True)
-    if b_body_nT is not None:
-        b_body = _arr("b_body_nT", b_body_nT, (3,), len(t))
-    elif q is not None and b_gcrf_nT is not None:
-        b_body = body_from_gcrf(q, _arr("b_gcrf_nT", b_gcrf_nT, (3,), len(t)))
-    else:
-        raise InputError("expected b_body_nT, or q_body_from_gcrf with b_gcrf_nT, got neither", key="b_body_nT")
-    r_gcrf = _arr("r_gcrf_km", r_gcrf_km, (3,), len(t), allow_none=True)
-    r_body = body_from_gcrf(q, r_gcrf) if (r_gcrf is not None and q is not None) else None
-    P = _arr("w_cov_rad2_s2", w_cov_rad2_s2, (3, 3), len(t), allow_none=True)
-    K = _arr("K_nT_per_A", K_nT_per_A, (3,), 3, allow_none=True)
-    if K is not None and not np.all(np.isfinite(K)):
-        K = np.nan_to_num(K, nan=0.0)  # undetermined entries (a coil that never switched) count as none
-    if len(t) < 3 or len(t_coil) < 2:
-        raise InputError(f"expected at least 3 rate samples and 2 coil-log rows, got {len(t)} and {len(t_coil)}",
-                         key="time_utc")
+    d = check_pass_inputs(inertia_kg_m2=inertia_kg_m2, mag_sensor_to_body=mag_sensor_to_body,
+                          time_mag_utc=time_mag_utc, b_mag_sensor_nT=b_mag_sensor_nT, time_coil_utc=time_coil_utc,
+                          i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
+                          q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
+                          r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
+    J, M, epoch, t, w = d.inertia_kg_m2, d.mag_sensor_to_body, d.epoch, d.t_s, d.w_body_rad_s
+    t_mag, b_mag_body, t_coil, i_coil = d.t_mag_s, d.b_mag_body_nT, d.t_coil_s, d.i_coil_A
+    b_body, r_gcrf, r_body, P, K = d.b_body_nT, d.r_gcrf_km, d.r_body_km, d.w_cov_rad2_s2, d.K_nT_per_A
 
     law, T = controller.law, float(controller.period_s)
     C_nom = np.asarray(coils.dipole_per_amp, float)
@@ -343,8 +152,9 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
         if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = _seconds("time_gyro_utc", time_gyro_utc, epoch)
-            w_tick = held_values(tg, _arr("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks, tol=1e-9)
+            tg = seconds_since("time_gyro_utc", time_gyro_utc, epoch)
+            w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
+                                 tol=1e-9)
         else:
             w_tick = np.column_stack([np.interp(ticks, t, w[:, a]) for a in range(3)])
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
@@ -396,7 +206,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
     effect = eff.assess_effect(law, controller.gain, t, w, b_body, J, i_applied, i_rep_applied, C_used, C_nom,
                                target_momentum_Nms=target, r_gcrf_km=r_gcrf,
-                               b_gcrf_nT=None if b_gcrf_nT is None else np.asarray(b_gcrf_nT, float))
+                               b_gcrf_nT=d.b_gcrf_nT)
 
     # 4. crosstalk feedback --------------------------------------------------------------------
     loop: dict[str, Any] = {}
@@ -424,7 +234,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         momentum_error_time_constant_expected_s=effect.get("tau_h_exp"),
         magnetic_power_mean_W=effect.get("power_W"), damping_fraction=effect.get("damping_fraction"),
         loop_gain=loop.get("loop_gain"), crosstalk_coupling=loop.get("coupling"),
-        chatter_fraction_without_coil_field=(_f(float(np.nanmax(loop["chatter_without"])))
+        chatter_fraction_without_coil_field=(finite_or_none(float(np.nanmax(loop["chatter_without"])))
                                              if "chatter_without" in loop else None),
         bdot_equivalent_gain_Nms=effect.get("k_eq"), near_optimal_gain_Nms=effect.get("k_ag"),
         rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
@@ -494,13 +304,14 @@ def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
             est, sig = float(fit.C[a, a]), dipole_sigma_with_floor(fit.C_sigma[a, a], c0)
         else:  # not identified, or the coil never carried current
             pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
+        f = finite_or_none
         out.append(AxisJudgement(
-            axis=name, polarity=pol, polarity_confidence=_f(conf), dipole_per_amp_estimated=_f(est),
-            dipole_per_amp_sigma=_f(sig), dipole_per_amp_nominal=c0, gain_ratio=_f(r), gain_ratio_sigma=_f(rs),
-            command_gain_ratio=_f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
-            correlation=_f(cmp_.correlation[a]) if cmp_ is not None else None,
-            saturation_fraction=_f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
-            chatter_fraction=_f(chatter[a]), rms_current_A=_f(rms)))
+            axis=name, polarity=pol, polarity_confidence=f(conf), dipole_per_amp_estimated=f(est),
+            dipole_per_amp_sigma=f(sig), dipole_per_amp_nominal=c0, gain_ratio=f(r), gain_ratio_sigma=f(rs),
+            command_gain_ratio=f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
+            correlation=f(cmp_.correlation[a]) if cmp_ is not None else None,
+            saturation_fraction=f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
+            chatter_fraction=f(chatter[a]), rms_current_A=f(rms)))
     return out
 
 
@@ -509,7 +320,8 @@ def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
 # ------------------------------------------------------------------------------------------ findings
 def _an(ctx: _Context, code: str, severity: str, evidence: str, axis: str | None = None,
         value: float | None = None) -> Anomaly:
-    return Anomaly(code, severity, evidence, ctx.span[0], ctx.span[1], axis, _f(value) if value is not None else None)
+    return Anomaly(code, severity, evidence, ctx.span[0], ctx.span[1], axis,
+                   finite_or_none(value) if value is not None else None)
 
 
 def _command_verified(cmp_, a: int) -> bool:

@@ -1,0 +1,158 @@
+"""The judgement's result types: per coil, per pass, and the typed diagnostics behind them."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..core import Anomaly
+
+__all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none"]
+
+AXES = ("x", "y", "z")
+
+
+def finite_or_none(x) -> float | None:
+    """A finite number as a plain float (``+ 0.0``: never "-0.0" in the summary), otherwise None."""
+    return None if x is None or not np.isfinite(x) else float(x) + 0.0
+
+
+@dataclass(frozen=True)
+class AxisJudgement:
+    """What recon concludes about one coil (body axis).
+
+    Attributes
+    ----------
+    axis : "x" | "y" | "z"
+    polarity : "nominal" | "inverted" | "no_response" | "undetermined" (see ``classify_coil``)
+    polarity_confidence : sigmas from zero (nominal, inverted), from nominal (no_response)
+    dipole_per_amp_estimated, dipole_per_amp_sigma : C_jj identified from the motion and its total
+        1-sigma (statistical with the model floor), A m^2 per A
+    dipole_per_amp_nominal : C_jj of the mission file, A m^2 per A
+    gain_ratio, gain_ratio_sigma : C_jj / nominal and its 1-sigma
+    command_gain_ratio, correlation : logged against replayed commands (unsaturated ticks / all)
+    saturation_fraction : fraction of control ticks at the current limit
+    chatter_fraction : fraction of tick pairs flipping from one current limit to the other
+    rms_current_A : rms current flowing during the pass, A
+    """
+
+    axis: str
+    polarity: str
+    polarity_confidence: float | None
+    dipole_per_amp_estimated: float | None
+    dipole_per_amp_sigma: float | None
+    dipole_per_amp_nominal: float
+    gain_ratio: float | None
+    gain_ratio_sigma: float | None
+    command_gain_ratio: float | None
+    correlation: float | None
+    saturation_fraction: float | None
+    chatter_fraction: float | None
+    rms_current_A: float | None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"polarity": self.polarity, "polarity_confidence": self.polarity_confidence,
+                "dipole_per_amp_estimated": self.dipole_per_amp_estimated,
+                "dipole_per_amp_sigma": self.dipole_per_amp_sigma,
+                "dipole_per_amp_nominal": self.dipole_per_amp_nominal, "gain_ratio": self.gain_ratio,
+                "gain_ratio_sigma": self.gain_ratio_sigma, "command_gain_ratio": self.command_gain_ratio,
+                "correlation": self.correlation, "saturation_fraction": self.saturation_fraction,
+                "chatter_fraction": self.chatter_fraction, "rms_current_A": self.rms_current_A}
+
+
+@dataclass(frozen=True)
+class ControllerJudgement:
+    """The controller judgement of one pass (see :func:`judge_pass`); ``to_summary()`` gives the
+    summary.json "controller" block.
+
+    Attributes
+    ----------
+    law : the configured law; axes : three AxisJudgement (x, y, z)
+    verdict : "as_intended" | "not_as_intended" | "undetermined"
+    reasons : why parts could not be judged (non-empty whenever the verdict is "undetermined")
+    anomalies : Anomaly records, each with an evidence sentence carrying its numbers
+    latency_s : tick to torque, s: command_lag_s (tick to logged command, from the replay) plus
+        actuation_latency_s (logged command to torque, from the motion); None where undetermined
+    actuation_latency_interval_s : 3-sigma range of the actuation latency, s
+    rate_trend : "decreasing" | "steady" | "increasing" (kinetic energy)
+    energy_time_constant_s : e-folding time of the kinetic energy (the rate's is twice it), s;
+        negative for a rise. energy_time_constant_expected_s: what the replayed law should have
+        given along the observed trajectory, s
+    momentum_error_trend, momentum_error_time_constant_s(_expected_s) : cross-product law only
+    magnetic_power_mean_W : mean of w . (m x B) with the identified dipoles, W (negative damps)
+    damping_fraction : fraction of the time that power is negative
+    loop_gain : coil-field feedback loop gain (>= 1 oscillates), crosstalk_coupling : spectral
+        radius of (k/T) 1e-9 C^-1 K_body; chatter_fraction_without_coil_field : chatter of the law
+        replayed with the coils' field taken out of its samples
+    bdot_equivalent_gain_Nms : k <|B|^2>, near_optimal_gain_Nms : 2 n (1 + sin xi_m) J_min
+        (Avanzini and Giulietti 2012), rate_floor_rad_s : 2 n
+    dipole_per_amp_matrix, dipole_per_amp_matrix_sigma : identified C (3, 3) and its 1-sigma
+    residual_dipole_Am2 : (3,) constant dipole identified alongside C
+    replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
+        (NaN where the law could not be replayed)
+    extras : diagnostics, not part of the summary: latency profile (trial latencies and weighted
+        residual sums), ``latency`` (best causal latency, ranges, causality check), ``rate_bias`` (whether
+        the rate history's bias was estimated, its chi-square gain and penalty, knot values), effect figures
+    """
+
+    law: str
+    axes: tuple[AxisJudgement, ...]
+    verdict: str
+    reasons: tuple[str, ...]
+    anomalies: tuple[Anomaly, ...]
+    latency_s: float | None = None
+    command_lag_s: float | None = None
+    actuation_latency_s: float | None = None
+    actuation_latency_interval_s: tuple[float, float] | None = None
+    rate_trend: str = "steady"
+    energy_time_constant_s: float | None = None
+    energy_time_constant_expected_s: float | None = None
+    momentum_error_trend: str | None = None
+    momentum_error_time_constant_s: float | None = None
+    momentum_error_time_constant_expected_s: float | None = None
+    magnetic_power_mean_W: float | None = None
+    damping_fraction: float | None = None
+    loop_gain: float | None = None
+    crosstalk_coupling: float | None = None
+    chatter_fraction_without_coil_field: float | None = None
+    bdot_equivalent_gain_Nms: float | None = None
+    near_optimal_gain_Nms: float | None = None
+    rate_floor_rad_s: float | None = None
+    dipole_per_amp_matrix: np.ndarray | None = None
+    dipole_per_amp_matrix_sigma: np.ndarray | None = None
+    residual_dipole_Am2: np.ndarray | None = None
+    replay_time_utc: np.ndarray | None = None
+    replay_i_A: np.ndarray | None = None
+    extras: dict[str, Any] = field(default_factory=dict)
+
+    def to_summary(self) -> dict[str, Any]:
+        """The "controller" block of summary.json (floats, lists, strings, None)."""
+        f = finite_or_none
+        out: dict[str, Any] = {"law": self.law}
+        for a in self.axes:
+            out[a.axis] = {k: (f(v) if isinstance(v, float | np.floating) else v) for k, v in a.to_dict().items()}
+        out.update({
+            "latency_s": f(self.latency_s), "command_lag_s": f(self.command_lag_s),
+            "actuation_latency_s": f(self.actuation_latency_s),
+            "rate_trend": self.rate_trend,
+            "energy_time_constant_s": f(self.energy_time_constant_s),
+            "energy_time_constant_expected_s": f(self.energy_time_constant_expected_s),
+            "momentum_error_trend": self.momentum_error_trend,
+            "momentum_error_time_constant_s": f(self.momentum_error_time_constant_s),
+            "momentum_error_time_constant_expected_s": f(self.momentum_error_time_constant_expected_s),
+            "magnetic_power_mean_W": f(self.magnetic_power_mean_W),
+            "damping_fraction": f(self.damping_fraction),
+            "loop_gain": f(self.loop_gain), "crosstalk_coupling": f(self.crosstalk_coupling),
+            "bdot_equivalent_gain_Nms": f(self.bdot_equivalent_gain_Nms),
+            "near_optimal_gain_Nms": f(self.near_optimal_gain_Nms),
+            "rate_floor_rad_s": f(self.rate_floor_rad_s),
+            "dipole_per_amp_matrix": None if self.dipole_per_amp_matrix is None
+            else np.asarray(self.dipole_per_amp_matrix).tolist(),
+            "dipole_per_amp_matrix_sigma": None if self.dipole_per_amp_matrix_sigma is None
+            else [[f(v) for v in row] for row in np.asarray(self.dipole_per_amp_matrix_sigma)],
+            "verdict": self.verdict, "reasons": list(self.reasons),
+            "anomalies": [a.to_dict() for a in self.anomalies],
+        })
+        return out
