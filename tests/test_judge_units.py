@@ -13,7 +13,8 @@ from recon.core import InputError, MU_EARTH_km3_s2
 from recon.judge import dipole as dip
 from recon.judge import effect as eff
 from recon.judge import replay as rep
-from recon.judge.judgement import _latency_profile, judge_pass
+from recon.judge.judgement import judge_pass
+from recon.judge.latency import latency_profile
 from recon.judge.thresholds import MODEL_FLOOR_FRACTION
 
 C_NOM = np.diag([1.5, 1.5, 1.1])
@@ -158,32 +159,32 @@ def _profile(chi2_units, ar1=0.0, chi2_per_dof=2.0, latency_s=1.0):
 def test_latency_profile_causal_minimum_and_ranges():
     # Minimum at +1 s; within 9 of it (3 sigma): 0.5, 1, 2 s; within 1: 1 s only; zero delay
     # sits 12 above. The negative trials lie above the causal minimum: nothing acausal.
-    info = _latency_profile(*_profile([30, 20, 12, 3, 0, 4, 40]), 1.0)
-    assert info["latency_s"] == 1.0
-    assert info["interval_s"] == (0.5, 2.0)
-    assert info["interval_1sigma_s"] == (1.0, 1.0)
-    assert info["delta_chi2_zero"] == pytest.approx(12.0, rel=1e-12)
-    assert not info["acausal"] and info["acausal_delta_chi2"] == 0.0
-    assert info["determined"]
+    info = latency_profile(*_profile([30, 20, 12, 3, 0, 4, 40]), 1.0)
+    assert info.latency_s == 1.0
+    assert info.interval_s == (0.5, 2.0)
+    assert info.interval_1sigma_s == (1.0, 1.0)
+    assert info.delta_chi2_zero == pytest.approx(12.0, rel=1e-12)
+    assert not info.acausal and info.acausal_delta_chi2 == 0.0
+    assert info.determined
 
 
 def test_latency_profile_torque_before_command_is_acausal():
     # The best trial is -1 s, 15 below the best causal one (zero delay): beyond the 3-sigma limit of
     # 9, so the latency is undetermined and the acausal trial is named. The causal range starts at
     # zero: a negative latency is never reported as the latency.
-    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], latency_s=0.0), 1.0)
-    assert info["acausal"] and info["acausal_delta_chi2"] == pytest.approx(15.0, rel=1e-12)
-    assert info["acausal_latency_s"] == -1.0
-    assert info["latency_s"] == 0.0 and info["interval_s"] == (0.0, 0.0)   # +0.5 s sits 10 above
-    assert not info["determined"]
+    info = latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], latency_s=0.0), 1.0)
+    assert info.acausal and info.acausal_delta_chi2 == pytest.approx(15.0, rel=1e-12)
+    assert info.acausal_latency_s == -1.0
+    assert info.latency_s == 0.0 and info.interval_s == (0.0, 0.0)   # +0.5 s sits 10 above
+    assert not info.determined
 
 
 def test_latency_profile_ar1_inflation_weakens_the_evidence():
     # The same sums with correlated residuals (rho = 0.5: variance inflation (1 + rho)/(1 - rho) = 3,
     # Bayley and Hammersley 1946): the acausal gain is 15 / 3 = 5 < 9, not enough to reject causality.
-    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], ar1=0.5, latency_s=0.0), 1.0)
-    assert info["acausal_delta_chi2"] == pytest.approx(5.0, rel=1e-12)
-    assert not info["acausal"]
+    info = latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], ar1=0.5, latency_s=0.0), 1.0)
+    assert info.acausal_delta_chi2 == pytest.approx(5.0, rel=1e-12)
+    assert not info.acausal
 
 
 # ---------------------------------------------------------------------------------------- effect

@@ -35,7 +35,7 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -44,9 +44,9 @@ from ..config import CoilSpec, ControllerSpec
 from ..core import Anomaly, applied_current, control_ticks, held_values, tick_phase
 from . import effect as eff
 from . import replay as rep
-from .dipole import chi2_unit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .dipole import classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
 from .inputs import check_pass_inputs, checked_array, seconds_since
-from .latency import scan_actuation_latency
+from .latency import latency_profile, scan_actuation_latency
 from .thresholds import (
     CHATTER_FRACTION_LIMIT,
     CHATTER_ROTATION_FACTOR,
@@ -58,7 +58,6 @@ from .thresholds import (
     DETUMBLE_SLOW_FACTOR,
     EXPECTED_MIN_CHANGE,
     LATENCY_DELTA_CHI2,
-    LATENCY_DETERMINED_PERIODS,
     LATENCY_LIMIT_PERIODS,
     LOOP_GAIN_LIMIT,
     MAX_LATENCY_PERIODS,
@@ -67,7 +66,7 @@ from .thresholds import (
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
 )
-from .types import AXES, AxisJudgement, ControllerJudgement, finite_or_none
+from .types import AXES, AxisJudgement, ControllerJudgement, RateBiasEvidence, finite_or_none
 
 __all__ = ["judge_pass"]
 
@@ -179,23 +178,22 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
-        lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
+        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
-        L_use = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else 0.0
+        L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
         fit = identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
                              latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
                              rate_bias_knot_s=knot)
-        rate_bias = {"used": used and fit is not None and fit.rate_bias_rad_s is not None,
-                     "delta_chi2": gain, "penalty": penalty}
-        if rate_bias["used"]:
-            rate_bias.update(knots_s=fit.rate_bias_knots_s.tolist(), rad_s=fit.rate_bias_rad_s.tolist(),
-                             sigma_rad_s=fit.rate_bias_sigma_rad_s.tolist())
+        rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
+        if rate_bias.used:
+            rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
+                                sigma_rad_s=fit.rate_bias_sigma_rad_s)
     i_applied = applied_current(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
                                       max_hold_s=2.5 * T)
     axes = _axes(ctx, fit, cmp_, chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
         # no coil identified: the motion says nothing about timing, in either direction
-        lat_info["determined"] = lat_info["acausal"] = False
+        lat_info = replace(lat_info, determined=False, acausal=False)
 
     # 3. physical effect -----------------------------------------------------------------------
     C_used = C_nom.copy()
@@ -222,12 +220,12 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                                    rate_bias)
     verdict = _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info)
     lag = cmp_.lag_s if cmp_ is not None else None
-    act = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else None
+    act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
     total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
     return ControllerJudgement(
         law=law, axes=tuple(axes), verdict=verdict, reasons=tuple(reasons), anomalies=tuple(anomalies),
         latency_s=total, command_lag_s=lag, actuation_latency_s=act,
-        actuation_latency_interval_s=lat_info["interval_s"] if lat_info is not None else None,
+        actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
         rate_trend=effect["rate_trend"], energy_time_constant_s=effect.get("tau_E"),
         energy_time_constant_expected_s=effect.get("tau_E_exp"),
         momentum_error_trend=effect.get("h_trend"), momentum_error_time_constant_s=effect.get("tau_h"),
@@ -257,41 +255,6 @@ class _Context:
     imax: np.ndarray
     span: tuple[np.datetime64, np.datetime64]
     sampling: str
-
-
-def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | None:
-    """Best latency of zero or more, its 3-sigma range (profile chi-square within 9 of the best
-    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, and the check
-    of causality, all in units of the best fit's scaled residual variance.
-
-    A current cannot act before its command, so the latency is bounded below by zero and its range
-    is the bounded profile's. The negative trials test the time tags instead: when the best of them
-    beats the best causal trial by ``LATENCY_DELTA_CHI2`` or more, the motion says, at 3 sigma, that
-    the torque came before the logged command, and the latency is left undetermined ("acausal").
-
-    The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
-    model errors (attitude error) make them optimistic, so decisions use the 3-sigma range."""
-    causal = lat >= -1e-9
-    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss[causal])):
-        return None
-    unit = chi2_unit(scan_fit)
-    d = (wrss - np.nanmin(wrss[causal])) / unit
-    dd = np.where(causal, np.nan_to_num(d, nan=np.inf), np.inf)
-    inside = lat[dd <= 1.0]
-    wide = lat[dd <= LATENCY_DELTA_CHI2]
-    d0 = d[np.argmin(np.abs(lat))] if np.min(np.abs(lat)) < 1e-9 else np.nan
-    lo, hi = float(wide.min()), float(wide.max())
-    # chi-square gained by letting the torque come before its command, and where it is best
-    neg = ~causal & np.isfinite(d)
-    gain = float(max(-np.min(d[neg]), 0.0)) if neg.any() else 0.0
-    acausal = gain >= LATENCY_DELTA_CHI2
-    return {"latency_s": float(scan_fit.latency_s), "interval_s": (lo, hi), "delta_chi2_zero": float(d0),
-            "interval_1sigma_s": (float(inside.min()), float(inside.max())),
-            "acausal": acausal, "acausal_delta_chi2": gain,
-            "acausal_latency_s": float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
-            # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
-            # at most two periods, i.e. the latency is known to within about one period
-            "determined": bool(not acausal and wide.max() - wide.min() <= LATENCY_DETERMINED_PERIODS * period_s + 1e-9)}
 
 
 def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
@@ -406,8 +369,8 @@ def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
                            f"({cmp_.lag_s / T:.1f} control periods)", value=cmp_.lag_s))
     if lat_info is None:
         return
-    if lat_info["acausal"]:
-        La, g = lat_info["acausal_latency_s"], lat_info["acausal_delta_chi2"]
+    if lat_info.acausal:
+        La, g = lat_info.acausal_latency_s, lat_info.acausal_delta_chi2
         text = (f"the motion is best explained with the coil currents acting {-La:.2f} s before their logged "
                 f"command time (profile chi-square {g:.0f} below the best delay of zero or more, 3 sigma at "
                 f"{LATENCY_DELTA_CHI2:.0f}); a current cannot flow before it is commanded, so the time tags of the "
@@ -415,8 +378,8 @@ def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
         out.append(_an(ctx, "actuation_before_command", "info", text, value=La))
         reasons.append(text)
         return
-    L, (lo, hi), d0 = lat_info["latency_s"], lat_info["interval_s"], lat_info["delta_chi2_zero"]
-    if lat_info["determined"] and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
+    L, (lo, hi), d0 = lat_info.latency_s, lat_info.interval_s, lat_info.delta_chi2_zero
+    if lat_info.determined and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
         out.append(_an(ctx, "command_latency", "warning",
                        f"coil currents act {L:.1f} s (3-sigma range {lo:.1f} to {hi:.1f} s) after their logged command "
                        f"time, {L / T:.1f} control periods; the motion rejects immediate action (profile "
@@ -499,15 +462,15 @@ def _rate_bias_findings(ctx, rate_bias, out) -> None:
     tools read from this pass (attitude.csv) carries it too. Only the collective evidence is quoted:
     the bias is well determined where the body turns fast (the gyroscopic term is proportional to
     the rate) and poorly where it has slowed, so single knot values would mislead."""
-    if not rate_bias or not rate_bias["used"]:
+    if rate_bias is None or not rate_bias.used:
         return
-    n = int(np.size(rate_bias["rad_s"]))
+    n = int(np.size(rate_bias.rad_s))
     out.append(_an(
         ctx, "rate_history_biased", "info",
         f"the motion is explained better when the rate history may carry a slowly varying bias (chi-square "
-        f"gain {rate_bias['delta_chi2']:.0f} for {n} unknowns, against the Schwarz penalty "
-        f"{rate_bias['penalty']:.0f}): the reconstructed rate and gyro bias deserve a check; the coils and "
-        "the latency were judged with that bias estimated alongside", value=rate_bias["delta_chi2"]))
+        f"gain {rate_bias.delta_chi2:.0f} for {n} unknowns, against the Schwarz penalty "
+        f"{rate_bias.penalty:.0f}): the reconstructed rate and gyro bias deserve a check; the coils and "
+        "the latency were judged with that bias estimated alongside", value=rate_bias.delta_chi2))
 
 
 def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks, rate_bias=None):
@@ -533,7 +496,7 @@ def _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info=None) -> str:
         return "not_as_intended"
     if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
         return "undetermined"
-    if lat_info is not None and lat_info["acausal"]:
+    if lat_info is not None and lat_info.acausal:
         return "undetermined"
     if not all(_command_verified(cmp_, a) for a in range(3)):
         return "undetermined"

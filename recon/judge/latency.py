@@ -18,9 +18,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .dipole import DipoleFit, identify_dipole, motion_splines
+from .dipole import DipoleFit, chi2_unit, identify_dipole, motion_splines
+from .thresholds import LATENCY_DELTA_CHI2, LATENCY_DETERMINED_PERIODS
+from .types import LatencyProfile
 
-__all__ = ["LatencyScan", "scan_actuation_latency"]
+__all__ = ["LatencyScan", "scan_actuation_latency", "latency_profile"]
 
 
 @dataclass(frozen=True)
@@ -127,3 +129,51 @@ def _refined(trials: dict[float, DipoleFit | None], latencies_s: np.ndarray, lo:
         if not any(abs(L - x) < 1e-9 for x in (*trials, *new)):
             new[L] = fit(L)
     return new
+
+
+def latency_profile(scan_fit: DipoleFit | None, lat: np.ndarray, wrss: np.ndarray, period_s: float
+                    ) -> LatencyProfile | None:
+    """Best latency of zero or more, its 3-sigma range (profile chi-square within 9 of the best
+    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, and the check
+    of causality, all in units of the best fit's scaled residual variance.
+
+    A current cannot act before its command, so the latency is bounded below by zero and its range
+    is the bounded profile's. The negative trials test the time tags instead: when the best of them
+    beats the best causal trial by ``LATENCY_DELTA_CHI2`` or more, the motion says, at 3 sigma, that
+    the torque came before the logged command, and the latency is left undetermined ("acausal").
+
+    The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
+    model errors (attitude error) make them optimistic, so decisions use the 3-sigma range.
+
+    Parameters
+    ----------
+    scan_fit : the best causal fit of the scan (its ``ar1``, ``chi2_per_dof`` and ``latency_s``)
+    lat : (L,) trial latencies, s, sorted; wrss : (L,) their weighted residual sums (NaN: failed)
+    period_s : control period, s
+
+    Returns
+    -------
+    LatencyProfile, or None when no causal trial was fitted
+    """
+    causal = lat >= -1e-9
+    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss[causal])):
+        return None
+    unit = chi2_unit(scan_fit)
+    d = (wrss - np.nanmin(wrss[causal])) / unit
+    dd = np.where(causal, np.nan_to_num(d, nan=np.inf), np.inf)
+    inside = lat[dd <= 1.0]
+    wide = lat[dd <= LATENCY_DELTA_CHI2]
+    d0 = d[np.argmin(np.abs(lat))] if np.min(np.abs(lat)) < 1e-9 else np.nan
+    lo, hi = float(wide.min()), float(wide.max())
+    # chi-square gained by letting the torque come before its command, and where it is best
+    neg = ~causal & np.isfinite(d)
+    gain = float(max(-np.min(d[neg]), 0.0)) if neg.any() else 0.0
+    acausal = gain >= LATENCY_DELTA_CHI2
+    return LatencyProfile(
+        latency_s=float(scan_fit.latency_s), interval_s=(lo, hi), delta_chi2_zero=float(d0),
+        interval_1sigma_s=(float(inside.min()), float(inside.max())),
+        acausal=acausal, acausal_delta_chi2=gain,
+        acausal_latency_s=float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
+        # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
+        # at most two periods, i.e. the latency is known to within about one period
+        determined=bool(not acausal and wide.max() - wide.min() <= LATENCY_DETERMINED_PERIODS * period_s + 1e-9))

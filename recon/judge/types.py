@@ -156,3 +156,53 @@ class ControllerJudgement:
             "anomalies": [a.to_dict() for a in self.anomalies],
         })
         return out
+
+
+@dataclass(frozen=True)
+class LatencyProfile:
+    """What the latency profile says (see :func:`.latency.latency_profile`); chi-square figures in units
+    of the best fit's scaled residual variance.
+
+    Attributes
+    ----------
+    latency_s : best trial latency of zero or more, s
+    interval_s : (lo, hi) 3-sigma range of the latency (profile chi-square within 9 of the best causal
+        trial), s
+    interval_1sigma_s : (lo, hi) 1-sigma range (within 1), s
+    delta_chi2_zero : profile chi-square of zero latency above the best causal trial (NaN: no zero trial)
+    acausal : the motion prefers the torque before its command, at 3 sigma
+    acausal_delta_chi2 : chi-square gained by the best negative trial over the best causal one (>= 0)
+    acausal_latency_s : that negative trial latency, s, or None (no negative trial)
+    determined : causal at 3 sigma and known to within about one control period
+    """
+
+    latency_s: float
+    interval_s: tuple[float, float]
+    delta_chi2_zero: float
+    interval_1sigma_s: tuple[float, float]
+    acausal: bool
+    acausal_delta_chi2: float
+    acausal_latency_s: float | None
+    determined: bool
+
+
+@dataclass(frozen=True)
+class RateBiasEvidence:
+    """Whether the identification needed a slowly varying bias of the rate history (Schwarz's criterion).
+
+    Attributes
+    ----------
+    used : the bias was estimated in the fit the judgement rests on
+    delta_chi2 : chi-square gained by the bias unknowns (NaN when a fit is missing)
+    penalty : Schwarz's penalty k ln(m) (NaN when a fit is missing)
+    knots_s : (K,) knots of the piecewise-linear bias, s, when used
+    rad_s : (K, 3) the bias at the knots (history minus motion), rad/s, body frame, when used
+    sigma_rad_s : (K, 3) its 1-sigma, rad/s, when used
+    """
+
+    used: bool
+    delta_chi2: float
+    penalty: float
+    knots_s: np.ndarray | None = None
+    rad_s: np.ndarray | None = None
+    sigma_rad_s: np.ndarray | None = None
