@@ -226,23 +226,24 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         law=law, axes=tuple(axes), verdict=verdict, reasons=tuple(reasons), anomalies=tuple(anomalies),
         latency_s=total, command_lag_s=lag, actuation_latency_s=act,
         actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
-        rate_trend=effect["rate_trend"], energy_time_constant_s=effect.get("tau_E"),
-        energy_time_constant_expected_s=effect.get("tau_E_exp"),
-        momentum_error_trend=effect.get("h_trend"), momentum_error_time_constant_s=effect.get("tau_h"),
-        momentum_error_time_constant_expected_s=effect.get("tau_h_exp"),
-        magnetic_power_mean_W=effect.get("power_W"), damping_fraction=effect.get("damping_fraction"),
+        rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
+        energy_time_constant_expected_s=effect.energy_time_constant_expected_s,
+        momentum_error_trend=effect.momentum_error_trend,
+        momentum_error_time_constant_s=effect.momentum_error_time_constant_s,
+        momentum_error_time_constant_expected_s=effect.momentum_error_time_constant_expected_s,
+        magnetic_power_mean_W=effect.magnetic_power_mean_W, damping_fraction=effect.damping_fraction,
         loop_gain=loop.get("loop_gain"), crosstalk_coupling=loop.get("coupling"),
         chatter_fraction_without_coil_field=(finite_or_none(float(np.nanmax(loop["chatter_without"])))
                                              if "chatter_without" in loop else None),
-        bdot_equivalent_gain_Nms=effect.get("k_eq"), near_optimal_gain_Nms=effect.get("k_ag"),
-        rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
+        bdot_equivalent_gain_Nms=effect.bdot_equivalent_gain_Nms, near_optimal_gain_Nms=effect.near_optimal_gain_Nms,
+        rate_floor_rad_s=effect.rate_floor_rad_s, dipole_per_amp_matrix=None if fit is None else fit.C,
         dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
         replay_time_utc=epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
         replay_i_A=i_rep,
         extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
                 "latency": lat_info, "rate_bias": rate_bias,
-                "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
+                "effect": effect,
                 "n_ticks": int(len(ticks)), "n_segments": n_seg},
     )
 
@@ -388,10 +389,10 @@ def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
 
 def _effect_findings(ctx, effect, out, reasons) -> None:
     if ctx.law == "bdot":
-        tr, tre = effect.get("energy_trend"), effect.get("energy_trend_expected")
+        tr, tre = effect.energy_fit, effect.energy_expected
         code_up, code_slow, what = "rate_increasing", "detumble_slow", "kinetic energy"
     elif ctx.law == "cross_product":
-        tr, tre = effect.get("h_trend_obj"), effect.get("h_trend_expected")
+        tr, tre = effect.momentum_error_fit, effect.momentum_error_expected
         code_up, code_slow, what = "momentum_error_increasing", "momentum_dump_slow", "momentum error |h - h_target|"
     else:
         return
@@ -405,18 +406,19 @@ def _effect_findings(ctx, effect, out, reasons) -> None:
                        f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} per s, "
                        f"{np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) where the "
                        f"configured law should have reduced it (expected time constant {tau_exp:.0f} s); mean "
-                       f"magnetic power {effect.get('power_W', float('nan')):+.2e} W (positive pumps energy in)",
+                       f"magnetic power {effect.magnetic_power_mean_W:+.2e} W (positive pumps energy in)",
                        value=tr.slope_per_s))
         return
     if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
         return
-    ratio = effect.get("efficiency", float("nan"))
+    ratio = effect.efficiency if effect.efficiency is not None else float("nan")
     if np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR:
         obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
         extra = ""
-        if ctx.law == "bdot" and effect.get("k_eq") and effect.get("k_ag"):
-            extra = (f"; B-dot equivalent gain k <|B|^2> = {effect['k_eq']:.2e} N m s, "
-                     f"{effect['k_eq'] / effect['k_ag']:.1f} times the near-optimal {effect['k_ag']:.2e} N m s "
+        k_eq, k_ag = effect.bdot_equivalent_gain_Nms, effect.near_optimal_gain_Nms
+        if ctx.law == "bdot" and k_eq and k_ag:
+            extra = (f"; B-dot equivalent gain k <|B|^2> = {k_eq:.2e} N m s, "
+                     f"{k_eq / k_ag:.1f} times the near-optimal {k_ag:.2e} N m s "
                      "(Avanzini and Giulietti 2012)")
         out.append(_an(ctx, code_slow, "warning",
                        f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
@@ -427,12 +429,12 @@ def _effect_findings(ctx, effect, out, reasons) -> None:
 def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
     if ctx.law != "bdot" or not np.any(np.isfinite(chatter)):
         return
-    rot = effect.get("mean_rate_rad_s", 0.0) * ctx.period_s / np.pi
+    rot = effect.mean_rate_rad_s * ctx.period_s / np.pi
     a = int(np.nanargmax(chatter))
     cf = float(chatter[a])
     lg = loop.get("loop_gain")
     detected = cf >= CHATTER_FRACTION_LIMIT and cf >= CHATTER_ROTATION_FACTOR * rot
-    rate_txt = f"{np.degrees(effect.get('mean_rate_rad_s', 0.0)):.1f} deg/s"
+    rate_txt = f"{np.degrees(effect.mean_rate_rad_s):.1f} deg/s"
     if detected:
         head = (f"coil commands flip between the current limits on {100 * cf:.0f} % of ticks (axis {AXES[a]}); the "
                 f"body's rotation ({rate_txt}) alone would flip about {100 * rot:.1f} %")

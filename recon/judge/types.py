@@ -9,7 +9,8 @@ import numpy as np
 
 from ..core import Anomaly
 
-__all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none"]
+__all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none", "LatencyProfile", "RateBiasEvidence",
+           "Trend", "EffectAssessment"]
 
 AXES = ("x", "y", "z")
 
@@ -206,3 +207,72 @@ class RateBiasEvidence:
     knots_s: np.ndarray | None = None
     rad_s: np.ndarray | None = None
     sigma_rad_s: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class Trend:
+    """Straight-line fit of ln x against time on block means.
+
+    Attributes
+    ----------
+    slope_per_s : float, d ln x / dt, 1/s
+    sigma_per_s : float, 1-sigma of the slope, 1/s
+    duration_s : float, span of the data, s
+    n_blocks : int
+    """
+
+    slope_per_s: float
+    sigma_per_s: float
+    duration_s: float
+    n_blocks: int
+
+    @property
+    def time_constant_s(self) -> float:
+        """-1 / slope: the e-folding time of a decrease (negative for an increase), s."""
+        return float(-1.0 / self.slope_per_s) if self.slope_per_s != 0 else float("inf")
+
+
+@dataclass(frozen=True)
+class EffectAssessment:
+    """The physical effect of the controller over one pass (see :func:`.effect.assess_effect`).
+
+    Attributes
+    ----------
+    rate_trend : "decreasing" | "steady" | "increasing", of the kinetic energy
+    energy_fit : Trend of ln E observed, or None (too few samples)
+    energy_time_constant_s : its -1 / slope, s, or None
+    mean_rate_rad_s : mean |w|, rad/s
+    magnetic_power_mean_W : mean of w . (m x B) with the coils' best-known dipoles, W (negative damps)
+    damping_fraction : fraction of the time that power is negative (None: no torque at all)
+    magnetic_power_axis_W : (3,) the same mean power per coil, W
+    energy_expected, energy_time_constant_expected_s : B-dot only: the trend of ln E the replayed law
+        should have produced along the observed trajectory, and its time constant, s
+    bdot_equivalent_gain_Nms : B-dot only: k <|B|^2>, N m s
+    momentum_error_trend : cross-product only: the label of |h - h_target|'s trend
+    momentum_error_fit, momentum_error_expected : cross-product only: its Trend observed and expected
+    momentum_error_time_constant_s, momentum_error_time_constant_expected_s : their time constants, s
+    efficiency : observed over expected slope (of ln E for B-dot, of ln |h_err| for cross-product)
+    rate_floor_rad_s : 2 n, the rate B-dot cannot damp below, rad/s (with orbit positions)
+    geomagnetic_inclination_rad : xi_m (with orbit positions and the reference field)
+    near_optimal_gain_Nms : 2 n (1 + sin xi_m) J_min (Avanzini and Giulietti 2012), N m s
+    """
+
+    rate_trend: str
+    energy_fit: Trend | None
+    energy_time_constant_s: float | None
+    mean_rate_rad_s: float
+    magnetic_power_mean_W: float
+    damping_fraction: float | None
+    magnetic_power_axis_W: np.ndarray
+    energy_expected: Trend | None = None
+    energy_time_constant_expected_s: float | None = None
+    bdot_equivalent_gain_Nms: float | None = None
+    momentum_error_trend: str | None = None
+    momentum_error_fit: Trend | None = None
+    momentum_error_expected: Trend | None = None
+    momentum_error_time_constant_s: float | None = None
+    momentum_error_time_constant_expected_s: float | None = None
+    efficiency: float | None = None
+    rate_floor_rad_s: float | None = None
+    geomagnetic_inclination_rad: float | None = None
+    near_optimal_gain_Nms: float | None = None
