@@ -12,6 +12,7 @@ from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.core import InputError, MU_EARTH_km3_s2
 from recon.judge import dipole as dip
 from recon.judge import effect as eff
+from recon.judge import feedback
 from recon.judge import replay as rep
 from recon.judge.judgement import judge_pass
 from recon.judge.latency import latency_profile
@@ -35,7 +36,7 @@ def test_loop_gain_positive_coupling_is_twice_coupling(g):
     # Derivation (Franklin, Powell & Workman 1998, ch. 7, roots of the characteristic equation):
     # i_k = -g (i_{k-1} - i_{k-2}) has z^2 + g z - g = 0, a root at z = -1 when g = 1/2, so the
     # gain margin is 1 / (2 g): loop gain 2 g.
-    lg, coupling = rep.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
+    lg, coupling = feedback.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
     assert coupling == pytest.approx(g, rel=1e-12)
     assert lg == pytest.approx(2 * g, rel=LOOP_GAIN_TOL)
 
@@ -43,7 +44,7 @@ def test_loop_gain_positive_coupling_is_twice_coupling(g):
 @pytest.mark.parametrize("g", [-0.4, -0.9, -1.5])
 def test_loop_gain_negative_coupling_is_coupling(g):
     # z^2 - h z + h = 0 with h = -g has complex roots of modulus sqrt(h): unstable from h = 1.
-    lg, _ = rep.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
+    lg, _ = feedback.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
     assert lg == pytest.approx(abs(g), rel=LOOP_GAIN_TOL)
 
 
@@ -53,7 +54,7 @@ def test_loop_gain_threshold_matches_iterated_recurrence(seed, delay):
     # Invariant: a loop gain below 1 decays, above 1 grows, when the recurrence is iterated.
     rng = np.random.default_rng(seed)
     K = rng.normal(0, 20_000.0, (3, 3))
-    lg, _ = rep.crosstalk_loop_gain(K, C_NOM, 40_000.0, 1.0, delay_ticks=delay)
+    lg, _ = feedback.crosstalk_loop_gain(K, C_NOM, 40_000.0, 1.0, delay_ticks=delay)
     G0 = 40_000.0 * 1e-9 * np.linalg.solve(C_NOM, K)
     for factor, grows in ((0.9, False), (1.1, True)):
         G = G0 * factor / lg
@@ -64,7 +65,7 @@ def test_loop_gain_threshold_matches_iterated_recurrence(seed, delay):
 
 
 def test_loop_gain_zero_crosstalk():
-    assert rep.crosstalk_loop_gain(np.zeros((3, 3)), C_NOM, 40_000.0, 1.0) == (0.0, 0.0)
+    assert feedback.crosstalk_loop_gain(np.zeros((3, 3)), C_NOM, 40_000.0, 1.0) == (0.0, 0.0)
 
 
 # ------------------------------------------------------------------------------------------ replay

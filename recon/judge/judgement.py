@@ -36,7 +36,6 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-from typing import Any
 
 import numpy as np
 
@@ -45,6 +44,7 @@ from ..core import Anomaly, applied_current, control_ticks, held_values, tick_ph
 from . import effect as eff
 from . import replay as rep
 from .dipole import classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .feedback import assess_crosstalk_feedback
 from .inputs import check_pass_inputs, checked_array, seconds_since
 from .latency import latency_profile, scan_actuation_latency
 from .thresholds import (
@@ -66,7 +66,7 @@ from .thresholds import (
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
 )
-from .types import AXES, AxisJudgement, ControllerJudgement, RateBiasEvidence, finite_or_none
+from .types import AXES, AxisJudgement, ControllerJudgement, CrosstalkFeedback, RateBiasEvidence, finite_or_none
 
 __all__ = ["judge_pass"]
 
@@ -207,14 +207,14 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                                b_gcrf_nT=d.b_gcrf_nT)
 
     # 4. crosstalk feedback --------------------------------------------------------------------
-    loop: dict[str, Any] = {}
+    loop: CrosstalkFeedback | None = None
     if law == "bdot" and K is not None:
         L_act = fit.latency_s if fit is not None else 0.0
         seen = (np.zeros((len(ticks), 3)) if coils.mag_sampling == "coils_off" else
                 applied_current(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
-        loop = rep.assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
-                                             i_seen_at_tick_A=seen, max_current_A=imax,
-                                             delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
+        loop = assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
+                                         i_seen_at_tick_A=seen, max_current_A=imax,
+                                         delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
 
     anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks),
                                    rate_bias)
@@ -232,9 +232,10 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         momentum_error_time_constant_s=effect.momentum_error_time_constant_s,
         momentum_error_time_constant_expected_s=effect.momentum_error_time_constant_expected_s,
         magnetic_power_mean_W=effect.magnetic_power_mean_W, damping_fraction=effect.damping_fraction,
-        loop_gain=loop.get("loop_gain"), crosstalk_coupling=loop.get("coupling"),
-        chatter_fraction_without_coil_field=(finite_or_none(float(np.nanmax(loop["chatter_without"])))
-                                             if "chatter_without" in loop else None),
+        loop_gain=loop.loop_gain if loop is not None else None,
+        crosstalk_coupling=loop.coupling if loop is not None else None,
+        chatter_fraction_without_coil_field=(finite_or_none(float(np.nanmax(loop.chatter_without)))
+                                             if loop is not None else None),
         bdot_equivalent_gain_Nms=effect.bdot_equivalent_gain_Nms, near_optimal_gain_Nms=effect.near_optimal_gain_Nms,
         rate_floor_rad_s=effect.rate_floor_rad_s, dipole_per_amp_matrix=None if fit is None else fit.C,
         dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
@@ -432,16 +433,16 @@ def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
     rot = effect.mean_rate_rad_s * ctx.period_s / np.pi
     a = int(np.nanargmax(chatter))
     cf = float(chatter[a])
-    lg = loop.get("loop_gain")
+    lg = loop.loop_gain if loop is not None else None
     detected = cf >= CHATTER_FRACTION_LIMIT and cf >= CHATTER_ROTATION_FACTOR * rot
     rate_txt = f"{np.degrees(effect.mean_rate_rad_s):.1f} deg/s"
     if detected:
         head = (f"coil commands flip between the current limits on {100 * cf:.0f} % of ticks (axis {AXES[a]}); the "
                 f"body's rotation ({rate_txt}) alone would flip about {100 * rot:.1f} %")
         if lg is not None and lg >= LOOP_GAIN_LIMIT:
-            cw = loop.get("chatter_without")
-            cw_txt = f"{100 * float(np.nanmax(cw)):.0f} %" if cw is not None and np.any(np.isfinite(cw)) else "n/a"
-            kmax = float(np.max(np.abs(loop["K_body_nT_per_A"])))
+            cw = loop.chatter_without
+            cw_txt = f"{100 * float(np.nanmax(cw)):.0f} %" if np.any(np.isfinite(cw)) else "n/a"
+            kmax = float(np.max(np.abs(loop.K_body_nT_per_A)))
             out.append(_an(ctx, "crosstalk_feedback", "critical",
                            f"{head}; the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates; "
                            f"crosstalk up to {kmax:.0f} nT/A) and the law replayed with the coils' field removed "

@@ -10,7 +10,7 @@ import numpy as np
 from ..core import Anomaly
 
 __all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none", "LatencyProfile", "RateBiasEvidence",
-           "Trend", "EffectAssessment"]
+           "Trend", "EffectAssessment", "CrosstalkFeedback"]
 
 AXES = ("x", "y", "z")
 
@@ -276,3 +276,21 @@ class EffectAssessment:
     rate_floor_rad_s: float | None = None
     geomagnetic_inclination_rad: float | None = None
     near_optimal_gain_Nms: float | None = None
+
+
+@dataclass(frozen=True)
+class CrosstalkFeedback:
+    """The coil-field feedback of B-dot (see :func:`.feedback.assess_crosstalk_feedback`).
+
+    Attributes
+    ----------
+    loop_gain : reciprocal gain margin of the coil-field loop (>= 1 oscillates)
+    coupling : spectral radius of (k/T) 1e-9 C^-1 K_body, the single-step coil-field coupling
+    K_body_nT_per_A : (3, 3) crosstalk in body axes, nT per A
+    chatter_without : (3,) chatter fraction of the law replayed with ``K_body i`` removed from its samples
+    """
+
+    loop_gain: float
+    coupling: float
+    K_body_nT_per_A: np.ndarray
+    chatter_without: np.ndarray
