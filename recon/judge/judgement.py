@@ -35,38 +35,34 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import Anomaly, applied_current, control_ticks, held_values, tick_phase
+from ..core import applied_current, control_ticks, held_values, tick_phase
 from . import effect as eff
 from . import replay as rep
 from .dipole import classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
 from .feedback import assess_crosstalk_feedback
+from .findings import findings, verdict
 from .inputs import check_pass_inputs, checked_array, seconds_since
 from .latency import latency_profile, scan_actuation_latency
 from .thresholds import (
-    CHATTER_FRACTION_LIMIT,
-    CHATTER_ROTATION_FACTOR,
-    COIL_GAIN_SIGMAS,
-    COIL_GAIN_TOLERANCE,
-    COMMAND_GAIN_TOLERANCE,
-    COMMAND_MIN_CORRELATION,
-    COMMAND_MIN_TICKS,
-    DETUMBLE_SLOW_FACTOR,
-    EXPECTED_MIN_CHANGE,
-    LATENCY_DELTA_CHI2,
-    LATENCY_LIMIT_PERIODS,
-    LOOP_GAIN_LIMIT,
     MAX_LATENCY_PERIODS,
     MIN_SEGMENTS,
     RATE_BIAS_KNOT_S,
-    SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
 )
-from .types import AXES, AxisJudgement, ControllerJudgement, CrosstalkFeedback, RateBiasEvidence, finite_or_none
+from .types import (
+    AXES,
+    AxisJudgement,
+    ControllerJudgement,
+    CrosstalkFeedback,
+    PassContext,
+    RateBiasEvidence,
+    finite_or_none,
+)
 
 __all__ = ["judge_pass"]
 
@@ -142,7 +138,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     ticks = control_ticks(lo, hi, T, first)
     gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
-    ctx = _Context(law, T, C_nom, imax, span, coils.mag_sampling)
+    ctx = PassContext(law, T, C_nom, imax, span, coils.mag_sampling)
 
     # 1. command replay ------------------------------------------------------------------------
     b_tick = rep.tick_samples_nT(t_mag, b_mag_body, ticks, sampling=coils.mag_sampling, off_window_s=window)
@@ -216,14 +212,16 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                                          i_seen_at_tick_A=seen, max_current_A=imax,
                                          delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
 
-    anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks),
-                                   rate_bias)
-    verdict = _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info)
+    found = findings(ctx, axes=tuple(axes), identified=fit is not None, comparison=cmp_, latency=lat_info,
+                     effect=effect, feedback=loop, chatter=chatter, n_segments=n_seg, n_ticks=len(ticks),
+                     rate_bias=rate_bias)
+    anomalies, reasons = found.anomalies, found.reasons
+    verdict_ = verdict(ctx, tuple(axes), anomalies, cmp_, lat_info)
     lag = cmp_.lag_s if cmp_ is not None else None
     act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
     total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
     return ControllerJudgement(
-        law=law, axes=tuple(axes), verdict=verdict, reasons=tuple(reasons), anomalies=tuple(anomalies),
+        law=law, axes=tuple(axes), verdict=verdict_, reasons=reasons, anomalies=anomalies,
         latency_s=total, command_lag_s=lag, actuation_latency_s=act,
         actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
         rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
@@ -249,20 +247,10 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     )
 
 
-@dataclass(frozen=True)
-class _Context:
-    law: str
-    period_s: float
-    C_nom: np.ndarray
-    imax: np.ndarray
-    span: tuple[np.datetime64, np.datetime64]
-    sampling: str
-
-
-def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
+def _axes(ctx: PassContext, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
     out = []
     for a, name in enumerate(AXES):
-        c0 = float(ctx.C_nom[a, a])
+        c0 = float(ctx.C_nominal[a, a])
         rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
         if fit is not None and np.isfinite(fit.C_sigma[a, a]):
             pol, conf, r, rs = classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
@@ -278,229 +266,3 @@ def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
             saturation_fraction=f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
             chatter_fraction=f(chatter[a]), rms_current_A=f(rms)))
     return out
-
-
-
-
-# ------------------------------------------------------------------------------------------ findings
-def _an(ctx: _Context, code: str, severity: str, evidence: str, axis: str | None = None,
-        value: float | None = None) -> Anomaly:
-    return Anomaly(code, severity, evidence, ctx.span[0], ctx.span[1], axis,
-                   finite_or_none(value) if value is not None else None)
-
-
-def _command_verified(cmp_, a: int) -> bool:
-    if cmp_ is None or not np.isfinite(cmp_.correlation[a]) or cmp_.correlation[a] < COMMAND_MIN_CORRELATION:
-        return False
-    if cmp_.n_informative[a] >= COMMAND_MIN_TICKS:
-        return bool(abs(cmp_.gain_ratio[a] - 1.0) <= COMMAND_GAIN_TOLERANCE)
-    return True
-
-
-def _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons) -> None:
-    if fit is None:
-        if n_seg < MIN_SEGMENTS:
-            reasons.append(f"pass too short to identify the coils from the motion: {n_ticks} control ticks "
-                           f"({n_ticks * ctx.period_s:.0f} s) make {n_seg} segments of {SEGMENT_POINTS - 1} "
-                           f"periods, {MIN_SEGMENTS} are needed")
-        else:
-            reasons.append("the coils could not be identified from the motion: too few usable instants "
-                           "(gaps in the coil log or the rate history)")
-        return
-    for a, ax in enumerate(axes):
-        est, sig, c0, r, rs = (ax.dipole_per_amp_estimated, ax.dipole_per_amp_sigma, ax.dipole_per_amp_nominal,
-                               ax.gain_ratio, ax.gain_ratio_sigma)
-        if est is None or sig is None:
-            head = f"coil {ax.axis}: no dipole estimate (nominal {c0:+.2f} A m^2/A)"
-        else:
-            head = f"coil {ax.axis}: estimated dipole {est:+.2f} +- {sig:.2f} A m^2/A against nominal {c0:+.2f}"
-        rms = f"{(ax.rms_current_A or 0.0) * 1e3:.1f} mA rms"
-        if ax.polarity == "inverted":
-            why = ""
-            if ax.command_gain_ratio is not None and abs(ax.command_gain_ratio - 1) <= COMMAND_GAIN_TOLERANCE:
-                why = (f"; the logged commands follow the law (command gain ratio {ax.command_gain_ratio:.2f}), "
-                       "so the reversal is in the coil or its wiring")
-            out.append(_an(ctx, "coil_polarity_inverted", "critical",
-                           f"{head}: polarity inverted ({ax.polarity_confidence:.0f} sigma from zero){why}",
-                           ax.axis, est))
-        elif ax.polarity == "no_response":
-            out.append(_an(ctx, "coil_no_response", "critical",
-                           f"{head}: no response ({ax.polarity_confidence:.0f} sigma below nominal) while "
-                           f"commanded at {rms}", ax.axis, est))
-        elif ax.polarity == "undetermined":
-            if not ax.rms_current_A:
-                reasons.append(f"{head}: the coil carried no current during the pass")
-            else:
-                reasons.append(f"{head}: cannot be told from nominal or from zero at 3 sigma "
-                               f"(current {rms}, {100 * ax.rms_current_A / ctx.imax[a]:.0f} % of the limit)")
-        if ax.polarity in ("nominal", "inverted"):
-            lo, hi = abs(r) - COIL_GAIN_SIGMAS * rs, abs(r) + COIL_GAIN_SIGMAS * rs
-            if lo > 1 + COIL_GAIN_TOLERANCE or hi < 1 - COIL_GAIN_TOLERANCE:
-                out.append(_an(ctx, "coil_gain_off", "warning",
-                               f"coil {ax.axis}: dipole {abs(est):.2f} +- {sig:.2f} A m^2/A is {abs(r):.2f} of nominal "
-                               f"{abs(c0):.2f} (3-sigma interval {lo:.2f} to {hi:.2f}, outside "
-                               f"{1 - COIL_GAIN_TOLERANCE:.2f} to {1 + COIL_GAIN_TOLERANCE:.2f})", ax.axis, r))
-
-
-def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
-    T = ctx.period_s
-    if cmp_ is not None:
-        for a, ax in enumerate(axes):
-            cg, cc, n = cmp_.gain_ratio[a], cmp_.correlation[a], int(cmp_.n_informative[a])
-            bad_gain = n >= COMMAND_MIN_TICKS and abs(cg - 1.0) > COMMAND_GAIN_TOLERANCE
-            bad_corr = np.isfinite(cc) and cc < COMMAND_MIN_CORRELATION and n >= COMMAND_MIN_TICKS
-            if bad_gain or bad_corr:
-                sev = "critical" if (np.isfinite(cg) and cg < 0) else "warning"
-                out.append(_an(ctx, "command_mismatch", sev,
-                               f"axis {ax.axis}: logged commands are {cg:.2f} times the replayed {ctx.law} law "
-                               f"(correlation {cc:.2f} over {n} unsaturated ticks); a healthy law gives 1.00 within "
-                               f"{COMMAND_GAIN_TOLERANCE:.2f} and correlation above {COMMAND_MIN_CORRELATION}",
-                               ax.axis, cg))
-            elif not _command_verified(cmp_, a):
-                reasons.append(f"axis {ax.axis}: the logged commands could not be checked against the law "
-                               f"({n} informative ticks, correlation {cc:.2f})")
-            sf = cmp_.saturation_fraction[a]
-            if np.isfinite(sf) and sf > SATURATION_FRACTION_LIMIT:
-                out.append(_an(ctx, "controller_saturated", "warning",
-                               f"axis {ax.axis}: at the current limit ({ctx.imax[a] * 1e3:.0f} mA) on {100 * sf:.0f} % "
-                               f"of control ticks (more than {100 * SATURATION_FRACTION_LIMIT:.0f} %): the law acts "
-                               "as bang-bang there, not at its configured gain", ax.axis, sf))
-        if cmp_.lag_s is not None and abs(cmp_.lag_s) >= LATENCY_LIMIT_PERIODS * T:
-            out.append(_an(ctx, "command_latency", "warning",
-                           f"logged commands appear {cmp_.lag_s:.2f} s after the replayed law's tick "
-                           f"({cmp_.lag_s / T:.1f} control periods)", value=cmp_.lag_s))
-    if lat_info is None:
-        return
-    if lat_info.acausal:
-        La, g = lat_info.acausal_latency_s, lat_info.acausal_delta_chi2
-        text = (f"the motion is best explained with the coil currents acting {-La:.2f} s before their logged "
-                f"command time (profile chi-square {g:.0f} below the best delay of zero or more, 3 sigma at "
-                f"{LATENCY_DELTA_CHI2:.0f}); a current cannot flow before it is commanded, so the time tags of the "
-                "coil log or of the rate history are in error, and the actuation latency is not judged")
-        out.append(_an(ctx, "actuation_before_command", "info", text, value=La))
-        reasons.append(text)
-        return
-    L, (lo, hi), d0 = lat_info.latency_s, lat_info.interval_s, lat_info.delta_chi2_zero
-    if lat_info.determined and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
-        out.append(_an(ctx, "command_latency", "warning",
-                       f"coil currents act {L:.1f} s (3-sigma range {lo:.1f} to {hi:.1f} s) after their logged command "
-                       f"time, {L / T:.1f} control periods; the motion rejects immediate action (profile "
-                       f"chi-square +{d0:.0f} at zero delay)", value=L))
-
-
-def _effect_findings(ctx, effect, out, reasons) -> None:
-    if ctx.law == "bdot":
-        tr, tre = effect.energy_fit, effect.energy_expected
-        code_up, code_slow, what = "rate_increasing", "detumble_slow", "kinetic energy"
-    elif ctx.law == "cross_product":
-        tr, tre = effect.momentum_error_fit, effect.momentum_error_expected
-        code_up, code_slow, what = "momentum_error_increasing", "momentum_dump_slow", "momentum error |h - h_target|"
-    else:
-        return
-    if tr is None:
-        reasons.append(f"the {what} trend could not be fitted (too few rate samples)")
-        return
-    label = eff.trend_label(tr)
-    tau_exp = tre.time_constant_s if tre is not None else float("nan")
-    if label == "increasing":
-        out.append(_an(ctx, code_up, "critical",
-                       f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} per s, "
-                       f"{np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) where the "
-                       f"configured law should have reduced it (expected time constant {tau_exp:.0f} s); mean "
-                       f"magnetic power {effect.magnetic_power_mean_W:+.2e} W (positive pumps energy in)",
-                       value=tr.slope_per_s))
-        return
-    if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
-        return
-    ratio = effect.efficiency if effect.efficiency is not None else float("nan")
-    if np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR:
-        obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
-        extra = ""
-        k_eq, k_ag = effect.bdot_equivalent_gain_Nms, effect.near_optimal_gain_Nms
-        if ctx.law == "bdot" and k_eq and k_ag:
-            extra = (f"; B-dot equivalent gain k <|B|^2> = {k_eq:.2e} N m s, "
-                     f"{k_eq / k_ag:.1f} times the near-optimal {k_ag:.2e} N m s "
-                     "(Avanzini and Giulietti 2012)")
-        out.append(_an(ctx, code_slow, "warning",
-                       f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
-                       f"this trajectory (achieved {max(ratio, 0):.2f} of the expected decay rate, limit "
-                       f"1/{DETUMBLE_SLOW_FACTOR:.0f}){extra}", value=ratio))
-
-
-def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
-    if ctx.law != "bdot" or not np.any(np.isfinite(chatter)):
-        return
-    rot = effect.mean_rate_rad_s * ctx.period_s / np.pi
-    a = int(np.nanargmax(chatter))
-    cf = float(chatter[a])
-    lg = loop.loop_gain if loop is not None else None
-    detected = cf >= CHATTER_FRACTION_LIMIT and cf >= CHATTER_ROTATION_FACTOR * rot
-    rate_txt = f"{np.degrees(effect.mean_rate_rad_s):.1f} deg/s"
-    if detected:
-        head = (f"coil commands flip between the current limits on {100 * cf:.0f} % of ticks (axis {AXES[a]}); the "
-                f"body's rotation ({rate_txt}) alone would flip about {100 * rot:.1f} %")
-        if lg is not None and lg >= LOOP_GAIN_LIMIT:
-            cw = loop.chatter_without
-            cw_txt = f"{100 * float(np.nanmax(cw)):.0f} %" if np.any(np.isfinite(cw)) else "n/a"
-            kmax = float(np.max(np.abs(loop.K_body_nT_per_A)))
-            out.append(_an(ctx, "crosstalk_feedback", "critical",
-                           f"{head}; the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates; "
-                           f"crosstalk up to {kmax:.0f} nT/A) and the law replayed with the coils' field removed "
-                           f"from its samples flips on {cw_txt} of ticks: the coils' own field, seen by the "
-                           f"magnetometer (mag_sampling = {ctx.sampling}), feeds back through dB/dt",
-                           AXES[a], lg))
-        else:
-            lg_txt = f"loop gain {lg:.2f} < {LOOP_GAIN_LIMIT:.0f}" if lg is not None else "no crosstalk estimate"
-            out.append(_an(ctx, "crosstalk_feedback", "warning",
-                           f"{head}; {lg_txt}: the coils' field does not explain it", AXES[a], cf))
-    elif lg is not None and lg >= LOOP_GAIN_LIMIT and ctx.sampling == "coils_on":
-        out.append(_an(ctx, "crosstalk_feedback", "warning",
-                       f"the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates) with the "
-                       "magnetometer sampled while the coils are on, although commands flipped on only "
-                       f"{100 * cf:.0f} % of ticks in this pass", value=lg))
-
-
-def _rate_bias_findings(ctx, rate_bias, out) -> None:
-    """An info record when the identification needed a bias in the rate history: the rate other
-    tools read from this pass (attitude.csv) carries it too. Only the collective evidence is quoted:
-    the bias is well determined where the body turns fast (the gyroscopic term is proportional to
-    the rate) and poorly where it has slowed, so single knot values would mislead."""
-    if rate_bias is None or not rate_bias.used:
-        return
-    n = int(np.size(rate_bias.rad_s))
-    out.append(_an(
-        ctx, "rate_history_biased", "info",
-        f"the motion is explained better when the rate history may carry a slowly varying bias (chi-square "
-        f"gain {rate_bias.delta_chi2:.0f} for {n} unknowns, against the Schwarz penalty "
-        f"{rate_bias.penalty:.0f}): the reconstructed rate and gyro bias deserve a check; the coils and "
-        "the latency were judged with that bias estimated alongside", value=rate_bias.delta_chi2))
-
-
-def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks, rate_bias=None):
-    out: list[Anomaly] = []
-    reasons: list[str] = []
-    if ctx.law == "none":
-        reasons.append('no control law is configured (controller.law = "none"): there is no intended '
-                       "behaviour to check the coils against")
-    _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons)
-    _command_findings(ctx, axes, cmp_, lat_info, out, reasons)
-    _effect_findings(ctx, effect, out, reasons)
-    _feedback_findings(ctx, effect, loop, chatter, out)
-    _rate_bias_findings(ctx, rate_bias, out)
-    return out, reasons
-
-
-def _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info=None) -> str:
-    """"not_as_intended" on any critical or warning finding other than saturation (an operating
-    regime, not a fault); otherwise "as_intended" only when every coil's polarity and every axis's
-    commands were checked and the motion's timing is causal; "undetermined" (with ``reasons``) when
-    anything could not be."""
-    if any(a.severity in ("critical", "warning") and a.code != "controller_saturated" for a in anomalies):
-        return "not_as_intended"
-    if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
-        return "undetermined"
-    if lat_info is not None and lat_info.acausal:
-        return "undetermined"
-    if not all(_command_verified(cmp_, a) for a in range(3)):
-        return "undetermined"
-    return "as_intended"

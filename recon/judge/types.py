@@ -10,7 +10,7 @@ import numpy as np
 from ..core import Anomaly
 
 __all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none", "LatencyProfile", "RateBiasEvidence",
-           "Trend", "EffectAssessment", "CrosstalkFeedback"]
+           "Trend", "EffectAssessment", "CrosstalkFeedback", "PassContext"]
 
 AXES = ("x", "y", "z")
 
@@ -294,3 +294,23 @@ class CrosstalkFeedback:
     coupling: float
     K_body_nT_per_A: np.ndarray
     chatter_without: np.ndarray
+
+
+@dataclass(frozen=True)
+class PassContext:
+    """The setting of one judged pass that every finding refers to.
+
+    Attributes
+    ----------
+    law : "bdot" | "cross_product" | "none"; period_s : control period, s
+    C_nominal : (3, 3) the design's dipole per amp, A m^2 per A; max_current_A : (3,) A
+    span : (start, end) datetime64[ns] UTC of the judged stretch (the anomalies' time range)
+    mag_sampling : "coils_off" | "coils_on" | "windowed"
+    """
+
+    law: str
+    period_s: float
+    C_nominal: np.ndarray
+    max_current_A: np.ndarray
+    span: tuple[np.datetime64, np.datetime64]
+    mag_sampling: str
