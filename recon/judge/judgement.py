@@ -15,8 +15,11 @@ Four independent lines of evidence, each from plain arrays:
 3. Physical effect (:mod:`.effect`): the kinetic-energy (B-dot) or momentum-error
    (cross-product) trend against what the configured law should have achieved along the same
    trajectory, and the sign of the magnetic torque's power.
-4. Crosstalk feedback: the loop gain of the coils' own field through B-dot's derivative, and a
-   replay with that field removed from the samples.
+4. Crosstalk feedback (:mod:`.feedback`): the loop gain of the coils' own field through B-dot's
+   derivative, and a replay with that field removed from the samples.
+
+:func:`judge_pass` takes these as named steps on the checked inputs (:mod:`.inputs`), then turns the
+evidence into findings and a verdict (:mod:`.findings`).
 
 The decision thresholds are in :mod:`.thresholds`, each with its reason. A finding needs its own
 evidence at the stated confidence; where the data cannot decide (a short pass, coils that hardly
@@ -35,30 +38,29 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
 from ..core import applied_current, control_ticks, held_values, tick_phase
-from . import effect as eff
 from . import replay as rep
-from .dipole import classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .effect import assess_effect
 from .feedback import assess_crosstalk_feedback
 from .findings import findings, verdict
-from .inputs import check_pass_inputs, checked_array, seconds_since
+from .inputs import PassArrays, check_pass_inputs, checked_array, seconds_since
 from .latency import latency_profile, scan_actuation_latency
-from .thresholds import (
-    MAX_LATENCY_PERIODS,
-    MIN_SEGMENTS,
-    RATE_BIAS_KNOT_S,
-    SEGMENT_POINTS,
-)
+from .replay import CommandComparison
+from .thresholds import MAX_LATENCY_PERIODS, MIN_SEGMENTS, RATE_BIAS_KNOT_S, SEGMENT_POINTS
 from .types import (
     AXES,
     AxisJudgement,
     ControllerJudgement,
     CrosstalkFeedback,
+    EffectAssessment,
+    JudgementDiagnostics,
+    LatencyProfile,
     PassContext,
     RateBiasEvidence,
     finite_or_none,
@@ -66,7 +68,7 @@ from .types import (
 
 __all__ = ["judge_pass"]
 
-# --------------------------------------------------------------------------------------- the judge
+
 def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np.ndarray,
                mag_sensor_to_body: np.ndarray, time_mag_utc: np.ndarray, b_mag_sensor_nT: np.ndarray,
                time_coil_utc: np.ndarray, i_coil_A: np.ndarray,
@@ -110,25 +112,43 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
 
     Returns
     -------
-    ControllerJudgement
+    ControllerJudgement (its ``diagnostics`` hold the latency profile, the rate-bias evidence, the
+    effect and the crosstalk-feedback figures behind it)
 
     Raises
     ------
     InputError
         Arrays of the wrong shape or time stamps that are not strictly increasing.
     """
-    d = check_pass_inputs(inertia_kg_m2=inertia_kg_m2, mag_sensor_to_body=mag_sensor_to_body,
-                          time_mag_utc=time_mag_utc, b_mag_sensor_nT=b_mag_sensor_nT, time_coil_utc=time_coil_utc,
-                          i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
-                          q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
-                          r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
-    J, M, epoch, t, w = d.inertia_kg_m2, d.mag_sensor_to_body, d.epoch, d.t_s, d.w_body_rad_s
-    t_mag, b_mag_body, t_coil, i_coil = d.t_mag_s, d.b_mag_body_nT, d.t_coil_s, d.i_coil_A
-    b_body, r_gcrf, r_body, P, K = d.b_body_nT, d.r_gcrf_km, d.r_body_km, d.w_cov_rad2_s2, d.K_nT_per_A
+    data = check_pass_inputs(inertia_kg_m2=inertia_kg_m2, mag_sensor_to_body=mag_sensor_to_body,
+                             time_mag_utc=time_mag_utc, b_mag_sensor_nT=b_mag_sensor_nT, time_coil_utc=time_coil_utc,
+                             i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
+                             q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
+                             r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
+    setting = _setting(controller, coils, data)
+    replayed = _replay(controller, data, setting, time_gyro_utc, w_gyro_body_rad_s)
+    ident = _identification(data, setting, replayed)
+    effect = _effect(controller, data, setting, replayed, ident)
+    feedback = _feedback(controller, data, setting, replayed, ident)
+    return _judgement(data, setting, replayed, ident, effect, feedback)
 
-    law, T = controller.law, float(controller.period_s)
-    C_nom = np.asarray(coils.dipole_per_amp, float)
-    imax = np.asarray(coils.max_current_A, float)
+
+@dataclass(frozen=True)
+class _Setting:
+    """The pass's setting (for the findings) and its control ticks, s since the data's epoch; ``gate``
+    is (ticks, before, after) of the coil-off windows of windowed sampling, else None."""
+
+    ctx: PassContext
+    ticks_s: np.ndarray
+    gate: tuple[np.ndarray, float, float] | None
+    off_window_s: tuple[float, float] | None
+    max_hold_s: float
+
+
+def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _Setting:
+    """The control ticks where the rate history and the coil log overlap, and the pass's setting."""
+    t, t_coil, epoch = data.t_s, data.t_coil_s, data.epoch
+    T = float(controller.period_s)
     window = coils.off_window_s if coils.mag_sampling == "windowed" else None
     if controller.first_tick is not None:
         first = float((np.datetime64(controller.first_tick, "ns") - epoch).astype(np.int64) / 1e9)
@@ -138,28 +158,67 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     ticks = control_ticks(lo, hi, T, first)
     gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
-    ctx = PassContext(law, T, C_nom, imax, span, coils.mag_sampling)
+    ctx = PassContext(controller.law, T, np.asarray(coils.dipole_per_amp, float),
+                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling)
+    return _Setting(ctx, ticks, gate, window, 2.5 * T)
 
-    # 1. command replay ------------------------------------------------------------------------
-    b_tick = rep.tick_samples_nT(t_mag, b_mag_body, ticks, sampling=coils.mag_sampling, off_window_s=window)
+
+@dataclass(frozen=True)
+class _Replay:
+    """The law replayed at each tick: the magnetometer samples it used (K, 3) nT body axes, the
+    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law) and
+    the logged commands' chatter fraction (3,)."""
+
+    b_tick_body_nT: np.ndarray
+    i_replay_A: np.ndarray
+    comparison: CommandComparison | None
+    chatter: np.ndarray
+
+
+def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, time_gyro_utc,
+            w_gyro_body_rad_s) -> _Replay:
+    """Step 1: the configured law recomputed from the raw samples, against the logged commands."""
+    ctx, ticks = setting.ctx, setting.ticks_s
+    law, T, C_nom, imax = ctx.law, ctx.period_s, ctx.C_nominal, ctx.max_current_A
+    b_tick = rep.tick_samples_nT(data.t_mag_s, data.b_mag_body_nT, ticks, sampling=ctx.mag_sampling,
+                                 off_window_s=setting.off_window_s)
     i_rep = np.full((len(ticks), 3), np.nan)
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
         if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = seconds_since("time_gyro_utc", time_gyro_utc, epoch)
+            tg = seconds_since("time_gyro_utc", time_gyro_utc, data.epoch)
             w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
                                  tol=1e-9)
         else:
-            w_tick = np.column_stack([np.interp(ticks, t, w[:, a]) for a in range(3)])
+            w_tick = np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
-        i_rep = rep.replay_cross_product_A(b_tick, w_tick, J, target, controller.gain, C_nom, imax)
-    cmp_ = rep.compare_commands(ticks, i_rep, t_coil, i_coil, imax, T) if law != "none" else None
+        i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
+    cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
     logged_tick = (cmp_.logged_A if cmp_ is not None
-                   else held_values(t_coil, i_coil, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
-    chatter = rep.chatter_fraction(logged_tick, imax)
+                   else held_values(data.t_coil_s, data.i_coil_A, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
+    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax))
 
-    # 2. dipole identification and actuation latency -------------------------------------------
+
+@dataclass(frozen=True)
+class _Identification:
+    """The coils identified from the motion: the fit (None: not identified), the latency trials and
+    their profile, the rate-bias evidence, the segments, the applied current (N, 3) A and the axes."""
+
+    fit: DipoleFit | None
+    latency_trials_s: np.ndarray
+    latency_trials_wrss: np.ndarray
+    latency: LatencyProfile | None
+    rate_bias: RateBiasEvidence | None
+    n_segments: int
+    i_applied_A: np.ndarray
+    axes: tuple[AxisJudgement, ...]
+
+
+def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _Identification:
+    """Step 2: each coil's dipole per amp and the actuation latency from the motion."""
+    ticks, T, gate = setting.ticks_s, setting.ctx.period_s, setting.gate
+    t, w, b_body, J = data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2
     n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
     fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
     lat_info, rate_bias = None, None
@@ -168,60 +227,99 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
         scans = {kn: scan_actuation_latency(
-            t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
-            r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T, rate_bias_knot_s=kn)
-            for kn in (None, RATE_BIAS_KNOT_S)}
+            t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
+            r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, gate=gate, max_hold_s=setting.max_hold_s,
+            rate_bias_knot_s=kn) for kn in (None, RATE_BIAS_KNOT_S)}
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
         lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
-        fit = identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
-                             latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
-                             rate_bias_knot_s=knot)
+        fit = identify_dipole(t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, r_body_km=data.r_body_km,
+                              w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=L_use, gate=gate,
+                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot)
         rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
         if rate_bias.used:
             rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
                                 sigma_rad_s=fit.rate_bias_sigma_rad_s)
-    i_applied = applied_current(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
-                                      max_hold_s=2.5 * T)
-    axes = _axes(ctx, fit, cmp_, chatter, i_applied)
+    i_applied = applied_current(t, data.t_coil_s, data.i_coil_A, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+                                max_hold_s=setting.max_hold_s)
+    axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
         # no coil identified: the motion says nothing about timing, in either direction
         lat_info = replace(lat_info, determined=False, acausal=False)
+    return _Identification(fit, lat_trials, lat_wrss, lat_info, rate_bias, n_seg, i_applied, axes)
 
-    # 3. physical effect -----------------------------------------------------------------------
+
+def _axes(ctx: PassContext, fit: DipoleFit | None, cmp_: CommandComparison | None, chatter: np.ndarray,
+          i_applied: np.ndarray) -> tuple[AxisJudgement, ...]:
+    """Each coil's judgement: polarity and gain from the fit, command figures from the replay."""
+    out = []
+    f = finite_or_none
+    for a, name in enumerate(AXES):
+        c0 = float(ctx.C_nominal[a, a])
+        rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
+        if fit is not None and np.isfinite(fit.C_sigma[a, a]):
+            pol, conf, r, rs = classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
+            est, sig = float(fit.C[a, a]), dipole_sigma_with_floor(fit.C_sigma[a, a], c0)
+        else:  # not identified, or the coil never carried current
+            pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
+        out.append(AxisJudgement(
+            axis=name, polarity=pol, polarity_confidence=f(conf), dipole_per_amp_estimated=f(est),
+            dipole_per_amp_sigma=f(sig), dipole_per_amp_nominal=c0, gain_ratio=f(r), gain_ratio_sigma=f(rs),
+            command_gain_ratio=f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
+            correlation=f(cmp_.correlation[a]) if cmp_ is not None else None,
+            saturation_fraction=f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
+            chatter_fraction=f(chatter[a]), rms_current_A=f(rms)))
+    return tuple(out)
+
+
+def _effect(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
+            ident: _Identification) -> EffectAssessment:
+    """Step 3: the physical effect, with the identified dipoles where the coils were identified."""
+    C_nom, fit = setting.ctx.C_nominal, ident.fit
     C_used = C_nom.copy()
-    for a, ax in enumerate(axes):
+    for a, ax in enumerate(ident.axes):
         if fit is not None and ax.polarity != "undetermined":
             C_used[:, a] = fit.C[:, a]
-    i_rep_applied = applied_current(t, ticks, np.nan_to_num(i_rep), gate=gate, max_hold_s=2.5 * T)
+    i_rep_applied = applied_current(data.t_s, setting.ticks_s, np.nan_to_num(replayed.i_replay_A), gate=setting.gate,
+                                    max_hold_s=setting.max_hold_s)
     target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
-    effect = eff.assess_effect(law, controller.gain, t, w, b_body, J, i_applied, i_rep_applied, C_used, C_nom,
-                               target_momentum_Nms=target, r_gcrf_km=r_gcrf,
-                               b_gcrf_nT=d.b_gcrf_nT)
+    return assess_effect(controller.law, controller.gain, data.t_s, data.w_body_rad_s, data.b_body_nT,
+                         data.inertia_kg_m2, ident.i_applied_A, i_rep_applied, C_used, C_nom,
+                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT)
 
-    # 4. crosstalk feedback --------------------------------------------------------------------
-    loop: CrosstalkFeedback | None = None
-    if law == "bdot" and K is not None:
-        L_act = fit.latency_s if fit is not None else 0.0
-        seen = (np.zeros((len(ticks), 3)) if coils.mag_sampling == "coils_off" else
-                applied_current(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
-        loop = assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
-                                         i_seen_at_tick_A=seen, max_current_A=imax,
-                                         delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
 
-    found = findings(ctx, axes=tuple(axes), identified=fit is not None, comparison=cmp_, latency=lat_info,
-                     effect=effect, feedback=loop, chatter=chatter, n_segments=n_seg, n_ticks=len(ticks),
-                     rate_bias=rate_bias)
-    anomalies, reasons = found.anomalies, found.reasons
-    verdict_ = verdict(ctx, tuple(axes), anomalies, cmp_, lat_info)
+def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
+              ident: _Identification) -> CrosstalkFeedback | None:
+    """Step 4: the coil-field feedback of B-dot, where the crosstalk is known (None otherwise)."""
+    if controller.law != "bdot" or data.K_nT_per_A is None:
+        return None
+    ctx, ticks, T = setting.ctx, setting.ticks_s, setting.ctx.period_s
+    L_act = ident.fit.latency_s if ident.fit is not None else 0.0
+    seen = (np.zeros((len(ticks), 3)) if ctx.mag_sampling == "coils_off" else
+            applied_current(ticks - 1e-6, data.t_coil_s, data.i_coil_A, latency_s=L_act, gate=setting.gate,
+                            max_hold_s=setting.max_hold_s))
+    return assess_crosstalk_feedback(data.K_nT_per_A, data.mag_sensor_to_body, ctx.C_nominal, controller.gain, T,
+                                     ticks_s=ticks, b_tick_body_nT=replayed.b_tick_body_nT, i_seen_at_tick_A=seen,
+                                     max_current_A=ctx.max_current_A,
+                                     delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
+
+
+def _judgement(data: PassArrays, setting: _Setting, replayed: _Replay, ident: _Identification,
+               effect: EffectAssessment, loop: CrosstalkFeedback | None) -> ControllerJudgement:
+    """Step 5: findings and verdict, and the judgement that carries them with the figures behind them."""
+    ctx, ticks, fit, cmp_, lat_info = setting.ctx, setting.ticks_s, ident.fit, replayed.comparison, ident.latency
+    found = findings(ctx, axes=ident.axes, identified=fit is not None, comparison=cmp_, latency=lat_info,
+                     effect=effect, feedback=loop, chatter=replayed.chatter, n_segments=ident.n_segments,
+                     n_ticks=len(ticks), rate_bias=ident.rate_bias)
     lag = cmp_.lag_s if cmp_ is not None else None
     act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
     total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
     return ControllerJudgement(
-        law=law, axes=tuple(axes), verdict=verdict_, reasons=reasons, anomalies=anomalies,
+        law=ctx.law, axes=ident.axes, verdict=verdict(ctx, ident.axes, found.anomalies, cmp_, lat_info),
+        reasons=found.reasons, anomalies=found.anomalies,
         latency_s=total, command_lag_s=lag, actuation_latency_s=act,
         actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
         rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
@@ -238,31 +336,8 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         rate_floor_rad_s=effect.rate_floor_rad_s, dipole_per_amp_matrix=None if fit is None else fit.C,
         dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
-        replay_time_utc=epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
-        replay_i_A=i_rep,
-        extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
-                "latency": lat_info, "rate_bias": rate_bias,
-                "effect": effect,
-                "n_ticks": int(len(ticks)), "n_segments": n_seg},
+        replay_time_utc=data.epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
+        replay_i_A=replayed.i_replay_A,
+        diagnostics=JudgementDiagnostics(ident.latency_trials_s, ident.latency_trials_wrss, lat_info, ident.rate_bias,
+                                         effect, loop, int(len(ticks)), ident.n_segments),
     )
-
-
-def _axes(ctx: PassContext, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
-    out = []
-    for a, name in enumerate(AXES):
-        c0 = float(ctx.C_nominal[a, a])
-        rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
-        if fit is not None and np.isfinite(fit.C_sigma[a, a]):
-            pol, conf, r, rs = classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
-            est, sig = float(fit.C[a, a]), dipole_sigma_with_floor(fit.C_sigma[a, a], c0)
-        else:  # not identified, or the coil never carried current
-            pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
-        f = finite_or_none
-        out.append(AxisJudgement(
-            axis=name, polarity=pol, polarity_confidence=f(conf), dipole_per_amp_estimated=f(est),
-            dipole_per_amp_sigma=f(sig), dipole_per_amp_nominal=c0, gain_ratio=f(r), gain_ratio_sigma=f(rs),
-            command_gain_ratio=f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
-            correlation=f(cmp_.correlation[a]) if cmp_ is not None else None,
-            saturation_fraction=f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
-            chatter_fraction=f(chatter[a]), rms_current_A=f(rms)))
-    return out

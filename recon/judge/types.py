@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -10,7 +10,8 @@ import numpy as np
 from ..core import Anomaly
 
 __all__ = ["AXES", "AxisJudgement", "ControllerJudgement", "finite_or_none", "LatencyProfile", "RateBiasEvidence",
-           "Trend", "EffectAssessment", "CrosstalkFeedback", "PassContext"]
+           "Trend", "EffectAssessment", "CrosstalkFeedback", "PassContext",
+           "JudgementDiagnostics"]
 
 AXES = ("x", "y", "z")
 
@@ -93,9 +94,8 @@ class ControllerJudgement:
     residual_dipole_Am2 : (3,) constant dipole identified alongside C
     replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
         (NaN where the law could not be replayed)
-    extras : diagnostics, not part of the summary: latency profile (trial latencies and weighted
-        residual sums), ``latency`` (best causal latency, ranges, causality check), ``rate_bias`` (whether
-        the rate history's bias was estimated, its chi-square gain and penalty, knot values), effect figures
+    diagnostics : JudgementDiagnostics, not part of the summary: the latency trials and their profile,
+        the rate-bias evidence, the effect and the crosstalk-feedback figures, the ticks and segments
     """
 
     law: str
@@ -126,7 +126,7 @@ class ControllerJudgement:
     residual_dipole_Am2: np.ndarray | None = None
     replay_time_utc: np.ndarray | None = None
     replay_i_A: np.ndarray | None = None
-    extras: dict[str, Any] = field(default_factory=dict)
+    diagnostics: JudgementDiagnostics | None = None
 
     def to_summary(self) -> dict[str, Any]:
         """The "controller" block of summary.json (floats, lists, strings, None)."""
@@ -314,3 +314,29 @@ class PassContext:
     max_current_A: np.ndarray
     span: tuple[np.datetime64, np.datetime64]
     mag_sampling: str
+
+
+@dataclass(frozen=True)
+class JudgementDiagnostics:
+    """The figures behind a :class:`ControllerJudgement`, not part of the summary.
+
+    Attributes
+    ----------
+    latency_trials_s : (L,) trial latencies of the scan the judgement rests on, s (empty: not scanned)
+    latency_trials_wrss : (L,) their weighted residual sums of squares (NaN where the fit failed)
+    latency : LatencyProfile or None: best causal latency, ranges, causality check
+    rate_bias : RateBiasEvidence or None: whether the rate history's bias was estimated, its
+        chi-square gain and penalty, knot values
+    effect : EffectAssessment: trends, time constants, magnetic power, gains
+    feedback : CrosstalkFeedback or None: the coil-field loop (B-dot with a crosstalk estimate)
+    n_ticks : control ticks judged; n_segments : segments available to the identification
+    """
+
+    latency_trials_s: np.ndarray
+    latency_trials_wrss: np.ndarray
+    latency: LatencyProfile | None
+    rate_bias: RateBiasEvidence | None
+    effect: EffectAssessment
+    feedback: CrosstalkFeedback | None
+    n_ticks: int
+    n_segments: int
