@@ -10,9 +10,9 @@ import pytest
 
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.core import InputError, MU_EARTH_km3_s2
+from recon.judge import EffectAssessment, JudgementDiagnostics, feedback
 from recon.judge import dipole as dip
 from recon.judge import effect as eff
-from recon.judge import feedback
 from recon.judge import replay as rep
 from recon.judge.judgement import judge_pass
 from recon.judge.latency import latency_profile
@@ -276,3 +276,17 @@ def test_field_is_required():
     del args["b_body_nT"]
     with pytest.raises(InputError, match="expected b_body_nT, or q_body_from_gcrf with b_gcrf_nT"):
         judge_pass(controller=ctrl, coils=coils, **args)
+
+
+def test_short_pass_diagnostics_are_typed_and_say_why():
+    # 50 control ticks make one segment of 30 periods (five are needed): no identification, so no
+    # latency scan and no rate-bias evidence; no crosstalk given, so no feedback figures.
+    ctrl, coils = _specs()
+    j = judge_pass(controller=ctrl, coils=coils, **_good_arrays())
+    dg = j.diagnostics
+    assert isinstance(dg, JudgementDiagnostics) and isinstance(dg.effect, EffectAssessment)
+    assert dg.n_ticks == len(j.replay_time_utc) and dg.n_segments == dg.n_ticks // 30 == 1
+    assert dg.latency is None and dg.rate_bias is None and dg.feedback is None
+    assert dg.latency_trials_s.size == 0 and dg.latency_trials_wrss.size == 0
+    assert j.verdict == "undetermined"
+    assert any(r.startswith("pass too short to identify the coils") for r in j.reasons)

@@ -32,6 +32,7 @@ __all__ = [
     "CommandComparison", "compare_commands", "chatter_fraction",
 ]
 
+
 def tick_samples_nT(t_mag_s: np.ndarray, b_mag_body_nT: np.ndarray, ticks_s: np.ndarray, *,
                     sampling: str, off_window_s: tuple[float, float] | None = None,
                     tolerance_s: float | None = None) -> np.ndarray:
