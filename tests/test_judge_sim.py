@@ -28,7 +28,8 @@ from scipy.spatial.transform import Rotation
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.core import body_from_gcrf
 from recon.judge import THRESHOLDS, judge_pass
-from recon.judge.dipole import identify as dip
+from recon.judge import dipole as dip
+from recon.judge.latency import scan_actuation_latency
 from recon.simulate import simulate_pass
 
 FAST_SEEDS = (0, 1)
@@ -340,10 +341,10 @@ def test_rate_bias_does_not_shift_the_latency_scan():
     w, _ = _with_rate_bias(sim)
     r_body = body_from_gcrf(sim.q_body_from_gcrf, sim.r_gcrf_km)
     args = (sim.t_s, w, sim.b_body_nT, sim.inertia_kg_m2, ticks, sim.i_cmd_A, ticks, sim.config.period_s)
-    best, lat, wrss = dip.scan_actuation_latency(*args, r_body_km=r_body, gate=(ticks, 0.05, 0.05),
-                                                 rate_bias_knot_s=RATE_BIAS_KNOT_S)
+    best = scan_actuation_latency(*args, r_body_km=r_body, gate=(ticks, 0.05, 0.05),
+                                  rate_bias_knot_s=RATE_BIAS_KNOT_S).best
     assert best.latency_s == pytest.approx(2.0, abs=0.1 + 1e-9)
-    plain, _, _ = dip.scan_actuation_latency(*args, r_body_km=r_body, gate=(ticks, 0.05, 0.05))
+    plain = scan_actuation_latency(*args, r_body_km=r_body, gate=(ticks, 0.05, 0.05)).best
     assert abs(plain.latency_s - 2.0) > 0.5
 
 

@@ -10,10 +10,13 @@ import pytest
 
 from recon.config import CoilSpec, ControllerSpec, TimeSpec
 from recon.core import InputError, MU_EARTH_km3_s2
+from recon.judge import EffectAssessment, JudgementDiagnostics, feedback
+from recon.judge import dipole as dip
 from recon.judge import effect as eff
 from recon.judge import replay as rep
-from recon.judge.dipole import identify as dip
-from recon.judge.judgement import _latency_profile, judge_pass
+from recon.judge.judgement import judge_pass
+from recon.judge.latency import latency_profile
+from recon.judge.thresholds import MODEL_FLOOR_FRACTION
 
 C_NOM = np.diag([1.5, 1.5, 1.1])
 IMAX = np.array([0.12, 0.12, 0.12])
@@ -33,7 +36,7 @@ def test_loop_gain_positive_coupling_is_twice_coupling(g):
     # Derivation (Franklin, Powell & Workman 1998, ch. 7, roots of the characteristic equation):
     # i_k = -g (i_{k-1} - i_{k-2}) has z^2 + g z - g = 0, a root at z = -1 when g = 1/2, so the
     # gain margin is 1 / (2 g): loop gain 2 g.
-    lg, coupling = rep.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
+    lg, coupling = feedback.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
     assert coupling == pytest.approx(g, rel=1e-12)
     assert lg == pytest.approx(2 * g, rel=LOOP_GAIN_TOL)
 
@@ -41,7 +44,7 @@ def test_loop_gain_positive_coupling_is_twice_coupling(g):
 @pytest.mark.parametrize("g", [-0.4, -0.9, -1.5])
 def test_loop_gain_negative_coupling_is_coupling(g):
     # z^2 - h z + h = 0 with h = -g has complex roots of modulus sqrt(h): unstable from h = 1.
-    lg, _ = rep.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
+    lg, _ = feedback.crosstalk_loop_gain(_K_for_coupling(g), C_NOM, 40_000.0, 1.0)
     assert lg == pytest.approx(abs(g), rel=LOOP_GAIN_TOL)
 
 
@@ -51,7 +54,7 @@ def test_loop_gain_threshold_matches_iterated_recurrence(seed, delay):
     # Invariant: a loop gain below 1 decays, above 1 grows, when the recurrence is iterated.
     rng = np.random.default_rng(seed)
     K = rng.normal(0, 20_000.0, (3, 3))
-    lg, _ = rep.crosstalk_loop_gain(K, C_NOM, 40_000.0, 1.0, delay_ticks=delay)
+    lg, _ = feedback.crosstalk_loop_gain(K, C_NOM, 40_000.0, 1.0, delay_ticks=delay)
     G0 = 40_000.0 * 1e-9 * np.linalg.solve(C_NOM, K)
     for factor, grows in ((0.9, False), (1.1, True)):
         G = G0 * factor / lg
@@ -62,7 +65,7 @@ def test_loop_gain_threshold_matches_iterated_recurrence(seed, delay):
 
 
 def test_loop_gain_zero_crosstalk():
-    assert rep.crosstalk_loop_gain(np.zeros((3, 3)), C_NOM, 40_000.0, 1.0) == (0.0, 0.0)
+    assert feedback.crosstalk_loop_gain(np.zeros((3, 3)), C_NOM, 40_000.0, 1.0) == (0.0, 0.0)
 
 
 # ------------------------------------------------------------------------------------------ replay
@@ -138,7 +141,7 @@ def test_classify_coil(est, sig, expect):
     pol, conf, r, s = dip.classify_coil(est, sig, 1.5)
     assert pol == expect
     assert r == pytest.approx(est / 1.5)
-    assert s == pytest.approx(np.hypot(sig / 1.5, dip.MODEL_FLOOR_FRACTION))
+    assert s == pytest.approx(np.hypot(sig / 1.5, MODEL_FLOOR_FRACTION))
     if expect == "inverted":   # -1.46 +- 0.05 on 1.5: |r| / s = 0.973 / 0.0583 = 16.7 sigma from zero
         assert conf == pytest.approx(0.97333 / np.hypot(0.05 / 1.5, 0.05), rel=1e-4)
 
@@ -157,32 +160,32 @@ def _profile(chi2_units, ar1=0.0, chi2_per_dof=2.0, latency_s=1.0):
 def test_latency_profile_causal_minimum_and_ranges():
     # Minimum at +1 s; within 9 of it (3 sigma): 0.5, 1, 2 s; within 1: 1 s only; zero delay
     # sits 12 above. The negative trials lie above the causal minimum: nothing acausal.
-    info = _latency_profile(*_profile([30, 20, 12, 3, 0, 4, 40]), 1.0)
-    assert info["latency_s"] == 1.0
-    assert info["interval_s"] == (0.5, 2.0)
-    assert info["interval_1sigma_s"] == (1.0, 1.0)
-    assert info["delta_chi2_zero"] == pytest.approx(12.0, rel=1e-12)
-    assert not info["acausal"] and info["acausal_delta_chi2"] == 0.0
-    assert info["determined"]
+    info = latency_profile(*_profile([30, 20, 12, 3, 0, 4, 40]), 1.0)
+    assert info.latency_s == 1.0
+    assert info.interval_s == (0.5, 2.0)
+    assert info.interval_1sigma_s == (1.0, 1.0)
+    assert info.delta_chi2_zero == pytest.approx(12.0, rel=1e-12)
+    assert not info.acausal and info.acausal_delta_chi2 == 0.0
+    assert info.determined
 
 
 def test_latency_profile_torque_before_command_is_acausal():
     # The best trial is -1 s, 15 below the best causal one (zero delay): beyond the 3-sigma limit of
     # 9, so the latency is undetermined and the acausal trial is named. The causal range starts at
     # zero: a negative latency is never reported as the latency.
-    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], latency_s=0.0), 1.0)
-    assert info["acausal"] and info["acausal_delta_chi2"] == pytest.approx(15.0, rel=1e-12)
-    assert info["acausal_latency_s"] == -1.0
-    assert info["latency_s"] == 0.0 and info["interval_s"] == (0.0, 0.0)   # +0.5 s sits 10 above
-    assert not info["determined"]
+    info = latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], latency_s=0.0), 1.0)
+    assert info.acausal and info.acausal_delta_chi2 == pytest.approx(15.0, rel=1e-12)
+    assert info.acausal_latency_s == -1.0
+    assert info.latency_s == 0.0 and info.interval_s == (0.0, 0.0)   # +0.5 s sits 10 above
+    assert not info.determined
 
 
 def test_latency_profile_ar1_inflation_weakens_the_evidence():
     # The same sums with correlated residuals (rho = 0.5: variance inflation (1 + rho)/(1 - rho) = 3,
     # Bayley and Hammersley 1946): the acausal gain is 15 / 3 = 5 < 9, not enough to reject causality.
-    info = _latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], ar1=0.5, latency_s=0.0), 1.0)
-    assert info["acausal_delta_chi2"] == pytest.approx(5.0, rel=1e-12)
-    assert not info["acausal"]
+    info = latency_profile(*_profile([0, 5, 15, 25, 30, 40, 50], ar1=0.5, latency_s=0.0), 1.0)
+    assert info.acausal_delta_chi2 == pytest.approx(5.0, rel=1e-12)
+    assert not info.acausal
 
 
 # ---------------------------------------------------------------------------------------- effect
@@ -273,3 +276,17 @@ def test_field_is_required():
     del args["b_body_nT"]
     with pytest.raises(InputError, match="expected b_body_nT, or q_body_from_gcrf with b_gcrf_nT"):
         judge_pass(controller=ctrl, coils=coils, **args)
+
+
+def test_short_pass_diagnostics_are_typed_and_say_why():
+    # 50 control ticks make one segment of 30 periods (five are needed): no identification, so no
+    # latency scan and no rate-bias evidence; no crosstalk given, so no feedback figures.
+    ctrl, coils = _specs()
+    j = judge_pass(controller=ctrl, coils=coils, **_good_arrays())
+    dg = j.diagnostics
+    assert isinstance(dg, JudgementDiagnostics) and isinstance(dg.effect, EffectAssessment)
+    assert dg.n_ticks == len(j.replay_time_utc) and dg.n_segments == dg.n_ticks // 30 == 1
+    assert dg.latency is None and dg.rate_bias is None and dg.feedback is None
+    assert dg.latency_trials_s.size == 0 and dg.latency_trials_wrss.size == 0
+    assert j.verdict == "undetermined"
+    assert any(r.startswith("pass too short to identify the coils") for r in j.reasons)

@@ -27,47 +27,19 @@ geomagnetic field as a tilted dipole).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
 from ..core import MU_EARTH_km3_s2
+from .thresholds import TREND_MIN_CHANGE, TREND_SIGMAS
+from .types import EffectAssessment, Trend
 
-__all__ = ["Trend", "assess_effect", "kinetic_energy_J", "magnetic_power_W", "block_log_trend", "expected_log_trend",
+__all__ = ["assess_effect", "kinetic_energy_J", "magnetic_power_W", "block_log_trend", "expected_log_trend",
            "trend_label", "mean_motion_rad_s", "geomagnetic_inclination_rad", "near_optimal_gain_Nms",
-           "TREND_SIGMAS", "TREND_MIN_CHANGE", "N_BLOCKS"]
+           "N_BLOCKS"]
 
-# A trend is called when its slope is both significant and large: |slope| > 3 sigma (about 1 %
-# false-alarm rate for Student's t with 8 degrees of freedom) and a change of ln x over the pass
-# of at least 0.1 (10 % in energy, 5 % in rate) (common practice, no source).
-TREND_SIGMAS = 3.0
-TREND_MIN_CHANGE = 0.1
 # Block means remove the sample-to-sample correlation of a smooth history; ten blocks leave eight
 # degrees of freedom for the slope's uncertainty.
 N_BLOCKS = 10
-
-
-@dataclass(frozen=True)
-class Trend:
-    """Straight-line fit of ln x against time on block means.
-
-    Attributes
-    ----------
-    slope_per_s : float, d ln x / dt, 1/s
-    sigma_per_s : float, 1-sigma of the slope, 1/s
-    duration_s : float, span of the data, s
-    n_blocks : int
-    """
-
-    slope_per_s: float
-    sigma_per_s: float
-    duration_s: float
-    n_blocks: int
-
-    @property
-    def time_constant_s(self) -> float:
-        """-1 / slope: the e-folding time of a decrease (negative for an increase), s."""
-        return float(-1.0 / self.slope_per_s) if self.slope_per_s != 0 else float("inf")
 
 
 def kinetic_energy_J(w_body_rad_s: np.ndarray, inertia_kg_m2: np.ndarray) -> np.ndarray:
@@ -189,7 +161,7 @@ def near_optimal_gain_Nms(mean_motion: float, xi_m_rad: float, inertia_kg_m2: np
 def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.ndarray,
                   inertia_kg_m2: np.ndarray, i_applied_A: np.ndarray, i_replay_applied_A: np.ndarray,
                   C_used: np.ndarray, C_nominal: np.ndarray, *, target_momentum_Nms: np.ndarray | None = None,
-                  r_gcrf_km: np.ndarray | None = None, b_gcrf_nT: np.ndarray | None = None) -> dict:
+                  r_gcrf_km: np.ndarray | None = None, b_gcrf_nT: np.ndarray | None = None) -> EffectAssessment:
     """Trends and torque power of one pass, observed and as the configured law should have produced.
 
     Parameters
@@ -206,58 +178,74 @@ def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarr
 
     Returns
     -------
-    dict with, where computable: ``rate_trend``, ``energy_trend`` / ``energy_trend_expected`` (Trend),
-    ``tau_E``, ``tau_E_exp`` (s), ``efficiency`` (observed / expected slope), ``power_W`` (mean
-    magnetic power), ``damping_fraction`` (fraction of time the power is negative),
-    ``power_axis_W`` (3,), ``k_eq``, ``k_ag`` (N m s), ``floor`` (rad/s), ``mean_rate_rad_s``; for
-    cross-product also ``h_trend``, ``h_trend_obj``, ``h_trend_expected``, ``tau_h``, ``tau_h_exp``.
+    EffectAssessment (the B-dot figures for B-dot, the momentum-error ones for cross-product, the
+    orbit's where positions are given)
     """
     t = np.asarray(t_s, float)
     w = np.asarray(w_body_rad_s, float)
     b = np.asarray(b_body_nT, float)
     J = np.asarray(inertia_kg_m2, float)
-    out: dict = {}
     E = kinetic_energy_J(w, J)
     tr = block_log_trend(t, E)
-    out["energy_trend"] = tr
-    out["rate_trend"] = trend_label(tr)
-    out["tau_E"] = tr.time_constant_s if tr is not None else None
-    out["mean_rate_rad_s"] = float(np.mean(np.linalg.norm(w, axis=1)))
     ia = np.nan_to_num(np.asarray(i_applied_A, float))
     P = magnetic_power_W(w, ia @ np.asarray(C_used).T, b)
-    out["power_W"] = float(np.mean(P))
     active = np.abs(P) > 0
-    out["damping_fraction"] = float(np.mean(P[active] < 0)) if active.any() else None
-    out["power_axis_W"] = np.array([np.mean(magnetic_power_W(w, np.outer(ia[:, j], np.asarray(C_used)[:, j]), b))
-                                    for j in range(3)])
+    power_axis = np.array([np.mean(magnetic_power_W(w, np.outer(ia[:, j], np.asarray(C_used)[:, j]), b))
+                           for j in range(3)])
     ir = np.nan_to_num(np.asarray(i_replay_applied_A, float))
-    P_exp = magnetic_power_W(w, ir @ np.asarray(C_nominal).T, b)
-    if law == "bdot":
-        tre = expected_log_trend(t, P_exp / np.maximum(E, 1e-300))
-        out["energy_trend_expected"] = tre
-        out["tau_E_exp"] = tre.time_constant_s if tre is not None else None
-        if tr is not None and tre is not None and tre.slope_per_s != 0:
-            out["efficiency"] = tr.slope_per_s / tre.slope_per_s
-        out["k_eq"] = float(gain * np.mean(np.sum((b * 1e-9) ** 2, axis=1)))
-    if law == "cross_product":
-        h_t = np.zeros(3) if target_momentum_Nms is None else np.asarray(target_momentum_Nms, float)
-        h = w @ J.T
-        he = h - h_t
-        hn = np.linalg.norm(he, axis=1)
-        trh = block_log_trend(t, hn)
-        tau_exp = np.cross(ir @ np.asarray(C_nominal).T, b * 1e-9) - np.cross(w, h)
-        rate = np.einsum("ni,ni->n", he, tau_exp) / np.maximum(hn, 1e-300) ** 2
-        trhe = expected_log_trend(t, rate)
-        out.update(h_trend=trend_label(trh), h_trend_obj=trh, h_trend_expected=trhe,
-                   tau_h=trh.time_constant_s if trh is not None else None,
-                   tau_h_exp=trhe.time_constant_s if trhe is not None else None)
-        if trh is not None and trhe is not None and trhe.slope_per_s != 0:
-            out["efficiency"] = trh.slope_per_s / trhe.slope_per_s
-    if r_gcrf_km is not None:
-        n = mean_motion_rad_s(r_gcrf_km)
-        out["floor"] = 2.0 * n
-        if b_gcrf_nT is not None:
-            xi = geomagnetic_inclination_rad(t, r_gcrf_km, b_gcrf_nT)
-            out["xi_m_rad"] = xi
-            out["k_ag"] = near_optimal_gain_Nms(n, xi, J)
-    return out
+    bdot = law == "bdot"
+    cross = law == "cross_product"
+    tre = expected_log_trend(t, magnetic_power_W(w, ir @ np.asarray(C_nominal).T, b) / np.maximum(E, 1e-300)) \
+        if bdot else None
+    trh, trhe = _momentum_error_trends(t, w, b, J, ir, C_nominal, target_momentum_Nms) if cross else (None, None)
+    floor, xi, k_ag = _orbit_figures(t, J, r_gcrf_km, b_gcrf_nT)
+    return EffectAssessment(
+        rate_trend=trend_label(tr), energy_fit=tr, energy_time_constant_s=_time_constant(tr),
+        mean_rate_rad_s=float(np.mean(np.linalg.norm(w, axis=1))), magnetic_power_mean_W=float(np.mean(P)),
+        damping_fraction=float(np.mean(P[active] < 0)) if active.any() else None, magnetic_power_axis_W=power_axis,
+        energy_expected=tre, energy_time_constant_expected_s=_time_constant(tre),
+        bdot_equivalent_gain_Nms=float(gain * np.mean(np.sum((b * 1e-9) ** 2, axis=1))) if bdot else None,
+        momentum_error_trend=trend_label(trh) if cross else None, momentum_error_fit=trh,
+        momentum_error_expected=trhe, momentum_error_time_constant_s=_time_constant(trh),
+        momentum_error_time_constant_expected_s=_time_constant(trhe),
+        efficiency=_efficiency(tr, tre) if bdot else _efficiency(trh, trhe) if cross else None,
+        rate_floor_rad_s=floor, geomagnetic_inclination_rad=xi, near_optimal_gain_Nms=k_ag)
+
+
+def _time_constant(trend: Trend | None) -> float | None:
+    return trend.time_constant_s if trend is not None else None
+
+
+def _efficiency(observed: Trend | None, expected: Trend | None) -> float | None:
+    """Observed over expected slope, None when either is missing or nothing was expected."""
+    if observed is not None and expected is not None and expected.slope_per_s != 0:
+        return observed.slope_per_s / expected.slope_per_s
+    return None
+
+
+def _momentum_error_trends(t: np.ndarray, w: np.ndarray, b: np.ndarray, J: np.ndarray, i_replay: np.ndarray,
+                           C_nominal: np.ndarray, target_momentum_Nms: np.ndarray | None
+                           ) -> tuple[Trend | None, Trend | None]:
+    """Trends of ln |h - h_target| observed and as the replayed cross-product law should have driven it
+    (its torque's projection on the momentum error, with the gyroscopic term)."""
+    h_t = np.zeros(3) if target_momentum_Nms is None else np.asarray(target_momentum_Nms, float)
+    h = w @ J.T
+    he = h - h_t
+    hn = np.linalg.norm(he, axis=1)
+    trh = block_log_trend(t, hn)
+    tau_exp = np.cross(i_replay @ np.asarray(C_nominal).T, b * 1e-9) - np.cross(w, h)
+    rate = np.einsum("ni,ni->n", he, tau_exp) / np.maximum(hn, 1e-300) ** 2
+    return trh, expected_log_trend(t, rate)
+
+
+def _orbit_figures(t: np.ndarray, J: np.ndarray, r_gcrf_km: np.ndarray | None, b_gcrf_nT: np.ndarray | None
+                   ) -> tuple[float | None, float | None, float | None]:
+    """Rate floor 2 n (rad/s), geomagnetic inclination xi_m (rad) and near-optimal gain (N m s), each
+    None where the orbit positions (or, for the last two, the reference field) are missing."""
+    if r_gcrf_km is None:
+        return None, None, None
+    n = mean_motion_rad_s(r_gcrf_km)
+    if b_gcrf_nT is None:
+        return 2.0 * n, None, None
+    xi = geomagnetic_inclination_rad(t, r_gcrf_km, b_gcrf_nT)
+    return 2.0 * n, xi, near_optimal_gain_Nms(n, xi, J)

@@ -2,23 +2,26 @@
 
 Four independent lines of evidence, each from plain arrays:
 
-1. Command replay (:mod:`recon._replay`): the configured law recomputed from the raw telemetry the
+1. Command replay (:mod:`.replay`): the configured law recomputed from the raw telemetry the
    onboard computer saw, against the logged commands (gain ratio, correlation, lag, saturation,
    limit-to-limit chatter).
-2. Dipole identification (:mod:`recon._dipole_id`): each coil's effective dipole per amp from the
+2. Dipole identification (:mod:`.dipole`, :mod:`.latency`): each coil's effective dipole per amp from the
    motion (Euler's equation, least squares), hence polarity, response and gain, plus the actuation
    latency that best explains the motion. The latency is sought from zero up (a current cannot flow
    before its command; a motion that insists on a negative one points to wrong time tags), and a
    slowly varying bias of the rate history is estimated alongside where Schwarz's criterion asks
    for it (a wrong gyro bias mimics a torque through the gyroscopic term, and a latency can imitate
    part of that torque).
-3. Physical effect (:mod:`recon._effect`): the kinetic-energy (B-dot) or momentum-error
+3. Physical effect (:mod:`.effect`): the kinetic-energy (B-dot) or momentum-error
    (cross-product) trend against what the configured law should have achieved along the same
    trajectory, and the sign of the magnetic torque's power.
-4. Crosstalk feedback: the loop gain of the coils' own field through B-dot's derivative, and a
-   replay with that field removed from the samples.
+4. Crosstalk feedback (:mod:`.feedback`): the loop gain of the coils' own field through B-dot's
+   derivative, and a replay with that field removed from the samples.
 
-The decision thresholds are module constants below, each with its reason. A finding needs its own
+:func:`judge_pass` takes these as named steps on the checked inputs (:mod:`.inputs`), then turns the
+evidence into findings and a verdict (:mod:`.findings`).
+
+The decision thresholds are in :mod:`.thresholds`, each with its reason. A finding needs its own
 evidence at the stated confidence; where the data cannot decide (a short pass, coils that hardly
 switched, no law configured) the verdict is "undetermined" and says why.
 
@@ -35,251 +38,37 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Any
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import Anomaly, InputError, applied_current, body_from_gcrf, control_ticks, held_values, tick_phase
-from . import effect as eff
+from ..core import applied_current, control_ticks, held_values, tick_phase
 from . import replay as rep
-from .dipole import identify as dip
+from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
+from .effect import assess_effect
+from .feedback import assess_crosstalk_feedback
+from .findings import findings, verdict
+from .inputs import PassArrays, check_pass_inputs, checked_array, seconds_since
+from .latency import latency_profile, scan_actuation_latency
+from .replay import CommandComparison
+from .thresholds import MAX_LATENCY_PERIODS, MIN_SEGMENTS, RATE_BIAS_KNOT_S, SEGMENT_POINTS
+from .types import (
+    AXES,
+    AxisJudgement,
+    ControllerJudgement,
+    CrosstalkFeedback,
+    EffectAssessment,
+    JudgementDiagnostics,
+    LatencyProfile,
+    PassContext,
+    RateBiasEvidence,
+    finite_or_none,
+)
 
-__all__ = ["AxisJudgement", "ControllerJudgement", "judge_pass", "THRESHOLDS"]
-
-AXES = ("x", "y", "z")
-
-# ------------------------------------------------------------------------------ decision thresholds
-# Command replay. The replay uses the very samples the onboard computer used, so a healthy law
-# matches its log to the drive's rounding (gain ratio 1.000, correlation 1.000 on B-dot); the
-# cross-product replay uses the gyro as logged, so its match is a little looser. A 20 % band equals
-# the coil-gain band below; correlation below 0.8 means the log follows some other law.
-COMMAND_GAIN_TOLERANCE = 0.2
-COMMAND_MIN_CORRELATION = 0.8
-COMMAND_MIN_TICKS = 20          # unsaturated ticks above 1 % of the limit needed to judge an axis
-# Time at the current limit above which the controller is reported as saturated: beyond half the
-# pass the law is no longer the linear one its gain describes (common practice, no source).
-SATURATION_FRACTION_LIMIT = 0.5
-# Chatter: limit-to-limit sign flips on at least a quarter of the ticks, and at least three times the
-# flips the body's rotation alone would cause (a component of the body-frame field changes sign
-# twice per turn, i.e. on |w| T / pi of the ticks). A quarter corresponds to a rotation of 45 deg
-# per tick, beyond what a sampled B-dot can follow (common practice, no source).
-CHATTER_FRACTION_LIMIT = 0.25
-CHATTER_ROTATION_FACTOR = 3.0
-LOOP_GAIN_LIMIT = 1.0           # >= 1: the coil-field loop oscillates (see rep.crosstalk_loop_gain)
-# Coil gain: flagged when the whole 3-sigma interval of |C_jj / C_nominal_jj| lies outside
-# 1 +- 0.2 ("off by more than 20 % at high confidence").
-COIL_GAIN_TOLERANCE = 0.2
-COIL_GAIN_SIGMAS = 3.0
-# Latency from tick to torque flagged from one control period (the law assumes its command acts
-# within the period it was computed for) when the motion rejects zero delay at 3 sigma
-# (profile chi-square difference >= 9).
-LATENCY_LIMIT_PERIODS = 1.0
-LATENCY_DELTA_CHI2 = 9.0
-# Effect: detumble_slow when the observed energy time constant exceeds this factor times the one the
-# replayed law should have produced along the same trajectory, judged only when the expected decay
-# over the pass is at least EXPECTED_MIN_CHANGE in ln E (40 %). Healthy coils within the 20 % gain
-# band and the disturbance torques cannot account for a factor 3; missing or opposing torque can.
-DETUMBLE_SLOW_FACTOR = 3.0
-EXPECTED_MIN_CHANGE = 0.5
-# Dipole identification needs at least this many independent segments (of ``SEGMENT_POINTS``
-# ticks): fewer leave the residual variance and its autocorrelation, which set every sigma, resting
-# on too few stretches of data.
-SEGMENT_POINTS = 31
-MIN_SEGMENTS = 5
-MAX_LATENCY_PERIODS = 5
-
-# Every decision threshold in one place (the contributor guide lists them with their reasons).
-THRESHOLDS: dict[str, float] = {
-    "COMMAND_GAIN_TOLERANCE": COMMAND_GAIN_TOLERANCE, "COMMAND_MIN_CORRELATION": COMMAND_MIN_CORRELATION,
-    "COMMAND_MIN_TICKS": COMMAND_MIN_TICKS, "SATURATION_LEVEL": rep.SATURATION_LEVEL,
-    "SATURATION_FRACTION_LIMIT": SATURATION_FRACTION_LIMIT, "NEAR_LIMIT_LEVEL": rep.NEAR_LIMIT_LEVEL,
-    "INFORMATIVE_LEVEL": rep.INFORMATIVE_LEVEL,
-    "CHATTER_FRACTION_LIMIT": CHATTER_FRACTION_LIMIT, "CHATTER_ROTATION_FACTOR": CHATTER_ROTATION_FACTOR,
-    "LOOP_GAIN_LIMIT": LOOP_GAIN_LIMIT, "COIL_GAIN_TOLERANCE": COIL_GAIN_TOLERANCE,
-    "COIL_GAIN_SIGMAS": COIL_GAIN_SIGMAS, "MODEL_FLOOR_FRACTION": dip.MODEL_FLOOR_FRACTION,
-    "OUTLIER_PROBABILITY": dip.OUTLIER_PROBABILITY, "LATENCY_LIMIT_PERIODS": LATENCY_LIMIT_PERIODS,
-    "LATENCY_DELTA_CHI2": LATENCY_DELTA_CHI2, "DETUMBLE_SLOW_FACTOR": DETUMBLE_SLOW_FACTOR,
-    "EXPECTED_MIN_CHANGE": EXPECTED_MIN_CHANGE, "TREND_SIGMAS": eff.TREND_SIGMAS,
-    "TREND_MIN_CHANGE": eff.TREND_MIN_CHANGE, "SEGMENT_POINTS": SEGMENT_POINTS, "MIN_SEGMENTS": MIN_SEGMENTS,
-    "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS, "RATE_BIAS_KNOT_S": dip.RATE_BIAS_KNOT_S,
-}
+__all__ = ["judge_pass"]
 
 
-# ----------------------------------------------------------------------------------- result types
-@dataclass(frozen=True)
-class AxisJudgement:
-    """What recon concludes about one coil (body axis).
-
-    Attributes
-    ----------
-    axis : "x" | "y" | "z"
-    polarity : "nominal" | "inverted" | "no_response" | "undetermined" (see ``classify_coil``)
-    polarity_confidence : sigmas from zero (nominal, inverted), from nominal (no_response)
-    dipole_per_amp_estimated, dipole_per_amp_sigma : C_jj identified from the motion and its total
-        1-sigma (statistical with the model floor), A m^2 per A
-    dipole_per_amp_nominal : C_jj of the mission file, A m^2 per A
-    gain_ratio, gain_ratio_sigma : C_jj / nominal and its 1-sigma
-    command_gain_ratio, correlation : logged against replayed commands (unsaturated ticks / all)
-    saturation_fraction : fraction of control ticks at the current limit
-    chatter_fraction : fraction of tick pairs flipping from one current limit to the other
-    rms_current_A : rms current flowing during the pass, A
-    """
-
-    axis: str
-    polarity: str
-    polarity_confidence: float | None
-    dipole_per_amp_estimated: float | None
-    dipole_per_amp_sigma: float | None
-    dipole_per_amp_nominal: float
-    gain_ratio: float | None
-    gain_ratio_sigma: float | None
-    command_gain_ratio: float | None
-    correlation: float | None
-    saturation_fraction: float | None
-    chatter_fraction: float | None
-    rms_current_A: float | None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"polarity": self.polarity, "polarity_confidence": self.polarity_confidence,
-                "dipole_per_amp_estimated": self.dipole_per_amp_estimated,
-                "dipole_per_amp_sigma": self.dipole_per_amp_sigma,
-                "dipole_per_amp_nominal": self.dipole_per_amp_nominal, "gain_ratio": self.gain_ratio,
-                "gain_ratio_sigma": self.gain_ratio_sigma, "command_gain_ratio": self.command_gain_ratio,
-                "correlation": self.correlation, "saturation_fraction": self.saturation_fraction,
-                "chatter_fraction": self.chatter_fraction, "rms_current_A": self.rms_current_A}
-
-
-@dataclass(frozen=True)
-class ControllerJudgement:
-    """The controller judgement of one pass (see :func:`judge_pass`); ``to_summary()`` gives the
-    summary.json "controller" block.
-
-    Attributes
-    ----------
-    law : the configured law; axes : three AxisJudgement (x, y, z)
-    verdict : "as_intended" | "not_as_intended" | "undetermined"
-    reasons : why parts could not be judged (non-empty whenever the verdict is "undetermined")
-    anomalies : Anomaly records, each with an evidence sentence carrying its numbers
-    latency_s : tick to torque, s: command_lag_s (tick to logged command, from the replay) plus
-        actuation_latency_s (logged command to torque, from the motion); None where undetermined
-    actuation_latency_interval_s : 3-sigma range of the actuation latency, s
-    rate_trend : "decreasing" | "steady" | "increasing" (kinetic energy)
-    energy_time_constant_s : e-folding time of the kinetic energy (the rate's is twice it), s;
-        negative for a rise. energy_time_constant_expected_s: what the replayed law should have
-        given along the observed trajectory, s
-    momentum_error_trend, momentum_error_time_constant_s(_expected_s) : cross-product law only
-    magnetic_power_mean_W : mean of w . (m x B) with the identified dipoles, W (negative damps)
-    damping_fraction : fraction of the time that power is negative
-    loop_gain : coil-field feedback loop gain (>= 1 oscillates), crosstalk_coupling : spectral
-        radius of (k/T) 1e-9 C^-1 K_body; chatter_fraction_without_coil_field : chatter of the law
-        replayed with the coils' field taken out of its samples
-    bdot_equivalent_gain_Nms : k <|B|^2>, near_optimal_gain_Nms : 2 n (1 + sin xi_m) J_min
-        (Avanzini and Giulietti 2012), rate_floor_rad_s : 2 n
-    dipole_per_amp_matrix, dipole_per_amp_matrix_sigma : identified C (3, 3) and its 1-sigma
-    residual_dipole_Am2 : (3,) constant dipole identified alongside C
-    replay_time_utc : (K,) datetime64[ns] control ticks; replay_i_A : (K, 3) the replayed commands, A
-        (NaN where the law could not be replayed)
-    extras : diagnostics, not part of the summary: latency profile (trial latencies and weighted
-        residual sums), ``latency`` (best causal latency, ranges, causality check), ``rate_bias`` (whether
-        the rate history's bias was estimated, its chi-square gain and penalty, knot values), effect figures
-    """
-
-    law: str
-    axes: tuple[AxisJudgement, ...]
-    verdict: str
-    reasons: tuple[str, ...]
-    anomalies: tuple[Anomaly, ...]
-    latency_s: float | None = None
-    command_lag_s: float | None = None
-    actuation_latency_s: float | None = None
-    actuation_latency_interval_s: tuple[float, float] | None = None
-    rate_trend: str = "steady"
-    energy_time_constant_s: float | None = None
-    energy_time_constant_expected_s: float | None = None
-    momentum_error_trend: str | None = None
-    momentum_error_time_constant_s: float | None = None
-    momentum_error_time_constant_expected_s: float | None = None
-    magnetic_power_mean_W: float | None = None
-    damping_fraction: float | None = None
-    loop_gain: float | None = None
-    crosstalk_coupling: float | None = None
-    chatter_fraction_without_coil_field: float | None = None
-    bdot_equivalent_gain_Nms: float | None = None
-    near_optimal_gain_Nms: float | None = None
-    rate_floor_rad_s: float | None = None
-    dipole_per_amp_matrix: np.ndarray | None = None
-    dipole_per_amp_matrix_sigma: np.ndarray | None = None
-    residual_dipole_Am2: np.ndarray | None = None
-    replay_time_utc: np.ndarray | None = None
-    replay_i_A: np.ndarray | None = None
-    extras: dict[str, Any] = field(default_factory=dict)
-
-    def to_summary(self) -> dict[str, Any]:
-        """The "controller" block of summary.json (floats, lists, strings, None)."""
-        def f(x):
-            return None if x is None or not np.isfinite(x) else float(x) + 0.0  # + 0.0: no "-0.0"
-        out: dict[str, Any] = {"law": self.law}
-        for a in self.axes:
-            out[a.axis] = {k: (f(v) if isinstance(v, float | np.floating) else v) for k, v in a.to_dict().items()}
-        out.update({
-            "latency_s": f(self.latency_s), "command_lag_s": f(self.command_lag_s),
-            "actuation_latency_s": f(self.actuation_latency_s),
-            "rate_trend": self.rate_trend,
-            "energy_time_constant_s": f(self.energy_time_constant_s),
-            "energy_time_constant_expected_s": f(self.energy_time_constant_expected_s),
-            "momentum_error_trend": self.momentum_error_trend,
-            "momentum_error_time_constant_s": f(self.momentum_error_time_constant_s),
-            "momentum_error_time_constant_expected_s": f(self.momentum_error_time_constant_expected_s),
-            "magnetic_power_mean_W": f(self.magnetic_power_mean_W),
-            "damping_fraction": f(self.damping_fraction),
-            "loop_gain": f(self.loop_gain), "crosstalk_coupling": f(self.crosstalk_coupling),
-            "bdot_equivalent_gain_Nms": f(self.bdot_equivalent_gain_Nms),
-            "near_optimal_gain_Nms": f(self.near_optimal_gain_Nms),
-            "rate_floor_rad_s": f(self.rate_floor_rad_s),
-            "dipole_per_amp_matrix": None if self.dipole_per_amp_matrix is None
-            else np.asarray(self.dipole_per_amp_matrix).tolist(),
-            "dipole_per_amp_matrix_sigma": None if self.dipole_per_amp_matrix_sigma is None
-            else [[f(v) for v in row] for row in np.asarray(self.dipole_per_amp_matrix_sigma)],
-            "verdict": self.verdict, "reasons": list(self.reasons),
-            "anomalies": [a.to_dict() for a in self.anomalies],
-        })
-        return out
-
-
-# ------------------------------------------------------------------------------------ input checks
-def _arr(name: str, a: Any, tail: tuple[int, ...], n: int | None = None, allow_none: bool = False):
-    if a is None:
-        if allow_none:
-            return None
-        raise InputError(f"expected an array of shape (N, {', '.join(map(str, tail))}), got None", key=name)
-    x = np.asarray(a, float)
-    if x.ndim != 1 + len(tail) or x.shape[1:] != tail or (n is not None and len(x) != n):
-        want = f"({n if n is not None else 'N'}{''.join(', ' + str(t) for t in tail)})"
-        raise InputError(f"expected an array of shape {want}, got {x.shape}", key=name)
-    return x
-
-
-def _seconds(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
-    try:
-        tt = np.asarray(t, dtype="datetime64[ns]")
-    except (TypeError, ValueError):
-        raise InputError(f"expected UTC times (datetime64[ns]), got {np.asarray(t).dtype}", key=name) from None
-    if tt.ndim != 1:
-        raise InputError(f"expected a 1-D array of times, got shape {tt.shape}", key=name)
-    s = (tt - epoch).astype(np.int64) / 1e9
-    if len(s) > 1 and np.any(np.diff(s) <= 0):
-        raise InputError("expected strictly increasing times (clean the log first), got a step back or a "
-                         f"repeat at row {int(np.argmax(np.diff(s) <= 0)) + 1}", key=name)
-    return s
-
-
-def _f(x) -> float | None:
-    return None if x is None or not np.isfinite(x) else float(x) + 0.0
-
-
-# --------------------------------------------------------------------------------------- the judge
 def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np.ndarray,
                mag_sensor_to_body: np.ndarray, time_mag_utc: np.ndarray, b_mag_sensor_nT: np.ndarray,
                time_coil_utc: np.ndarray, i_coil_A: np.ndarray,
@@ -323,44 +112,43 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
 
     Returns
     -------
-    ControllerJudgement
+    ControllerJudgement (its ``diagnostics`` hold the latency profile, the rate-bias evidence, the
+    effect and the crosstalk-feedback figures behind it)
 
     Raises
     ------
     InputError
         Arrays of the wrong shape or time stamps that are not strictly increasing.
     """
-    J = _arr("inertia_kg_m2", inertia_kg_m2, (3,))
-    if J.shape != (3, 3):
-        raise InputError(f"expected a 3x3 inertia matrix, got shape {J.shape}", key="inertia_kg_m2")
-    M = _arr("mag_sensor_to_body", mag_sensor_to_body, (3,))
-    epoch = np.asarray(time_utc, dtype="datetime64[ns]")[0]
-    t = _seconds("time_utc", time_utc, epoch)
-    w = _arr("w_body_rad_s", w_body_rad_s, (3,), len(t))
-    t_mag = _seconds("time_mag_utc", time_mag_utc, epoch)
-    b_mag_body = _arr("b_mag_sensor_nT", b_mag_sensor_nT, (3,), len(t_mag)) @ M.T
-    t_coil = _seconds("time_coil_utc", time_coil_utc, epoch)
-    i_coil = _arr("i_coil_A", i_coil_A, (3,), len(t_coil))
-    q = _arr("q_body_from_gcrf", q_body_from_gcrf, (4,), len(t), allow_none=True)
-    if b_body_nT is not None:
-        b_body = _arr("b_body_nT", b_body_nT, (3,), len(t))
-    elif q is not None and b_gcrf_nT is not None:
-        b_body = body_from_gcrf(q, _arr("b_gcrf_nT", b_gcrf_nT, (3,), len(t)))
-    else:
-        raise InputError("expected b_body_nT, or q_body_from_gcrf with b_gcrf_nT, got neither", key="b_body_nT")
-    r_gcrf = _arr("r_gcrf_km", r_gcrf_km, (3,), len(t), allow_none=True)
-    r_body = body_from_gcrf(q, r_gcrf) if (r_gcrf is not None and q is not None) else None
-    P = _arr("w_cov_rad2_s2", w_cov_rad2_s2, (3, 3), len(t), allow_none=True)
-    K = _arr("K_nT_per_A", K_nT_per_A, (3,), 3, allow_none=True)
-    if K is not None and not np.all(np.isfinite(K)):
-        K = np.nan_to_num(K, nan=0.0)  # undetermined entries (a coil that never switched) count as none
-    if len(t) < 3 or len(t_coil) < 2:
-        raise InputError(f"expected at least 3 rate samples and 2 coil-log rows, got {len(t)} and {len(t_coil)}",
-                         key="time_utc")
+    data = check_pass_inputs(inertia_kg_m2=inertia_kg_m2, mag_sensor_to_body=mag_sensor_to_body,
+                             time_mag_utc=time_mag_utc, b_mag_sensor_nT=b_mag_sensor_nT, time_coil_utc=time_coil_utc,
+                             i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
+                             q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
+                             r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
+    setting = _setting(controller, coils, data)
+    replayed = _replay(controller, data, setting, time_gyro_utc, w_gyro_body_rad_s)
+    ident = _identification(data, setting, replayed)
+    effect = _effect(controller, data, setting, replayed, ident)
+    feedback = _feedback(controller, data, setting, replayed, ident)
+    return _judgement(data, setting, replayed, ident, effect, feedback)
 
-    law, T = controller.law, float(controller.period_s)
-    C_nom = np.asarray(coils.dipole_per_amp, float)
-    imax = np.asarray(coils.max_current_A, float)
+
+@dataclass(frozen=True)
+class _Setting:
+    """The pass's setting (for the findings) and its control ticks, s since the data's epoch; ``gate``
+    is (ticks, before, after) of the coil-off windows of windowed sampling, else None."""
+
+    ctx: PassContext
+    ticks_s: np.ndarray
+    gate: tuple[np.ndarray, float, float] | None
+    off_window_s: tuple[float, float] | None
+    max_hold_s: float
+
+
+def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _Setting:
+    """The control ticks where the rate history and the coil log overlap, and the pass's setting."""
+    t, t_coil, epoch = data.t_s, data.t_coil_s, data.epoch
+    T = float(controller.period_s)
     window = coils.off_window_s if coils.mag_sampling == "windowed" else None
     if controller.first_tick is not None:
         first = float((np.datetime64(controller.first_tick, "ns") - epoch).astype(np.int64) / 1e9)
@@ -370,27 +158,67 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     ticks = control_ticks(lo, hi, T, first)
     gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
-    ctx = _Context(law, T, C_nom, imax, span, coils.mag_sampling)
+    ctx = PassContext(controller.law, T, np.asarray(coils.dipole_per_amp, float),
+                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling)
+    return _Setting(ctx, ticks, gate, window, 2.5 * T)
 
-    # 1. command replay ------------------------------------------------------------------------
-    b_tick = rep.tick_samples_nT(t_mag, b_mag_body, ticks, sampling=coils.mag_sampling, off_window_s=window)
+
+@dataclass(frozen=True)
+class _Replay:
+    """The law replayed at each tick: the magnetometer samples it used (K, 3) nT body axes, the
+    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law) and
+    the logged commands' chatter fraction (3,)."""
+
+    b_tick_body_nT: np.ndarray
+    i_replay_A: np.ndarray
+    comparison: CommandComparison | None
+    chatter: np.ndarray
+
+
+def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, time_gyro_utc,
+            w_gyro_body_rad_s) -> _Replay:
+    """Step 1: the configured law recomputed from the raw samples, against the logged commands."""
+    ctx, ticks = setting.ctx, setting.ticks_s
+    law, T, C_nom, imax = ctx.law, ctx.period_s, ctx.C_nominal, ctx.max_current_A
+    b_tick = rep.tick_samples_nT(data.t_mag_s, data.b_mag_body_nT, ticks, sampling=ctx.mag_sampling,
+                                 off_window_s=setting.off_window_s)
     i_rep = np.full((len(ticks), 3), np.nan)
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
         if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = _seconds("time_gyro_utc", time_gyro_utc, epoch)
-            w_tick = held_values(tg, _arr("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks, tol=1e-9)
+            tg = seconds_since("time_gyro_utc", time_gyro_utc, data.epoch)
+            w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
+                                 tol=1e-9)
         else:
-            w_tick = np.column_stack([np.interp(ticks, t, w[:, a]) for a in range(3)])
+            w_tick = np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
-        i_rep = rep.replay_cross_product_A(b_tick, w_tick, J, target, controller.gain, C_nom, imax)
-    cmp_ = rep.compare_commands(ticks, i_rep, t_coil, i_coil, imax, T) if law != "none" else None
+        i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
+    cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
     logged_tick = (cmp_.logged_A if cmp_ is not None
-                   else held_values(t_coil, i_coil, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
-    chatter = rep.chatter_fraction(logged_tick, imax)
+                   else held_values(data.t_coil_s, data.i_coil_A, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
+    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax))
 
-    # 2. dipole identification and actuation latency -------------------------------------------
+
+@dataclass(frozen=True)
+class _Identification:
+    """The coils identified from the motion: the fit (None: not identified), the latency trials and
+    their profile, the rate-bias evidence, the segments, the applied current (N, 3) A and the axes."""
+
+    fit: DipoleFit | None
+    latency_trials_s: np.ndarray
+    latency_trials_wrss: np.ndarray
+    latency: LatencyProfile | None
+    rate_bias: RateBiasEvidence | None
+    n_segments: int
+    i_applied_A: np.ndarray
+    axes: tuple[AxisJudgement, ...]
+
+
+def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _Identification:
+    """Step 2: each coil's dipole per amp and the actuation latency from the motion."""
+    ticks, T, gate = setting.ticks_s, setting.ctx.period_s, setting.gate
+    t, w, b_body, J = data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2
     n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
     fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
     lat_info, rate_bias = None, None
@@ -398,368 +226,118 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
         # The rate history may carry a slowly varying bias (a gyro bias the estimator got wrong); through
         # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
-        scans = {kn: dip.scan_actuation_latency(
-            t, w, b_body, J, t_coil, i_coil, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
-            r_body_km=r_body, w_cov_rad2_s2=P, gate=gate, max_hold_s=2.5 * T, rate_bias_knot_s=kn)
-            for kn in (None, dip.RATE_BIAS_KNOT_S)}
-        used, gain, penalty = dip.rate_bias_evidence(scans[None][0], scans[dip.RATE_BIAS_KNOT_S][0])
-        knot = dip.RATE_BIAS_KNOT_S if used else None
-        scan_fit, lat_trials, lat_wrss = scans[knot]
-        lat_info = _latency_profile(scan_fit, lat_trials, lat_wrss, T)
+        scans = {kn: scan_actuation_latency(
+            t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
+            r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, gate=gate, max_hold_s=setting.max_hold_s,
+            rate_bias_knot_s=kn) for kn in (None, RATE_BIAS_KNOT_S)}
+        used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
+        knot = RATE_BIAS_KNOT_S if used else None
+        scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
+        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
-        L_use = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else 0.0
-        fit = dip.identify_dipole(t, w, b_body, J, t_coil, i_coil, ticks, r_body_km=r_body, w_cov_rad2_s2=P,
-                                  latency_s=L_use, gate=gate, max_hold_s=2.5 * T, segment_points=SEGMENT_POINTS,
-                                  rate_bias_knot_s=knot)
-        rate_bias = {"used": used and fit is not None and fit.rate_bias_rad_s is not None,
-                     "delta_chi2": gain, "penalty": penalty}
-        if rate_bias["used"]:
-            rate_bias.update(knots_s=fit.rate_bias_knots_s.tolist(), rad_s=fit.rate_bias_rad_s.tolist(),
-                             sigma_rad_s=fit.rate_bias_sigma_rad_s.tolist())
-    i_applied = applied_current(t, t_coil, i_coil, latency_s=fit.latency_s if fit else 0.0, gate=gate,
-                                      max_hold_s=2.5 * T)
-    axes = _axes(ctx, fit, cmp_, chatter, i_applied)
+        L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
+        fit = identify_dipole(t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, r_body_km=data.r_body_km,
+                              w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=L_use, gate=gate,
+                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot)
+        rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
+        if rate_bias.used:
+            rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
+                                sigma_rad_s=fit.rate_bias_sigma_rad_s)
+    i_applied = applied_current(t, data.t_coil_s, data.i_coil_A, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+                                max_hold_s=setting.max_hold_s)
+    axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
         # no coil identified: the motion says nothing about timing, in either direction
-        lat_info["determined"] = lat_info["acausal"] = False
-
-    # 3. physical effect -----------------------------------------------------------------------
-    C_used = C_nom.copy()
-    for a, ax in enumerate(axes):
-        if fit is not None and ax.polarity != "undetermined":
-            C_used[:, a] = fit.C[:, a]
-    i_rep_applied = applied_current(t, ticks, np.nan_to_num(i_rep), gate=gate, max_hold_s=2.5 * T)
-    target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
-    effect = eff.assess_effect(law, controller.gain, t, w, b_body, J, i_applied, i_rep_applied, C_used, C_nom,
-                               target_momentum_Nms=target, r_gcrf_km=r_gcrf,
-                               b_gcrf_nT=None if b_gcrf_nT is None else np.asarray(b_gcrf_nT, float))
-
-    # 4. crosstalk feedback --------------------------------------------------------------------
-    loop: dict[str, Any] = {}
-    if law == "bdot" and K is not None:
-        L_act = fit.latency_s if fit is not None else 0.0
-        seen = (np.zeros((len(ticks), 3)) if coils.mag_sampling == "coils_off" else
-                applied_current(ticks - 1e-6, t_coil, i_coil, latency_s=L_act, gate=gate, max_hold_s=2.5 * T))
-        loop = rep.assess_crosstalk_feedback(K, M, C_nom, controller.gain, T, ticks_s=ticks, b_tick_body_nT=b_tick,
-                                             i_seen_at_tick_A=seen, max_current_A=imax,
-                                             delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
-
-    anomalies, reasons = _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, len(ticks),
-                                   rate_bias)
-    verdict = _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info)
-    lag = cmp_.lag_s if cmp_ is not None else None
-    act = lat_info["latency_s"] if lat_info is not None and lat_info["determined"] else None
-    total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
-    return ControllerJudgement(
-        law=law, axes=tuple(axes), verdict=verdict, reasons=tuple(reasons), anomalies=tuple(anomalies),
-        latency_s=total, command_lag_s=lag, actuation_latency_s=act,
-        actuation_latency_interval_s=lat_info["interval_s"] if lat_info is not None else None,
-        rate_trend=effect["rate_trend"], energy_time_constant_s=effect.get("tau_E"),
-        energy_time_constant_expected_s=effect.get("tau_E_exp"),
-        momentum_error_trend=effect.get("h_trend"), momentum_error_time_constant_s=effect.get("tau_h"),
-        momentum_error_time_constant_expected_s=effect.get("tau_h_exp"),
-        magnetic_power_mean_W=effect.get("power_W"), damping_fraction=effect.get("damping_fraction"),
-        loop_gain=loop.get("loop_gain"), crosstalk_coupling=loop.get("coupling"),
-        chatter_fraction_without_coil_field=(_f(float(np.nanmax(loop["chatter_without"])))
-                                             if "chatter_without" in loop else None),
-        bdot_equivalent_gain_Nms=effect.get("k_eq"), near_optimal_gain_Nms=effect.get("k_ag"),
-        rate_floor_rad_s=effect.get("floor"), dipole_per_amp_matrix=None if fit is None else fit.C,
-        dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
-        residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
-        replay_time_utc=epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
-        replay_i_A=i_rep,
-        extras={"latency_profile_s": lat_trials.tolist(), "latency_profile_wrss": lat_wrss.tolist(),
-                "latency": lat_info, "rate_bias": rate_bias,
-                "effect": {k: v for k, v in effect.items() if not isinstance(v, np.ndarray)},
-                "n_ticks": int(len(ticks)), "n_segments": n_seg},
-    )
+        lat_info = replace(lat_info, determined=False, acausal=False)
+    return _Identification(fit, lat_trials, lat_wrss, lat_info, rate_bias, n_seg, i_applied, axes)
 
 
-@dataclass(frozen=True)
-class _Context:
-    law: str
-    period_s: float
-    C_nom: np.ndarray
-    imax: np.ndarray
-    span: tuple[np.datetime64, np.datetime64]
-    sampling: str
-
-
-def _latency_profile(scan_fit, lat, wrss, period_s: float) -> dict[str, Any] | None:
-    """Best latency of zero or more, its 3-sigma range (profile chi-square within 9 of the best
-    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, and the check
-    of causality, all in units of the best fit's scaled residual variance.
-
-    A current cannot act before its command, so the latency is bounded below by zero and its range
-    is the bounded profile's. The negative trials test the time tags instead: when the best of them
-    beats the best causal trial by ``LATENCY_DELTA_CHI2`` or more, the motion says, at 3 sigma, that
-    the torque came before the logged command, and the latency is left undetermined ("acausal").
-
-    The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
-    model errors (attitude error) make them optimistic, so decisions use the 3-sigma range."""
-    causal = lat >= -1e-9
-    if scan_fit is None or len(lat) == 0 or not np.any(np.isfinite(wrss[causal])):
-        return None
-    infl = (1 + scan_fit.ar1) / (1 - scan_fit.ar1) if 0 < scan_fit.ar1 < 0.99 else 1.0
-    unit = scan_fit.chi2_per_dof * infl
-    d = (wrss - np.nanmin(wrss[causal])) / unit
-    dd = np.where(causal, np.nan_to_num(d, nan=np.inf), np.inf)
-    inside = lat[dd <= 1.0]
-    wide = lat[dd <= LATENCY_DELTA_CHI2]
-    d0 = d[np.argmin(np.abs(lat))] if np.min(np.abs(lat)) < 1e-9 else np.nan
-    lo, hi = float(wide.min()), float(wide.max())
-    # chi-square gained by letting the torque come before its command, and where it is best
-    neg = ~causal & np.isfinite(d)
-    gain = float(max(-np.min(d[neg]), 0.0)) if neg.any() else 0.0
-    acausal = gain >= LATENCY_DELTA_CHI2
-    return {"latency_s": float(scan_fit.latency_s), "interval_s": (lo, hi), "delta_chi2_zero": float(d0),
-            "interval_1sigma_s": (float(inside.min()), float(inside.max())),
-            "acausal": acausal, "acausal_delta_chi2": gain,
-            "acausal_latency_s": float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
-            # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
-            # at most two periods, i.e. the latency is known to within about one period
-            "determined": bool(not acausal and wide.max() - wide.min() <= 2.0 * period_s + 1e-9)}
-
-
-def _axes(ctx: _Context, fit, cmp_, chatter, i_applied) -> list[AxisJudgement]:
+def _axes(ctx: PassContext, fit: DipoleFit | None, cmp_: CommandComparison | None, chatter: np.ndarray,
+          i_applied: np.ndarray) -> tuple[AxisJudgement, ...]:
+    """Each coil's judgement: polarity and gain from the fit, command figures from the replay."""
     out = []
+    f = finite_or_none
     for a, name in enumerate(AXES):
-        c0 = float(ctx.C_nom[a, a])
+        c0 = float(ctx.C_nominal[a, a])
         rms = float(np.sqrt(np.nanmean(i_applied[:, a] ** 2))) if np.any(np.isfinite(i_applied[:, a])) else None
         if fit is not None and np.isfinite(fit.C_sigma[a, a]):
-            pol, conf, r, rs = dip.classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
-            est, sig = float(fit.C[a, a]), float(np.hypot(fit.C_sigma[a, a], dip.MODEL_FLOOR_FRACTION * abs(c0)))
+            pol, conf, r, rs = classify_coil(fit.C[a, a], fit.C_sigma[a, a], c0)
+            est, sig = float(fit.C[a, a]), dipole_sigma_with_floor(fit.C_sigma[a, a], c0)
         else:  # not identified, or the coil never carried current
             pol, conf, r, rs, est, sig = "undetermined", None, None, None, None, None
         out.append(AxisJudgement(
-            axis=name, polarity=pol, polarity_confidence=_f(conf), dipole_per_amp_estimated=_f(est),
-            dipole_per_amp_sigma=_f(sig), dipole_per_amp_nominal=c0, gain_ratio=_f(r), gain_ratio_sigma=_f(rs),
-            command_gain_ratio=_f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
-            correlation=_f(cmp_.correlation[a]) if cmp_ is not None else None,
-            saturation_fraction=_f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
-            chatter_fraction=_f(chatter[a]), rms_current_A=_f(rms)))
-    return out
+            axis=name, polarity=pol, polarity_confidence=f(conf), dipole_per_amp_estimated=f(est),
+            dipole_per_amp_sigma=f(sig), dipole_per_amp_nominal=c0, gain_ratio=f(r), gain_ratio_sigma=f(rs),
+            command_gain_ratio=f(cmp_.gain_ratio[a]) if cmp_ is not None else None,
+            correlation=f(cmp_.correlation[a]) if cmp_ is not None else None,
+            saturation_fraction=f(cmp_.saturation_fraction[a]) if cmp_ is not None else None,
+            chatter_fraction=f(chatter[a]), rms_current_A=f(rms)))
+    return tuple(out)
 
 
+def _effect(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
+            ident: _Identification) -> EffectAssessment:
+    """Step 3: the physical effect, with the identified dipoles where the coils were identified."""
+    C_nom, fit = setting.ctx.C_nominal, ident.fit
+    C_used = C_nom.copy()
+    for a, ax in enumerate(ident.axes):
+        if fit is not None and ax.polarity != "undetermined":
+            C_used[:, a] = fit.C[:, a]
+    i_rep_applied = applied_current(data.t_s, setting.ticks_s, np.nan_to_num(replayed.i_replay_A), gate=setting.gate,
+                                    max_hold_s=setting.max_hold_s)
+    target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
+    return assess_effect(controller.law, controller.gain, data.t_s, data.w_body_rad_s, data.b_body_nT,
+                         data.inertia_kg_m2, ident.i_applied_A, i_rep_applied, C_used, C_nom,
+                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT)
 
 
-# ------------------------------------------------------------------------------------------ findings
-def _an(ctx: _Context, code: str, severity: str, evidence: str, axis: str | None = None,
-        value: float | None = None) -> Anomaly:
-    return Anomaly(code, severity, evidence, ctx.span[0], ctx.span[1], axis, _f(value) if value is not None else None)
+def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
+              ident: _Identification) -> CrosstalkFeedback | None:
+    """Step 4: the coil-field feedback of B-dot, where the crosstalk is known (None otherwise)."""
+    if controller.law != "bdot" or data.K_nT_per_A is None:
+        return None
+    ctx, ticks, T = setting.ctx, setting.ticks_s, setting.ctx.period_s
+    L_act = ident.fit.latency_s if ident.fit is not None else 0.0
+    seen = (np.zeros((len(ticks), 3)) if ctx.mag_sampling == "coils_off" else
+            applied_current(ticks - 1e-6, data.t_coil_s, data.i_coil_A, latency_s=L_act, gate=setting.gate,
+                            max_hold_s=setting.max_hold_s))
+    return assess_crosstalk_feedback(data.K_nT_per_A, data.mag_sensor_to_body, ctx.C_nominal, controller.gain, T,
+                                     ticks_s=ticks, b_tick_body_nT=replayed.b_tick_body_nT, i_seen_at_tick_A=seen,
+                                     max_current_A=ctx.max_current_A,
+                                     delay_ticks=max(int(np.floor(L_act / T + 1e-9)), 0))
 
 
-def _command_verified(cmp_, a: int) -> bool:
-    if cmp_ is None or not np.isfinite(cmp_.correlation[a]) or cmp_.correlation[a] < COMMAND_MIN_CORRELATION:
-        return False
-    if cmp_.n_informative[a] >= COMMAND_MIN_TICKS:
-        return bool(abs(cmp_.gain_ratio[a] - 1.0) <= COMMAND_GAIN_TOLERANCE)
-    return True
-
-
-def _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons) -> None:
-    if fit is None:
-        if n_seg < MIN_SEGMENTS:
-            reasons.append(f"pass too short to identify the coils from the motion: {n_ticks} control ticks "
-                           f"({n_ticks * ctx.period_s:.0f} s) make {n_seg} segments of {SEGMENT_POINTS - 1} "
-                           f"periods, {MIN_SEGMENTS} are needed")
-        else:
-            reasons.append("the coils could not be identified from the motion: too few usable instants "
-                           "(gaps in the coil log or the rate history)")
-        return
-    for a, ax in enumerate(axes):
-        est, sig, c0, r, rs = (ax.dipole_per_amp_estimated, ax.dipole_per_amp_sigma, ax.dipole_per_amp_nominal,
-                               ax.gain_ratio, ax.gain_ratio_sigma)
-        if est is None or sig is None:
-            head = f"coil {ax.axis}: no dipole estimate (nominal {c0:+.2f} A m^2/A)"
-        else:
-            head = f"coil {ax.axis}: estimated dipole {est:+.2f} +- {sig:.2f} A m^2/A against nominal {c0:+.2f}"
-        rms = f"{(ax.rms_current_A or 0.0) * 1e3:.1f} mA rms"
-        if ax.polarity == "inverted":
-            why = ""
-            if ax.command_gain_ratio is not None and abs(ax.command_gain_ratio - 1) <= COMMAND_GAIN_TOLERANCE:
-                why = (f"; the logged commands follow the law (command gain ratio {ax.command_gain_ratio:.2f}), "
-                       "so the reversal is in the coil or its wiring")
-            out.append(_an(ctx, "coil_polarity_inverted", "critical",
-                           f"{head}: polarity inverted ({ax.polarity_confidence:.0f} sigma from zero){why}",
-                           ax.axis, est))
-        elif ax.polarity == "no_response":
-            out.append(_an(ctx, "coil_no_response", "critical",
-                           f"{head}: no response ({ax.polarity_confidence:.0f} sigma below nominal) while "
-                           f"commanded at {rms}", ax.axis, est))
-        elif ax.polarity == "undetermined":
-            if not ax.rms_current_A:
-                reasons.append(f"{head}: the coil carried no current during the pass")
-            else:
-                reasons.append(f"{head}: cannot be told from nominal or from zero at 3 sigma "
-                               f"(current {rms}, {100 * ax.rms_current_A / ctx.imax[a]:.0f} % of the limit)")
-        if ax.polarity in ("nominal", "inverted"):
-            lo, hi = abs(r) - COIL_GAIN_SIGMAS * rs, abs(r) + COIL_GAIN_SIGMAS * rs
-            if lo > 1 + COIL_GAIN_TOLERANCE or hi < 1 - COIL_GAIN_TOLERANCE:
-                out.append(_an(ctx, "coil_gain_off", "warning",
-                               f"coil {ax.axis}: dipole {abs(est):.2f} +- {sig:.2f} A m^2/A is {abs(r):.2f} of nominal "
-                               f"{abs(c0):.2f} (3-sigma interval {lo:.2f} to {hi:.2f}, outside "
-                               f"{1 - COIL_GAIN_TOLERANCE:.2f} to {1 + COIL_GAIN_TOLERANCE:.2f})", ax.axis, r))
-
-
-def _command_findings(ctx, axes, cmp_, lat_info, out, reasons) -> None:
-    T = ctx.period_s
-    if cmp_ is not None:
-        for a, ax in enumerate(axes):
-            cg, cc, n = cmp_.gain_ratio[a], cmp_.correlation[a], int(cmp_.n_informative[a])
-            bad_gain = n >= COMMAND_MIN_TICKS and abs(cg - 1.0) > COMMAND_GAIN_TOLERANCE
-            bad_corr = np.isfinite(cc) and cc < COMMAND_MIN_CORRELATION and n >= COMMAND_MIN_TICKS
-            if bad_gain or bad_corr:
-                sev = "critical" if (np.isfinite(cg) and cg < 0) else "warning"
-                out.append(_an(ctx, "command_mismatch", sev,
-                               f"axis {ax.axis}: logged commands are {cg:.2f} times the replayed {ctx.law} law "
-                               f"(correlation {cc:.2f} over {n} unsaturated ticks); a healthy law gives 1.00 within "
-                               f"{COMMAND_GAIN_TOLERANCE:.2f} and correlation above {COMMAND_MIN_CORRELATION}",
-                               ax.axis, cg))
-            elif not _command_verified(cmp_, a):
-                reasons.append(f"axis {ax.axis}: the logged commands could not be checked against the law "
-                               f"({n} informative ticks, correlation {cc:.2f})")
-            sf = cmp_.saturation_fraction[a]
-            if np.isfinite(sf) and sf > SATURATION_FRACTION_LIMIT:
-                out.append(_an(ctx, "controller_saturated", "warning",
-                               f"axis {ax.axis}: at the current limit ({ctx.imax[a] * 1e3:.0f} mA) on {100 * sf:.0f} % "
-                               f"of control ticks (more than {100 * SATURATION_FRACTION_LIMIT:.0f} %): the law acts "
-                               "as bang-bang there, not at its configured gain", ax.axis, sf))
-        if cmp_.lag_s is not None and abs(cmp_.lag_s) >= LATENCY_LIMIT_PERIODS * T:
-            out.append(_an(ctx, "command_latency", "warning",
-                           f"logged commands appear {cmp_.lag_s:.2f} s after the replayed law's tick "
-                           f"({cmp_.lag_s / T:.1f} control periods)", value=cmp_.lag_s))
-    if lat_info is None:
-        return
-    if lat_info["acausal"]:
-        La, g = lat_info["acausal_latency_s"], lat_info["acausal_delta_chi2"]
-        text = (f"the motion is best explained with the coil currents acting {-La:.2f} s before their logged "
-                f"command time (profile chi-square {g:.0f} below the best delay of zero or more, 3 sigma at "
-                f"{LATENCY_DELTA_CHI2:.0f}); a current cannot flow before it is commanded, so the time tags of the "
-                "coil log or of the rate history are in error, and the actuation latency is not judged")
-        out.append(_an(ctx, "actuation_before_command", "info", text, value=La))
-        reasons.append(text)
-        return
-    L, (lo, hi), d0 = lat_info["latency_s"], lat_info["interval_s"], lat_info["delta_chi2_zero"]
-    if lat_info["determined"] and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
-        out.append(_an(ctx, "command_latency", "warning",
-                       f"coil currents act {L:.1f} s (3-sigma range {lo:.1f} to {hi:.1f} s) after their logged command "
-                       f"time, {L / T:.1f} control periods; the motion rejects immediate action (profile "
-                       f"chi-square +{d0:.0f} at zero delay)", value=L))
-
-
-def _effect_findings(ctx, effect, out, reasons) -> None:
-    if ctx.law == "bdot":
-        tr, tre = effect.get("energy_trend"), effect.get("energy_trend_expected")
-        code_up, code_slow, what = "rate_increasing", "detumble_slow", "kinetic energy"
-    elif ctx.law == "cross_product":
-        tr, tre = effect.get("h_trend_obj"), effect.get("h_trend_expected")
-        code_up, code_slow, what = "momentum_error_increasing", "momentum_dump_slow", "momentum error |h - h_target|"
-    else:
-        return
-    if tr is None:
-        reasons.append(f"the {what} trend could not be fitted (too few rate samples)")
-        return
-    label = eff.trend_label(tr)
-    tau_exp = tre.time_constant_s if tre is not None else float("nan")
-    if label == "increasing":
-        out.append(_an(ctx, code_up, "critical",
-                       f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} per s, "
-                       f"{np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) where the "
-                       f"configured law should have reduced it (expected time constant {tau_exp:.0f} s); mean "
-                       f"magnetic power {effect.get('power_W', float('nan')):+.2e} W (positive pumps energy in)",
-                       value=tr.slope_per_s))
-        return
-    if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
-        return
-    ratio = effect.get("efficiency", float("nan"))
-    if np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR:
-        obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
-        extra = ""
-        if ctx.law == "bdot" and effect.get("k_eq") and effect.get("k_ag"):
-            extra = (f"; B-dot equivalent gain k <|B|^2> = {effect['k_eq']:.2e} N m s, "
-                     f"{effect['k_eq'] / effect['k_ag']:.1f} times the near-optimal {effect['k_ag']:.2e} N m s "
-                     "(Avanzini and Giulietti 2012)")
-        out.append(_an(ctx, code_slow, "warning",
-                       f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
-                       f"this trajectory (achieved {max(ratio, 0):.2f} of the expected decay rate, limit "
-                       f"1/{DETUMBLE_SLOW_FACTOR:.0f}){extra}", value=ratio))
-
-
-def _feedback_findings(ctx, effect, loop, chatter, out) -> None:
-    if ctx.law != "bdot" or not np.any(np.isfinite(chatter)):
-        return
-    rot = effect.get("mean_rate_rad_s", 0.0) * ctx.period_s / np.pi
-    a = int(np.nanargmax(chatter))
-    cf = float(chatter[a])
-    lg = loop.get("loop_gain")
-    detected = cf >= CHATTER_FRACTION_LIMIT and cf >= CHATTER_ROTATION_FACTOR * rot
-    rate_txt = f"{np.degrees(effect.get('mean_rate_rad_s', 0.0)):.1f} deg/s"
-    if detected:
-        head = (f"coil commands flip between the current limits on {100 * cf:.0f} % of ticks (axis {AXES[a]}); the "
-                f"body's rotation ({rate_txt}) alone would flip about {100 * rot:.1f} %")
-        if lg is not None and lg >= LOOP_GAIN_LIMIT:
-            cw = loop.get("chatter_without")
-            cw_txt = f"{100 * float(np.nanmax(cw)):.0f} %" if cw is not None and np.any(np.isfinite(cw)) else "n/a"
-            kmax = float(np.max(np.abs(loop["K_body_nT_per_A"])))
-            out.append(_an(ctx, "crosstalk_feedback", "critical",
-                           f"{head}; the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates; "
-                           f"crosstalk up to {kmax:.0f} nT/A) and the law replayed with the coils' field removed "
-                           f"from its samples flips on {cw_txt} of ticks: the coils' own field, seen by the "
-                           f"magnetometer (mag_sampling = {ctx.sampling}), feeds back through dB/dt",
-                           AXES[a], lg))
-        else:
-            lg_txt = f"loop gain {lg:.2f} < {LOOP_GAIN_LIMIT:.0f}" if lg is not None else "no crosstalk estimate"
-            out.append(_an(ctx, "crosstalk_feedback", "warning",
-                           f"{head}; {lg_txt}: the coils' field does not explain it", AXES[a], cf))
-    elif lg is not None and lg >= LOOP_GAIN_LIMIT and ctx.sampling == "coils_on":
-        out.append(_an(ctx, "crosstalk_feedback", "warning",
-                       f"the coil-field loop gain is {lg:.2f} (>= {LOOP_GAIN_LIMIT:.0f} oscillates) with the "
-                       "magnetometer sampled while the coils are on, although commands flipped on only "
-                       f"{100 * cf:.0f} % of ticks in this pass", value=lg))
-
-
-def _rate_bias_findings(ctx, rate_bias, out) -> None:
-    """An info record when the identification needed a bias in the rate history: the rate other
-    tools read from this pass (attitude.csv) carries it too. Only the collective evidence is quoted:
-    the bias is well determined where the body turns fast (the gyroscopic term is proportional to
-    the rate) and poorly where it has slowed, so single knot values would mislead."""
-    if not rate_bias or not rate_bias["used"]:
-        return
-    n = int(np.size(rate_bias["rad_s"]))
-    out.append(_an(
-        ctx, "rate_history_biased", "info",
-        f"the motion is explained better when the rate history may carry a slowly varying bias (chi-square "
-        f"gain {rate_bias['delta_chi2']:.0f} for {n} unknowns, against the Schwarz penalty "
-        f"{rate_bias['penalty']:.0f}): the reconstructed rate and gyro bias deserve a check; the coils and "
-        "the latency were judged with that bias estimated alongside", value=rate_bias["delta_chi2"]))
-
-
-def _findings(ctx, axes, fit, cmp_, lat_info, effect, loop, chatter, n_seg, n_ticks, rate_bias=None):
-    out: list[Anomaly] = []
-    reasons: list[str] = []
-    if ctx.law == "none":
-        reasons.append('no control law is configured (controller.law = "none"): there is no intended '
-                       "behaviour to check the coils against")
-    _coil_findings(ctx, axes, fit, cmp_, n_seg, n_ticks, out, reasons)
-    _command_findings(ctx, axes, cmp_, lat_info, out, reasons)
-    _effect_findings(ctx, effect, out, reasons)
-    _feedback_findings(ctx, effect, loop, chatter, out)
-    _rate_bias_findings(ctx, rate_bias, out)
-    return out, reasons
-
-
-def _verdict(ctx, axes, anomalies, reasons, cmp_, lat_info=None) -> str:
-    """"not_as_intended" on any critical or warning finding other than saturation (an operating
-    regime, not a fault); otherwise "as_intended" only when every coil's polarity and every axis's
-    commands were checked and the motion's timing is causal; "undetermined" (with ``reasons``) when
-    anything could not be."""
-    if any(a.severity in ("critical", "warning") and a.code != "controller_saturated" for a in anomalies):
-        return "not_as_intended"
-    if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
-        return "undetermined"
-    if lat_info is not None and lat_info["acausal"]:
-        return "undetermined"
-    if not all(_command_verified(cmp_, a) for a in range(3)):
-        return "undetermined"
-    return "as_intended"
+def _judgement(data: PassArrays, setting: _Setting, replayed: _Replay, ident: _Identification,
+               effect: EffectAssessment, loop: CrosstalkFeedback | None) -> ControllerJudgement:
+    """Step 5: findings and verdict, and the judgement that carries them with the figures behind them."""
+    ctx, ticks, fit, cmp_, lat_info = setting.ctx, setting.ticks_s, ident.fit, replayed.comparison, ident.latency
+    found = findings(ctx, axes=ident.axes, identified=fit is not None, comparison=cmp_, latency=lat_info,
+                     effect=effect, feedback=loop, chatter=replayed.chatter, n_segments=ident.n_segments,
+                     n_ticks=len(ticks), rate_bias=ident.rate_bias)
+    lag = cmp_.lag_s if cmp_ is not None else None
+    act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
+    total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
+    return ControllerJudgement(
+        law=ctx.law, axes=ident.axes, verdict=verdict(ctx, ident.axes, found.anomalies, cmp_, lat_info),
+        reasons=found.reasons, anomalies=found.anomalies,
+        latency_s=total, command_lag_s=lag, actuation_latency_s=act,
+        actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
+        rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
+        energy_time_constant_expected_s=effect.energy_time_constant_expected_s,
+        momentum_error_trend=effect.momentum_error_trend,
+        momentum_error_time_constant_s=effect.momentum_error_time_constant_s,
+        momentum_error_time_constant_expected_s=effect.momentum_error_time_constant_expected_s,
+        magnetic_power_mean_W=effect.magnetic_power_mean_W, damping_fraction=effect.damping_fraction,
+        loop_gain=loop.loop_gain if loop is not None else None,
+        crosstalk_coupling=loop.coupling if loop is not None else None,
+        chatter_fraction_without_coil_field=(finite_or_none(float(np.nanmax(loop.chatter_without)))
+                                             if loop is not None else None),
+        bdot_equivalent_gain_Nms=effect.bdot_equivalent_gain_Nms, near_optimal_gain_Nms=effect.near_optimal_gain_Nms,
+        rate_floor_rad_s=effect.rate_floor_rad_s, dipole_per_amp_matrix=None if fit is None else fit.C,
+        dipole_per_amp_matrix_sigma=None if fit is None else fit.C_sigma,
+        residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2,
+        replay_time_utc=data.epoch + np.round(ticks * 1e9).astype(np.int64).astype("timedelta64[ns]"),
+        replay_i_A=replayed.i_replay_A,
+        diagnostics=JudgementDiagnostics(ident.latency_trials_s, ident.latency_trials_wrss, lat_info, ident.rate_bias,
+                                         effect, loop, int(len(ticks)), ident.n_segments),
+    )
