@@ -16,14 +16,25 @@ from typing import Any
 import numpy as np
 
 from .calibrate import calibrate_pass, format_crosstalk_table
-from .clean import clean_pass, format_inspect_table, write_ledger
+from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import Anomaly, InputError, __version__
 from .estimate import NoiseModel, estimate_attitude, write_attitude_csv
 from .field import reference_field
 from .judge import judge_pass
 from .load import load_pass
-from .report import CAUTION, ProgressBar, pass_figures, say, settings_block, write_aem, write_json, write_report
+from .report import (
+    CAUTION,
+    ProgressBar,
+    format_inspect_table,
+    pass_figures,
+    say,
+    settings_block,
+    write_aem,
+    write_json,
+    write_ledger,
+    write_report,
+)
 
 __all__ = ["PassResult", "InspectResult", "run_pass", "inspect_pass", "crosstalk_pass"]
 

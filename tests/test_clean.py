@@ -11,10 +11,11 @@ import pytest
 from scipy.spatial.transform import Rotation
 from scipy.stats import norm
 
-from recon.clean import clean_pass, find_gaps, format_inspect_table, hampel, spikes, write_ledger
+from recon.clean import clean_pass, find_gaps, hampel, spikes
 from recon.config import load_mission
 from recon.core import InputError
 from recon.load import load_pass
+from recon.report import format_inspect_table, write_ledger
 
 HEAD = """\
 [pass]

@@ -2,7 +2,6 @@
 saturation, and write every decision into the ledger.
 """
 
-from .findings import format_inspect_table, write_ledger
 from .logs import CleanedLog, CleanedPass, clean_log, clean_pass
 from .rows import GAP_FACTOR, RANGE_MARGIN, find_gaps
 
@@ -12,8 +11,6 @@ __all__ = [
     "clean_pass",
     "clean_log",
     "find_gaps",
-    "format_inspect_table",
-    "write_ledger",
     "GAP_FACTOR",
     "RANGE_MARGIN",
 ]

@@ -15,12 +15,15 @@ from .html import (
     render_html,
     write_report,
 )
+from .ledger import format_inspect_table, write_ledger
 from .progress import ProgressBar, say
 from .summary import CAUTION, jsonable, settings_block, write_json
 
 __all__ = [
     "figures",
     "pass_figures",
+    "format_inspect_table",
+    "write_ledger",
     "ProgressBar",
     "say",
     "CAUTION",
