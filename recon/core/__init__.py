@@ -54,6 +54,7 @@ from .frames import (
     teme_to_itrf_matrix,
     utc_to_jd,
 )
+from .laws import bdot_dipole, cross_product_dipole, currents_from_dipole
 from .signal import held_integral, held_mean, local_slope, robust_scale, white_noise_from_differences, window_mean
 from .timetext import utc_text, utc_texts
 from .version import __version__
@@ -72,4 +73,5 @@ __all__ = [
     "mean_dipole_over_steps", "tick_phase",
     "held_integral", "held_mean", "local_slope", "robust_scale", "white_noise_from_differences", "window_mean",
     "utc_text", "utc_texts", "__version__",
+    "bdot_dipole", "cross_product_dipole", "currents_from_dipole",
 ]

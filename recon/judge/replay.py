@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import held_values
+from ..core import bdot_dipole, cross_product_dipole, currents_from_dipole, held_values
 from .thresholds import INFORMATIVE_LEVEL, NEAR_LIMIT_LEVEL, SATURATION_LEVEL
 
 __all__ = [
@@ -73,11 +73,6 @@ def tick_samples_nT(t_mag_s: np.ndarray, b_mag_body_nT: np.ndarray, ticks_s: np.
     return out
 
 
-def _clip_currents(m_body_Am2: np.ndarray, C_nominal: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
-    i = np.linalg.solve(C_nominal, m_body_Am2.T).T
-    return np.clip(i, -max_current_A, max_current_A)
-
-
 def replay_bdot_A(ticks_s: np.ndarray, b_tick_body_nT: np.ndarray, gain_Am2_s_per_T: float,
                   C_nominal: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:
     """Commanded currents of B-dot, ``i = clip(C^-1 (-k dB/dt))``, from consecutive tick samples.
@@ -103,10 +98,9 @@ def replay_bdot_A(ticks_s: np.ndarray, b_tick_body_nT: np.ndarray, gain_Am2_s_pe
     out = np.full((len(ticks), 3), np.nan)
     if len(ticks) < 2:
         return out
-    bdot_T_s = np.diff(b, axis=0) * 1e-9 / np.diff(ticks)[:, None]
-    m = -gain_Am2_s_per_T * bdot_T_s
+    m = bdot_dipole(b[1:], b[:-1], np.diff(ticks), gain_Am2_s_per_T)
     ok = np.all(np.isfinite(m), axis=1)
-    out[1:][ok] = _clip_currents(m[ok], C_nominal, max_current_A)
+    out[1:][ok] = currents_from_dipole(m[ok], C_nominal, max_current_A)
     return out
 
 
@@ -132,13 +126,11 @@ def replay_cross_product_A(b_tick_body_nT: np.ndarray, w_tick_body_rad_s: np.nda
     ----------
     Markley and Crassidis (2014), sec. 7.5: the torque is -k (h_err - (h_err . b) b).
     """
-    b_T = np.asarray(b_tick_body_nT, float) * 1e-9
+    b = np.asarray(b_tick_body_nT, float)
     h_err = np.asarray(w_tick_body_rad_s, float) @ np.asarray(inertia_kg_m2, float).T - target_momentum_Nms
-    b2 = np.einsum("ij,ij->i", b_T, b_T)
-    out = np.full(b_T.shape, np.nan)
-    ok = np.all(np.isfinite(b_T), axis=1) & np.all(np.isfinite(h_err), axis=1) & (b2 > 0)
-    m = gain_per_s * np.cross(h_err[ok], b_T[ok]) / b2[ok, None]
-    out[ok] = _clip_currents(m, C_nominal, max_current_A)
+    out = np.full(b.shape, np.nan)
+    ok = np.all(np.isfinite(b), axis=1) & np.all(np.isfinite(h_err), axis=1) & (np.sum(b * b, axis=1) > 0)
+    out[ok] = currents_from_dipole(cross_product_dipole(h_err[ok], b[ok], gain_per_s), C_nominal, max_current_A)
     return out
 
 
