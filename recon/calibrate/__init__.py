@@ -1,4 +1,5 @@
-"""Magnetometer calibration for one pass: bias, soft iron and coil crosstalk (nT per A), with uncertainties."""
+"""Magnetometer calibration for one pass: time-tag offset, bias, soft iron and coil crosstalk (nT per A),
+with uncertainties."""
 
 from .agreement import (
     CrosstalkAgreement,
@@ -13,6 +14,7 @@ from .calibration import (
 from .summary import (
     format_crosstalk_table,
 )
+from .timing import TimeOffset, mag_time_offset, time_offset_from_replay
 
 __all__ = [
     "Calibration",
@@ -22,4 +24,7 @@ __all__ = [
     "compare_crosstalk",
     "combine_crosstalk",
     "format_crosstalk_table",
+    "TimeOffset",
+    "mag_time_offset",
+    "time_offset_from_replay",
 ]
