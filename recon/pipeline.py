@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .calibrate import calibrate_pass, format_crosstalk_table
+from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import Anomaly, InputError, __version__
@@ -133,13 +133,14 @@ def crosstalk_pass(mission_path: Path | str, out_root: Path | str = "reports") -
     mission = load_mission(mission_path)
     cleaned = _load_and_clean(mission)
     _check_unit(cleaned)
+    cleaned, timing, found = _time_tags(mission, cleaned)
     skipped: dict[str, str] = {}
     ref = _reference(mission, cleaned, skipped, None)
     cal = calibrate_pass(mission, cleaned, ref)
     out = _out_dir(mission, out_root)
-    write_json(out / "calibration.json", cal.to_summary())
+    write_json(out / "calibration.json", {**cal.to_summary(), **timing.to_summary()})
     text = format_crosstalk_table(cal, None if mission.coils is None else mission.coils.max_current_A)
-    notes = [f"{a.severity}: {a.code}: {a.evidence}" for a in cal.anomalies]
+    notes = [f"{a.severity}: {a.code}: {a.evidence}" for a in [*found, *cal.anomalies]]
     notes += [f"note: {why}" for why in skipped.values()]
     return "\n".join([text, *notes])
 
@@ -148,6 +149,17 @@ def _check_unit(cleaned) -> None:
     for a in cleaned.anomalies:
         if a.code == "mag_unit_suspect":
             raise InputError(a.evidence, key="magnetometer.unit")
+
+
+def _time_tags(mission: Mission, cleaned):
+    """The magnetometer's time-tag offset, taken out of its stamps when it is determined; returns the
+    pass with true sample instants, the offset and its finding (if significant)."""
+    timing = mag_time_offset(mission, cleaned)
+    if not timing.determined:
+        return cleaned, timing, []
+    t = cleaned.magnetometer.time_utc
+    finding = timing.anomaly(t[0], t[-1])
+    return cleaned.with_magnetometer_time_shifted(-timing.offset_s), timing, [] if finding is None else [finding]
 
 
 def _estimate(mission: Mission, cleaned, cal, ref, progress):
@@ -222,7 +234,7 @@ def _controller_stage(mission, cleaned, cal, ref, hist, bar, skipped):
     return None
 
 
-def _summary(mission, cleaned, cal, hist, judgement, skipped, anomalies) -> dict[str, Any]:
+def _summary(mission, cleaned, cal, timing, hist, judgement, skipped, anomalies) -> dict[str, Any]:
     controller = judgement.to_summary() if judgement is not None else {
         "verdict": "undetermined", "reason": skipped.get("controller", "")}
     return {
@@ -230,7 +242,7 @@ def _summary(mission, cleaned, cal, hist, judgement, skipped, anomalies) -> dict
         "tool_version": __version__,
         "mission_file": mission.path.name,
         "inputs": cleaned.inputs_summary(),
-        "calibration": cal.to_summary(),
+        "calibration": {**cal.to_summary(), **timing.to_summary()},
         "estimate": hist.to_summary() if hist is not None else None,
         "controller": controller,
         "skipped": skipped,
@@ -265,6 +277,8 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     write_ledger(out / "ledger.csv", cleaned.ledger)
     anomalies: list[Anomaly] = list(cleaned.anomalies)
     skipped: dict[str, str] = {}
+    cleaned, timing, found = _time_tags(mission, cleaned)
+    anomalies += found
 
     ref = _reference(mission, cleaned, skipped, bar)
     if ref is not None:
@@ -280,7 +294,7 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     if judgement is not None:
         anomalies += list(judgement.anomalies)
 
-    summary = _summary(mission, cleaned, cal, hist, judgement, skipped, anomalies)
+    summary = _summary(mission, cleaned, cal, timing, hist, judgement, skipped, anomalies)
     write_json(out / "summary.json", summary)
     if report:
         say(bar, "report", 0.0)

@@ -85,6 +85,11 @@ class TimeOffset:
         return (self.determined and abs(self.offset_s) >= SIGNIFICANT_OFFSET_S
                 and abs(self.offset_s) > 3.0 * self.sigma_s)
 
+    def to_summary(self) -> dict:
+        """The time-tag entries of summary.json's calibration block."""
+        return {"time_offset_s": self.offset_s, "time_offset_s_sigma": self.sigma_s,
+                "time_offset_method": self.method, "time_offset_note": self.reason}
+
     def anomaly(self, start_utc, stop_utc) -> Anomaly | None:
         """``mag_time_offset`` (warning) when the offset is significant."""
         if not self.significant:

@@ -31,13 +31,13 @@ in :mod:`recon.clean.rows`, the spike step in :mod:`recon.clean.spikes`, the ano
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 
 import numpy as np
 import pandas as pd
 
 from ..config import Mission
-from ..core import Anomaly, InputError, utc_text
+from ..core import NS_PER_S, Anomaly, InputError, utc_text
 from ..load import LEDGER_COLUMNS, LoadedPass, SensorLog, amps_per_file_unit, empty_ledger, ledger_frame
 from .findings import stage_anomalies
 from .rows import RowBook, duplicates, find_gaps, out_of_range, outside_window, time_conflicts, time_jumps
@@ -82,6 +82,19 @@ class CleanedPass:
 
     def logs(self) -> list[CleanedLog]:
         return [g for g in (self.magnetometer, self.gyro, self.coils) if g is not None]
+
+    def with_magnetometer_time_shifted(self, shift_s: float) -> CleanedPass:
+        """The same pass with every magnetometer time (and gap bound) moved by ``shift_s`` seconds, as
+        when a stamping latency is taken out of the stamps (the ledger keeps the times as logged)."""
+        shift = np.timedelta64(int(round(shift_s * NS_PER_S)), "ns")
+        if shift == np.timedelta64(0, "ns"):
+            return self
+        mag = self.magnetometer
+        gaps = mag.gaps.copy()
+        for col in ("start_utc", "stop_utc"):
+            if col in gaps:
+                gaps[col] = gaps[col] + shift
+        return replace(self, magnetometer=replace(mag, time_utc=mag.time_utc + shift, gaps=gaps))
 
     @property
     def gaps(self) -> dict[str, pd.DataFrame]:
