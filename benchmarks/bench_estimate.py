@@ -22,7 +22,7 @@ import numpy as np
 from filterpy.kalman import ExtendedKalmanFilter
 from scipy.spatial.transform import Rotation
 
-from recon.estimate import mekf_core as core
+from recon.estimate import kernels as core
 from recon.estimate.attitude import NoiseModel, _params, run_filter
 from recon.estimate.initial import InitialState
 

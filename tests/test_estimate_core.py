@@ -10,7 +10,7 @@ from scipy.linalg import expm
 from scipy.spatial.transform import Rotation
 
 from recon.core import scipy_from_shuster_quaternion
-from recon.estimate import mekf_core as core
+from recon.estimate import kernels as core
 from recon.estimate.attitude import NoiseModel, _params
 from recon.estimate.initial import davenport_q_method
 

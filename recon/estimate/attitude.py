@@ -6,7 +6,7 @@ there is one, the gyro, and returns an :class:`AttitudeHistory` on the magnetome
 forward and smoothed, the normalised innovation squared (NIS) of every update and the anomalies
 found (``gyro_dead``, ``gyro_bias_jump``, ``filter_inconsistent``).
 
-Model (details in :mod:`recon._mekf_core`):
+Model (details in :mod:`recon.estimate.kernels`):
 
 - Gyro mode: ``w_meas = w + beta + eta_v``, ``d(beta)/dt = eta_u`` (Lefferts, Markley & Shuster
   1982); every gyro sample is held until the next one; every magnetometer sample is used at its own
@@ -59,7 +59,7 @@ from ..core import (
     white_noise_from_differences,
 )
 from . import dynamics_mode as dyn
-from . import mekf_core as core
+from . import kernels as core
 from .bias_step import BiasStep, find_bias_step
 from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
 from .noise import gyro_noise_from_adev, overlapping_adev
@@ -359,7 +359,7 @@ class _Run:
 
 def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: np.ndarray, r: np.ndarray,
                prm: np.ndarray, init: InitialState, out_idx: np.ndarray, n_out: int) -> _Run:
-    """Forward MEKF and RTS smoother on plain arrays (the compiled core); see :mod:`recon._mekf_core`.
+    """Forward MEKF and RTS smoother on plain arrays (the compiled core); see :mod:`recon.estimate.kernels`.
 
     Parameters
     ----------

@@ -36,7 +36,7 @@ from ..core import (
     white_noise_from_differences,
     window_mean,
 )
-from . import mekf_core as core
+from . import kernels as core
 from .initial import InitialState, davenport_q_method, initial_state_with_gyro
 
 __all__ = ["GyroCheck", "check_gyro", "carry_back_with_dynamics", "estimate_dynamics", "initial_state_dynamics",

@@ -31,7 +31,7 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from ..core import scipy_from_shuster_quaternion
-from . import mekf_core as core
+from . import kernels as core
 
 __all__ = ["WahbaSolution", "davenport_q_method", "InitialState",
            "initial_state_with_gyro", "integrate_gyro", "carry_back_with_gyro"]
