@@ -110,17 +110,18 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
     noise = noise or NoiseModel()
     if mode not in ("auto", "gyro", "dynamics"):
         raise InputError(f"expected mode 'auto', 'gyro' or 'dynamics', got {mode!r}", key="mode")
-    tm = _times_ns(t_mag_utc, "t_mag_utc")
-    bb = _vectors(b_body_nT, len(tm), "b_body_nT")
-    br = _vectors(b_ref_gcrf_nT, len(tm), "b_ref_gcrf_nT")
-    tg, wg = _gyro_log(gyro_t_utc, w_gyro_body_rad_s)
-    if mode == "gyro" and tg is None:
+    t_mag_ns = _times_ns(t_mag_utc, "t_mag_utc")
+    b_body_nT = _vectors(b_body_nT, len(t_mag_ns), "b_body_nT")
+    b_ref_gcrf_nT = _vectors(b_ref_gcrf_nT, len(t_mag_ns), "b_ref_gcrf_nT")
+    t_gyro_ns, w_gyro = _gyro_log(gyro_t_utc, w_gyro_body_rad_s)
+    if mode == "gyro" and t_gyro_ns is None:
         raise InputError("expected gyro time stamps and rates for mode 'gyro', got none", key="mode")
     if mode != "gyro" and inertia_kg_m2 is not None:
         inertia_kg_m2 = _inertia(inertia_kg_m2)
     if r_gcrf_km is not None:
-        r_gcrf_km = _vectors(r_gcrf_km, len(tm), "r_gcrf_km")
-    inputs = PassInputs(tm, bb, br, _usable_rows(bb, br), tg, wg)
+        r_gcrf_km = _vectors(r_gcrf_km, len(t_mag_ns), "r_gcrf_km")
+    inputs = PassInputs(t_mag_ns, b_body_nT, b_ref_gcrf_nT, _usable_rows(b_body_nT, b_ref_gcrf_nT), t_gyro_ns,
+                        w_gyro)
     choice = choose_mode(inputs, mode, noise)
     if not choice.use_gyro and inertia_kg_m2 is None:
         raise InputError("expected inertia_kg_m2 for dynamics mode (gyro absent or dead), got none",
@@ -165,12 +166,12 @@ def _gyro_log(gyro_t_utc, w_gyro_body_rad_s) -> tuple[np.ndarray | None, np.ndar
     """Gyro time stamps (int64 ns) and rates of the finite rows; (None, None) without at least two."""
     if gyro_t_utc is None or w_gyro_body_rad_s is None:
         return None, None
-    tg = _times_ns(gyro_t_utc, "gyro_t_utc")
-    wg = _vectors(w_gyro_body_rad_s, len(tg), "w_gyro_body_rad_s")
-    keep = np.all(np.isfinite(wg), axis=1)
+    t_ns = _times_ns(gyro_t_utc, "gyro_t_utc")
+    w = _vectors(w_gyro_body_rad_s, len(t_ns), "w_gyro_body_rad_s")
+    keep = np.all(np.isfinite(w), axis=1)
     if keep.sum() < 2:
         return None, None
-    return tg[keep], wg[keep]
+    return t_ns[keep], w[keep]
 
 
 def _inertia(inertia_kg_m2) -> np.ndarray:
@@ -180,14 +181,14 @@ def _inertia(inertia_kg_m2) -> np.ndarray:
     return a
 
 
-def _usable_rows(bb: np.ndarray, br: np.ndarray) -> np.ndarray:
+def _usable_rows(b_body_nT: np.ndarray, b_ref_gcrf_nT: np.ndarray) -> np.ndarray:
     """Rows used for updates: both the field and its reference finite (a reference row is NaN where the
     orbit has no position); at least 10 of them."""
-    ok_rows = np.all(np.isfinite(bb), axis=1) & np.all(np.isfinite(br), axis=1)
-    if ok_rows.sum() < 10:
+    usable = np.all(np.isfinite(b_body_nT), axis=1) & np.all(np.isfinite(b_ref_gcrf_nT), axis=1)
+    if usable.sum() < 10:
         raise InputError(f"expected at least 10 magnetometer rows with a finite field and reference field, got "
-                         f"{int(ok_rows.sum())}", key="b_body_nT")
-    return ok_rows
+                         f"{int(usable.sum())}", key="b_body_nT")
+    return usable
 
 
 @dataclass(frozen=True)

@@ -213,17 +213,17 @@ def _gyro_seeded_start(t: np.ndarray, inputs: PassInputs, check: GyroCheck | Non
     1 s). The opening body rate is the mean gyro rate of the first second less the solved bias.
     """
     t_epoch = inputs.t_mag_ns[0]
-    tgs = (inputs.t_gyro_ns - t_epoch) / NS_PER_S
-    wg = inputs.w_gyro_body_rad_s
+    t_gyro_s = (inputs.t_gyro_ns - t_epoch) / NS_PER_S
+    w_gyro = inputs.w_gyro_body_rad_s
     dead0 = check.dead_start_s if check is not None and check.dead_start_s is not None else None
-    if dead0 is None or not (dead0 - tgs[0] > init_window_s + 60.0 and tgs[0] <= t[0] + 1.0):
+    if dead0 is None or not (dead0 - t_gyro_s[0] > init_window_s + 60.0 and t_gyro_s[0] <= t[0] + 1.0):
         return None
-    alive = tgs < dead0
+    alive = t_gyro_s < dead0
     okm = inputs.usable & (t < dead0)
-    gi = initial_state_with_gyro(t[okm], inputs.b_body_nT[okm], inputs.b_ref_gcrf_nT[okm], tgs[alive], wg[alive],
-                                 sigma_vec_nT=sigma_vec_nT, sigma_bias0_rad_s=noise.gyro_bias0_rad_s,
-                                 window_s=init_window_s, max_window_s=min(600.0, dead0 - tgs[0]))
-    w0 = wg[alive][tgs[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
+    gi = initial_state_with_gyro(t[okm], inputs.b_body_nT[okm], inputs.b_ref_gcrf_nT[okm], t_gyro_s[alive],
+                                 w_gyro[alive], sigma_vec_nT=sigma_vec_nT, sigma_bias0_rad_s=noise.gyro_bias0_rad_s,
+                                 window_s=init_window_s, max_window_s=min(600.0, dead0 - t_gyro_s[0]))
+    w0 = w_gyro[alive][t_gyro_s[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
     s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * RAD_PER_DEG) ** 2)
     return InitialState(gi.q_body_from_gcrf, w0, gi.sigma_att_rad, s_w, "gyro-seeded (gyro alive before it died)",
                         gi.window_s, gi.fit)
@@ -250,32 +250,32 @@ def estimate_dynamics(inputs: PassInputs, noise: NoiseModel, inertia: np.ndarray
     part seeds the initial attitude and rate; otherwise the start is found from the magnetometer alone.
     Parameters as in :func:`recon.estimate.estimate_attitude` (inertia in kg m^2).
     """
-    tm, ok_rows = inputs.t_mag_ns, inputs.usable
-    bb, br = inputs.b_body_nT, inputs.b_ref_gcrf_nT
-    t = (tm - tm[0]) / NS_PER_S
-    noise, source = resolve_noise(noise, bb[ok_rows], None, None)
+    t_mag_ns, usable = inputs.t_mag_ns, inputs.usable
+    b_body, b_ref = inputs.b_body_nT, inputs.b_ref_gcrf_nT
+    t = (t_mag_ns - t_mag_ns[0]) / NS_PER_S
+    noise, source = resolve_noise(noise, b_body[usable], None, None)
     prm = filter_params(noise, 0.0, inertia)
     # rows without a reference (no orbit position) are not used for updates; for the torque in the
     # propagation their field and position are interpolated from the neighbouring rows
-    r = _fill_rows(t, br)
-    m_steps, r_km = _torque_inputs(t, tm[0], coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km)
+    r = _fill_rows(t, b_ref)
+    m_steps, r_km = _torque_inputs(t, t_mag_ns[0], coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km)
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
     report("initialisation", 0.05)
     init = None
     if inputs.t_gyro_ns is not None:
         init = _gyro_seeded_start(t, inputs, check, noise, sig_vec, init_window_s)
     if init is None:
-        init = initial_state_dynamics(t[ok_rows], bb[ok_rows], br[ok_rows], m_steps[ok_rows], r_km[ok_rows],
+        init = initial_state_dynamics(t[usable], b_body[usable], b_ref[usable], m_steps[usable], r_km[usable],
                                       prm, sig_vec, window_s=init_window_s)
     # both starts are solved at the first usable row; the filter starts at t[0]
-    init = carry_back_with_dynamics(init, t, int(np.argmax(ok_rows)), m_steps, r, r_km, prm)
+    init = carry_back_with_dynamics(init, t, int(np.argmax(usable)), m_steps, r, r_km, prm)
     report("forward filter and smoother", 0.2)
     out_idx = np.arange(len(t), dtype=np.int64)
-    run = run_filter(MODE_DYNAMICS, t, _dyn_inputs(t, m_steps, r_km), ok_rows.copy(), np.nan_to_num(bb), r, prm,
+    run = run_filter(MODE_DYNAMICS, t, _dyn_inputs(t, m_steps, r_km), usable.copy(), np.nan_to_num(b_body), r, prm,
                      init, out_idx, len(t))
     sel = np.arange(len(t))
     start = FilterStart(init.method, init.window_s, np.rad2deg(init.sigma_att_rad).tolist(), run.smoother_bad,
                         init.fit, init.carried_back_s, rate0_dps=np.rad2deg(init.v).tolist())
-    return AttitudeHistory(tm.astype("datetime64[ns]"), extract_track(run, True, sel, MODE_DYNAMICS, None, 0.0),
-                           extract_track(run, False, sel, MODE_DYNAMICS, None, 0.0), run.nis[ok_rows],
-                           tm[ok_rows].astype("datetime64[ns]"), "dynamics", "", (), noise, source, start)
+    return AttitudeHistory(t_mag_ns.astype("datetime64[ns]"), extract_track(run, True, sel, MODE_DYNAMICS, None, 0.0),
+                           extract_track(run, False, sel, MODE_DYNAMICS, None, 0.0), run.nis[usable],
+                           t_mag_ns[usable].astype("datetime64[ns]"), "dynamics", "", (), noise, source, start)

@@ -68,27 +68,27 @@ def step_grid(inputs: PassInputs) -> StepGrid:
     The filter starts at the first magnetometer row that has a gyro sample within two gyro intervals
     (before it, the first gyro sample is held backwards); earlier magnetometer rows are not used.
     """
-    tm, tg, wg = inputs.t_mag_ns, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
-    dt_g_ns = int(np.median(np.diff(tg)))
-    first = int(np.searchsorted(tm, tg[0] - 2 * dt_g_ns))
-    t_epoch = tm[first]
-    tm_u = tm[first:]
-    tg_in = tg[(tg >= t_epoch) & (tg <= tm_u[-1])]
-    steps = np.union1d(tg_in, tm_u)
+    t_mag_ns, t_gyro_ns, w_gyro = inputs.t_mag_ns, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
+    dt_g_ns = int(np.median(np.diff(t_gyro_ns)))
+    first = int(np.searchsorted(t_mag_ns, t_gyro_ns[0] - 2 * dt_g_ns))
+    t_epoch = t_mag_ns[first]
+    t_mag_used = t_mag_ns[first:]
+    t_gyro_in = t_gyro_ns[(t_gyro_ns >= t_epoch) & (t_gyro_ns <= t_mag_used[-1])]
+    steps = np.union1d(t_gyro_in, t_mag_used)
     t = (steps - t_epoch) / NS_PER_S
-    mag_pos = np.searchsorted(steps, tm_u)
+    mag_pos = np.searchsorted(steps, t_mag_used)
     is_mag = np.zeros(len(steps), bool)
     is_mag[mag_pos[inputs.usable[first:]]] = True
     z = np.zeros((len(steps), 3))
     r = np.zeros((len(steps), 3))
     z[mag_pos] = np.nan_to_num(inputs.b_body_nT[first:])
     r[mag_pos] = np.nan_to_num(inputs.b_ref_gcrf_nT[first:])
-    tgs = (tg - t_epoch) / NS_PER_S
-    j = np.clip(np.searchsorted(tg, steps, side="right") - 1, 0, len(tg) - 1)
+    t_gyro_s = (t_gyro_ns - t_epoch) / NS_PER_S
+    j = np.clip(np.searchsorted(t_gyro_ns, steps, side="right") - 1, 0, len(t_gyro_ns) - 1)
     u = np.zeros((len(steps), 5))
-    u[:, :3] = wg[j]
-    u[:, 3] = t - tgs[j]
-    return StepGrid(t_epoch, first, t, u, is_mag, z, r, mag_pos, tgs, dt_g_ns / NS_PER_S)
+    u[:, :3] = w_gyro[j]
+    u[:, 3] = t - t_gyro_s[j]
+    return StepGrid(t_epoch, first, t, u, is_mag, z, r, mag_pos, t_gyro_s, dt_g_ns / NS_PER_S)
 
 
 def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray:
@@ -122,15 +122,15 @@ def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray
 
 def _opening(grid: StepGrid, inputs: PassInputs, noise: NoiseModel, init_window_s: float) -> InitialState:
     """Opening attitude and gyro bias, solved at the first usable row and carried back to the start."""
-    ok_u = inputs.usable[grid.first_row:]
-    tms = grid.t_s[grid.mag_pos][ok_u]
+    usable = inputs.usable[grid.first_row:]
+    t_mag_s = grid.t_s[grid.mag_pos][usable]
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
-    init = initial_state_with_gyro(tms, inputs.b_body_nT[grid.first_row:][ok_u],
-                                   inputs.b_ref_gcrf_nT[grid.first_row:][ok_u], grid.t_gyro_s,
+    init = initial_state_with_gyro(t_mag_s, inputs.b_body_nT[grid.first_row:][usable],
+                                   inputs.b_ref_gcrf_nT[grid.first_row:][usable], grid.t_gyro_s,
                                    inputs.w_gyro_body_rad_s, sigma_vec_nT=sig_vec,
                                    sigma_bias0_rad_s=noise.gyro_bias0_rad_s, window_s=init_window_s)
     # the opening is solved at the first usable row; the filter starts at t = 0
-    return carry_back_with_gyro(init, float(tms[0]), 0.0, grid.t_gyro_s, inputs.w_gyro_body_rad_s,
+    return carry_back_with_gyro(init, float(t_mag_s[0]), 0.0, grid.t_gyro_s, inputs.w_gyro_body_rad_s,
                                 noise.gyro_arw_rad_sqrt_s)
 
 
@@ -141,7 +141,7 @@ def _run_allowing_bias_step(grid: StepGrid, inputs: PassInputs, noise: NoiseMode
 
     Returns the last run and the step found (None: no step).
     """
-    ok_u = inputs.usable[grid.first_row:]
+    usable = inputs.usable[grid.first_row:]
     out_idx = np.full(len(grid.t_s), -1, np.int64)
     out_idx[grid.mag_pos] = np.arange(len(grid.mag_pos))
 
@@ -150,8 +150,8 @@ def _run_allowing_bias_step(grid: StepGrid, inputs: PassInputs, noise: NoiseMode
                           len(grid.mag_pos))
 
     def find_step(run_: FilterRun) -> BiasStep | None:
-        return find_bias_step(grid.t_s[grid.mag_pos][ok_u], inputs.b_body_nT[grid.first_row:][ok_u],
-                              inputs.b_ref_gcrf_nT[grid.first_row:][ok_u], run_.q_s[grid.mag_pos][ok_u],
+        return find_bias_step(grid.t_s[grid.mag_pos][usable], inputs.b_body_nT[grid.first_row:][usable],
+                              inputs.b_ref_gcrf_nT[grid.first_row:][usable], run_.q_s[grid.mag_pos][usable],
                               grid.t_gyro_s, inputs.w_gyro_body_rad_s, noise.gyro_bias_walk_rad_s_sqrt_s)
 
     result = run(grid.u)
@@ -179,9 +179,10 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
     raised when a step in the gyro bias was found.
     """
     grid = step_grid(inputs)
-    first, tg, wg = grid.first_row, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
-    ok_u = inputs.usable[first:]
-    noise, source = resolve_noise(noise, inputs.b_body_nT[first:][ok_u], wg, (tg - tg[0]) / NS_PER_S)
+    first, t_gyro_ns, w_gyro = grid.first_row, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
+    usable = inputs.usable[first:]
+    noise, source = resolve_noise(noise, inputs.b_body_nT[first:][usable], w_gyro,
+                                  (t_gyro_ns - t_gyro_ns[0]) / NS_PER_S)
     prm = filter_params(noise, grid.dt_gyro_s, None)
     report("initialisation", 0.05)
     init = _opening(grid, inputs, noise, init_window_s)
@@ -190,13 +191,13 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
     anomalies = () if step is None else (step.anomaly(grid.t_epoch_ns),)
     # the reported rate: the mean gyro rate over the rate window, less the estimated bias
     width = max(float(rate_window_s), grid.dt_gyro_s)
-    w_out = held_mean(grid.t_gyro_s, wg, grid.t_s[grid.mag_pos], width)
+    w_out = held_mean(grid.t_gyro_s, w_gyro, grid.t_s[grid.mag_pos], width)
     extra = noise.gyro_arw_rad_sqrt_s ** 2 / width
     tracks = [extract_track(run, smoothed, grid.mag_pos, MODE_GYRO, w_out, extra) for smoothed in (True, False)]
-    tm_u = inputs.t_mag_ns[first:]
+    t_mag_used = inputs.t_mag_ns[first:]
     start = FilterStart(init.method, init.window_s, (init.sigma_att_rad * DEG_PER_RAD).tolist(), run.smoother_bad,
                         init.fit, init.carried_back_s, t0_utc=utc_text(np.datetime64(int(grid.t_epoch_ns), "ns"), "us"),
                         bias0_dps=(init.v * DEG_PER_RAD).tolist(), magnetometer_rows_before_gyro=int(first))
-    return AttitudeHistory(tm_u.astype("datetime64[ns]"), tracks[0], tracks[1], run.nis[grid.mag_pos][ok_u],
-                           tm_u[ok_u].astype("datetime64[ns]"), "gyro", "", anomalies, noise,
+    return AttitudeHistory(t_mag_used.astype("datetime64[ns]"), tracks[0], tracks[1], run.nis[grid.mag_pos][usable],
+                           t_mag_used[usable].astype("datetime64[ns]"), "gyro", "", anomalies, noise,
                            dataclasses.replace(source, field_model_nT="given"), start)
