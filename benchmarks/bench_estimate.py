@@ -22,9 +22,10 @@ import numpy as np
 from filterpy.kalman import ExtendedKalmanFilter
 from scipy.spatial.transform import Rotation
 
-from recon.estimate import mekf_core as core
-from recon.estimate.attitude import NoiseModel, _params, run_filter
+from recon.estimate import NoiseModel
+from recon.estimate import kernels as core
 from recon.estimate.initial import InitialState
+from recon.estimate.run import filter_params, run_filter
 
 DEG = np.pi / 180.0
 
@@ -138,10 +139,10 @@ def _angle_deg(qa, qb):
 def main(n: int = 1_000_000, n_base: int = 20_000) -> dict:
     nm = NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=0.004 * DEG, gyro_bias_walk_rad_s_sqrt_s=1e-4 * DEG,
                     rate_hold_accel_rad_s2=1e-4)
-    prm = _params(nm, 0.1, None)
+    prm = filter_params(nm, 0.1, None)
     t, wg, z, b_ref, q = synthetic(n)
     init = InitialState(q[0].as_quat(), np.zeros(3), np.full(3, 2.0 * DEG), np.full(3, 0.3 * DEG), "truth",
-                        0.0, {})
+                        0.0)
     recon_run(t[:1000], wg[:1000], z[:1000], b_ref[:1000], prm, init)  # compile or load the cache first
     walls, cpus = [], []
     for _ in range(3):  # the first run also pays for the operating system handing out ~1 GB

@@ -145,8 +145,8 @@ def test_noise_levels_estimated_from_the_data():
     tr = make_truth(6, 900.0)
     h = estimate_attitude(tr.t_mag_utc, tr.b_body_nT, tr.b_ref_gcrf_nT, gyro_t_utc=tr.t_gyro_utc,
                           w_gyro_body_rad_s=tr.w_gyro)
-    assert h.noise_source["mag_nT"] == "data"
-    assert h.noise_source["gyro_arw_rad_sqrt_s"] == "data (Allan deviation)"
+    assert h.noise_source.mag_nT == "data"
+    assert h.noise_source.gyro_arw_rad_sqrt_s == "data (Allan deviation)"
     assert h.noise.mag_nT == pytest.approx(100.0, rel=0.1)
     assert h.noise.gyro_arw_rad_sqrt_s == pytest.approx(0.004 * DEG, rel=0.1)
 
@@ -277,7 +277,7 @@ def test_reference_rows_without_an_orbit_position_are_not_used():
     used = np.setdiff1d(np.arange(len(tr.t_mag_utc)), rows)
     np.testing.assert_array_equal(h_ref.nis_time_utc, tr.t_mag_utc[used])
     np.testing.assert_array_equal(h_ref.time_utc, tr.t_mag_utc)
-    assert h_ref.init["carried_back_s"] == pytest.approx(60.0) and h_ref.anomalies == ()
+    assert h_ref.init.carried_back_s == pytest.approx(60.0) and h_ref.anomalies == ()
     everywhere = np.ones(len(tr.t_mag_utc), bool)
     assert _errors(h_ref.smoothed, tr, everywhere)[0] <= 0.6
     # dynamics mode, cold start, with the position rows missing too (as the orbit stage gives them)
@@ -286,6 +286,6 @@ def test_reference_rows_without_an_orbit_position_are_not_used():
     h_dyn = estimate_attitude(tr.t_mag_utc, tr.b_body_nT, b_ref, noise=NOISE, inertia_kg_m2=INERTIA,
                               r_gcrf_km=r_km)
     assert h_dyn.mode == "dynamics" and len(h_dyn.nis) == len(used)
-    assert h_dyn.init["carried_back_s"] == pytest.approx(60.0)
+    assert h_dyn.init.carried_back_s == pytest.approx(60.0)
     assert np.all(np.isfinite(h_dyn.q_body_from_gcrf)) and np.all(np.isfinite(h_dyn.sigma_att_rad))
     assert _errors(h_dyn.smoothed, tr, everywhere)[0] <= 3.0

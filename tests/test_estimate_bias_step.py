@@ -1,4 +1,4 @@
-"""The gyro bias step detector (recon._bias_step) and the filter inputs it produces.
+"""The gyro bias step detector (recon.estimate.bias_step) and the filter inputs it produces.
 
 Synthetic kinematics: a constant inertial field (so the attitude drops out of ``A db_ref/dt``), a body
 rate decaying from 4 deg/s to 0.08 deg/s about a wandering axis (a detumble: late windows see the
@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from recon.estimate.attitude import bias_step_inputs
 from recon.estimate.bias_step import BiasStep, find_bias_step, pooled_bias
+from recon.estimate.gyro_mode import bias_step_inputs
 
 DEG = np.pi / 180.0
 BIAS_WALK = 1e-4 * DEG  # rad/s/sqrt(s), the filter's default

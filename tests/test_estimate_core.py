@@ -10,9 +10,10 @@ from scipy.linalg import expm
 from scipy.spatial.transform import Rotation
 
 from recon.core import scipy_from_shuster_quaternion
-from recon.estimate import mekf_core as core
-from recon.estimate.attitude import NoiseModel, _params
+from recon.estimate import NoiseModel
+from recon.estimate import kernels as core
 from recon.estimate.initial import davenport_q_method
+from recon.estimate.run import filter_params
 
 INERTIA = np.array([[0.021, 0.0004, 0.0], [0.0004, 0.023, 0.0002], [0.0, 0.0002, 0.0071]])
 # float64 round-off after a few hundred operations on numbers of order 1: agreement "to 1e-12"
@@ -44,7 +45,7 @@ def test_propagation_matches_kinematics_dA_dt():
     dt = 0.7
     phi, qd = np.zeros((9, 9)), np.zeros((9, 9))
     qn, _, _ = core.propagate_gyro(q, np.zeros(3), np.zeros(3), np.r_[w, 0.0, 0.0], dt,
-                                   _params(NoiseModel(mag_nT=1.0, gyro_arw_rad_sqrt_s=1e-5), 0.05, None), phi, qd)
+                                   filter_params(NoiseModel(mag_nT=1.0, gyro_arw_rad_sqrt_s=1e-5), 0.05, None), phi, qd)
     expected = expm(-_skew(w) * dt) @ Rotation.from_quat(q).as_matrix()
     assert np.abs(Rotation.from_quat(qn).as_matrix() - expected).max() < ROUNDOFF
 
@@ -69,7 +70,7 @@ def test_gyro_process_noise_is_crassidis_junkins_form():
     sv, su, dt = np.sqrt(10) * 1e-7, np.sqrt(10) * 1e-10, 1.0
     nm = NoiseModel(mag_nT=1.0, gyro_arw_rad_sqrt_s=sv, gyro_bias_walk_rad_s_sqrt_s=su, rate_hold_accel_rad_s2=0.0,
                     field_model_tau_s=0.0)
-    prm = _params(nm, dt, None)
+    prm = filter_params(nm, dt, None)
     phi, qd = np.zeros((9, 9)), np.zeros((9, 9))
     core.propagate_gyro(Rotation.identity().as_quat(), np.zeros(3), np.zeros(3), np.r_[0.0, 0.0, 0.0, 0.0, 0.0],
                         dt, prm, phi, qd)
@@ -83,7 +84,7 @@ def test_gap_grows_attitude_noise_like_a_held_sample():
     """Holding a sample of white-noise variance sv^2/h for s seconds gives attitude variance sv^2 s^2/h."""
     sv, h = 1e-4, 0.05
     nm = NoiseModel(mag_nT=1.0, gyro_arw_rad_sqrt_s=sv, gyro_bias_walk_rad_s_sqrt_s=0.0, rate_hold_accel_rad_s2=0.0)
-    prm = _params(nm, h, None)
+    prm = filter_params(nm, h, None)
     total = 0.0
     s = 0.0
     for dt in (0.05, 0.3, 1.0, 3.65):  # four steps through a 5 s gap
@@ -97,7 +98,7 @@ def test_gap_grows_attitude_noise_like_a_held_sample():
 
 def test_dynamics_jacobian_matches_finite_differences():
     """Phi of the dynamics mode against central differences of the RK4 step it linearises."""
-    prm = _params(NoiseModel(mag_nT=100.0), 0.0, INERTIA)
+    prm = filter_params(NoiseModel(mag_nT=100.0), 0.0, INERTIA)
     q = Rotation.random(random_state=3).as_quat()
     w = np.deg2rad([1.0, -2.0, 0.5])
     u = np.r_[0.1, -0.15, 0.08, 6888.0, 100.0, 50.0, 6888.0, 120.0, 55.0]
@@ -134,7 +135,7 @@ def test_one_step_agrees_with_filterpy_ekf(n):
     which is the same filter (the white state decays to zero at every step)."""
     rng = np.random.default_rng(7)
     nm = NoiseModel(mag_nT=80.0, gyro_arw_rad_sqrt_s=np.deg2rad(0.004), field_model_tau_s=300.0 if n == 9 else 0.0)
-    prm = _params(nm, 0.05, None)
+    prm = filter_params(nm, 0.05, None)
     q0 = Rotation.random(random_state=rng).as_quat()
     beta0 = np.deg2rad([0.1, -0.2, 0.05])
     db0 = np.array([30.0, -20.0, 10.0]) if n == 9 else np.zeros(3)
@@ -183,7 +184,7 @@ def test_forward_pass_equals_the_reference_step_functions():
     """The pass (block-structured prediction, no allocation) equals a loop of the reference step
     functions (full Phi and Q) over a stretch with a gyro gap and skipped updates."""
     rng = np.random.default_rng(3)
-    prm = _params(NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=np.deg2rad(0.004), rate_hold_accel_rad_s2=1e-3),
+    prm = filter_params(NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=np.deg2rad(0.004), rate_hold_accel_rad_s2=1e-3),
                   0.05, None)
     kk = 80
     t = np.cumsum(np.r_[0.0, np.full(kk - 1, 0.05)])
@@ -221,7 +222,7 @@ def test_smoother_covariance_equals_filterpy_rts():
     not depend on the states, so the two must agree to round-off)."""
     rng = np.random.default_rng(11)
     nm = NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=np.deg2rad(0.004))
-    prm = _params(nm, 0.1, None)
+    prm = filter_params(nm, 0.1, None)
     n, kk = core.N, 60
     t = np.arange(kk) * 0.1
     u = np.zeros((kk, 5))

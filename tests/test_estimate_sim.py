@@ -149,5 +149,5 @@ def test_opening_attitude_found_from_several_starts_about_the_field():
             if n == 8:
                 bias_err = np.rad2deg(np.abs(init.v - sp.gyro_bias_body_rad_s[0])).max()
                 assert bias_err < 0.01, (seed, bias_err)
-                assert init.detail["starts_at_best"] >= 2
+                assert init.fit.starts_at_best >= 2
         assert errs[0] > 30.0 and errs[1] < 2.0, (seed, errs)

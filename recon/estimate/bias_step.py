@@ -38,44 +38,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial.transform import Rotation
 
-from ..core import NS_PER_S, RAD_PER_DEG, Anomaly, local_slope, window_mean
+from ..core import RAD_PER_DEG, Anomaly
+from .kinematics import cross_matrices, kinematic_residual
+from .timeaxis import utc_at
 
-__all__ = ["BiasStep", "find_bias_step", "kinematic_residual", "window_biases", "pooled_bias"]
-
-
-
-def _at(t_epoch_ns: int, t_s: float) -> np.datetime64:
-    return np.datetime64(int(t_epoch_ns + round(t_s * NS_PER_S)), "ns")
-
-
-def _minus_cross_matrix(b: np.ndarray) -> np.ndarray:
-    """-[b x] for each row of b: (N, 3) -> (N, 3, 3), so that ``beta x b = -[b x] beta``."""
-    m = np.zeros((len(b), 3, 3))
-    m[:, 0, 1], m[:, 0, 2], m[:, 1, 2] = b[:, 2], -b[:, 1], b[:, 0]
-    m[:, 1, 0], m[:, 2, 0], m[:, 2, 1] = -b[:, 2], b[:, 1], -b[:, 0]
-    return m
-
-
-def kinematic_residual(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray,
-                       q_body_from_gcrf: np.ndarray, t_gyro: np.ndarray, w_gyro: np.ndarray,
-                       half_width_s: float = 1.0) -> np.ndarray:
-    """``e = db/dt - A db_ref/dt + w_g x b`` at every magnetometer sample, nT/s, body; NaN where unknown.
-
-    Parameters
-    ----------
-    t_mag : (N,) s; b_body_nT : (N, 3) nT body; b_ref_nT : (N, 3) nT GCRF
-    q_body_from_gcrf : (N, 4) scalar-last, the attitude used for ``A``
-    t_gyro : (G,) s; w_gyro : (G, 3) rad/s body
-    half_width_s : float, half width of the local slope and of the gyro mean, s
-    """
-    bdot = local_slope(t_mag, b_body_nT, half_width_s)
-    rdot = local_slope(t_mag, b_ref_nT, half_width_s)
-    a_rdot = Rotation.from_quat(q_body_from_gcrf).apply(np.nan_to_num(rdot))
-    a_rdot[~np.all(np.isfinite(rdot), axis=1)] = np.nan
-    wg = window_mean(t_gyro, w_gyro, t_mag, half_width_s)
-    return bdot - a_rdot + np.cross(wg, b_body_nT)
+__all__ = ["BiasStep", "find_bias_step", "window_biases", "pooled_bias"]
 
 
 def window_biases(t_mag: np.ndarray, b_body_nT: np.ndarray, e: np.ndarray, window_s: float, every: int = 10,
@@ -96,7 +64,7 @@ def window_biases(t_mag: np.ndarray, b_body_nT: np.ndarray, e: np.ndarray, windo
         sel = np.nonzero(ok & (t_mag >= a) & (t_mag < b))[0][::every]
         if len(sel) < 6:
             continue
-        mm = _minus_cross_matrix(b_body_nT[sel]).reshape(-1, 3)
+        mm = cross_matrices(-b_body_nT[sel]).reshape(-1, 3)
         y = e[sel].ravel()
         ntn = mm.T @ mm
         if np.linalg.cond(ntn) > max_cond:
@@ -160,7 +128,7 @@ class BiasStep:
     def anomaly(self, t_epoch_ns: int) -> Anomaly:
         ax = int(np.argmax(np.abs(self.z)))
         d = np.rad2deg(self.delta_rad_s)
-        t = _at(t_epoch_ns, self.t_s)
+        t = utc_at(t_epoch_ns, self.t_s)
         return Anomaly("gyro_bias_jump", "warning",
                        f"gyro bias stepped by ({d[0]:+.3f}, {d[1]:+.3f}, {d[2]:+.3f}) deg/s (body x, y, z) "
                        f"at {np.datetime_as_string(t, unit='s')}Z (between {self.t_lo_s - self.t_s:+.1f} and "
@@ -169,7 +137,7 @@ class BiasStep:
                        f"{np.rad2deg(self.after_rad_s[ax]):+.3f} deg/s after on axis {'xyz'[ax]} "
                        f"({abs(self.z[ax]):.0f} sigma, {self.window_s:.0f} s windows). The filter was rerun with "
                        f"the bias free to move there.",
-                       _at(t_epoch_ns, self.t_lo_s), _at(t_epoch_ns, self.t_hi_s), axis="xyz"[ax],
+                       utc_at(t_epoch_ns, self.t_lo_s), utc_at(t_epoch_ns, self.t_hi_s), axis="xyz"[ax],
                        value=float(d[ax]))
 
 
@@ -189,7 +157,7 @@ def _refine_time(t_mag: np.ndarray, b_body_nT: np.ndarray, e: np.ndarray, before
     sel = np.nonzero((t_mag >= lo) & (t_mag < hi) & np.all(np.isfinite(e), axis=1))[0]
     if len(sel) < 4:
         return 0.5 * (lo + hi), lo, hi
-    mm = _minus_cross_matrix(b_body_nT[sel])
+    mm = cross_matrices(-b_body_nT[sel])
     r0 = np.sum((e[sel] - mm @ before) ** 2, axis=1)
     r1 = np.sum((e[sel] - mm @ after) ** 2, axis=1)
     # S at a step just before sample i (i = 0..n): r0 over samples < i, r1 over samples >= i

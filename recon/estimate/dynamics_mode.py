@@ -1,12 +1,10 @@
-"""When the gyro cannot be trusted, and the filter that does without it.
+"""The reconstruction without a gyro (gyro absent or dead): dynamics mode.
 
-Gyro checks use the kinematics of the measured field: in body axes ``db/dt = -(w x b) + A db_ref/dt``,
-so with a gyro reading ``w_g = w + beta`` the residual ``db/dt + w_g x b - A db_ref/dt = beta x b``
-must be explained by a small, nearly constant bias. A gyro stuck at one value, or at zero, or whose
-output does not follow the field's motion is declared dead (anomaly ``gyro_dead``) and the pass is
-reconstructed in dynamics mode: attitude and body rate propagated with Euler's equations under the
-logged coil dipole and the gravity-gradient torque, corrected by the magnetometer only, as in Psiaki,
-Martel & Pal (1990). A step in the bias of a live gyro is found in :mod:`recon._bias_step`.
+Attitude and body rate are propagated with Euler's equations under the logged coil dipole and the
+gravity-gradient torque, corrected by the magnetometer only, as in Psiaki, Martel & Pal (1990). The
+opening state comes from the magnetometer alone (several starts about the field direction, refined by
+least squares over the opening window), or from the gyro while it was still alive when it died only
+later in the pass; it is carried back to the filter's first step with Euler's equations.
 
 References
 ----------
@@ -20,158 +18,29 @@ squares procedures. Anal. Chem. 36(8), 1627-1639 (the local-slope derivative) (m
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import dataclasses
+from collections.abc import Callable
 
 import numpy as np
 from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from ..core import (
-    NS_PER_S,
-    RAD_PER_DEG,
-    Anomaly,
-    local_slope,
-    mean_dipole_over_steps,
-    white_noise_from_differences,
-    window_mean,
-)
-from . import mekf_core as core
+from ..core import NS_PER_S, RAD_PER_DEG, local_slope, mean_dipole_over_steps
+from .gyro_check import GyroCheck
 from .initial import InitialState, davenport_q_method, initial_state_with_gyro
+from .kernels import MODE_DYNAMICS, P_J, P_SIGTAU, rk4_rigid_body
+from .kinematics import cross_matrices
+from .noise import resolve_noise
+from .run import extract_track, filter_params, run_filter
+from .types import AttitudeHistory, FilterStart, NoiseModel, OpeningFit, PassInputs
 
-__all__ = ["GyroCheck", "check_gyro", "carry_back_with_dynamics", "estimate_dynamics", "initial_state_dynamics",
-           "propagate_rigid_body"]
-
-
-
-def _at(t_epoch_ns: int, t_s: float) -> np.datetime64:
-    return np.datetime64(int(t_epoch_ns + round(t_s * NS_PER_S)), "ns")
-
-
-def _longest_constant_run(t: np.ndarray, x: np.ndarray) -> tuple[float, float, int]:
-    """Longest time span over which column values do not change: (start_s, stop_s, axis)."""
-    best = (0.0, 0.0, -1)
-    for ax in range(x.shape[1]):
-        same = np.diff(x[:, ax]) == 0.0
-        if not same.any():
-            continue
-        edges = np.diff(np.r_[0, same.astype(np.int8), 0])
-        starts = np.nonzero(edges == 1)[0]
-        stops = np.nonzero(edges == -1)[0]  # run covers samples starts..stops (inclusive)
-        span = t[stops] - t[starts]
-        k = int(np.argmax(span))
-        if span[k] > best[1] - best[0]:
-            best = (float(t[starts[k]]), float(t[stops[k]]), ax)
-    return best
-
-
-@dataclass(frozen=True)
-class GyroCheck:
-    """Verdict on the gyro log.
-
-    Attributes
-    ----------
-    usable : bool
-    reason : str, one sentence with the numbers
-    dead_start_s, dead_stop_s : float or None, window where the gyro is dead (s since the epoch)
-    axis : int or None
-    explained_fraction : float or None
-        Fraction of the field's body-frame rate of change explained by the gyro (1 for a perfect
-        gyro, about 0 for a dead one); None when the satellite barely turns.
-    """
-
-    usable: bool
-    reason: str
-    dead_start_s: float | None = None
-    dead_stop_s: float | None = None
-    axis: int | None = None
-    explained_fraction: float | None = None
-
-    def anomaly(self, t_epoch_ns: int, dynamics_used: bool = True) -> Anomaly:
-        start = None if self.dead_start_s is None else _at(t_epoch_ns, self.dead_start_s)
-        stop = None if self.dead_stop_s is None else _at(t_epoch_ns, self.dead_stop_s)
-        what = (" Attitude reconstructed without the gyro (dynamics mode)." if dynamics_used else
-                " The gyro was used anyway because gyro mode was requested: treat the attitude with caution.")
-        return Anomaly("gyro_dead", "critical", self.reason + what, start, stop,
-                       axis=None if self.axis is None else "xyz"[self.axis], value=self.explained_fraction)
-
-
-def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body_nT: np.ndarray,
-               arw_rad_sqrt_s: float | None, *, stuck_min_s: float = 30.0, stuck_min_fraction: float = 0.1,
-               window_s: float = 60.0, max_bias_rad_s: float = 2.0 * RAD_PER_DEG,
-               min_explained: float = 0.5, noise_factor: float = 20.0) -> GyroCheck:
-    """Is the gyro alive? Three tests, any one failing makes it dead.
-
-    1. Stuck: one axis repeats exactly the same value for at least ``stuck_min_s`` and
-       ``stuck_min_fraction`` of the log (a live gyro's noise never repeats that long).
-    2. Kinematics: over ``window_s`` windows where the body field turns faster than the orbit alone
-       can turn it (|db/dt| > 3 x 0.0025 rad/s x |b|, i.e. three times twice the orbital rate), the
-       gyro, less a constant bias of at most ``max_bias_rad_s``, must explain at least
-       ``min_explained`` of the variance of db/dt.
-    3. Noise: the per-sample white noise exceeds ``noise_factor`` times the stated ARW (output is
-       noise), tested only when test 2 has no informative window.
-
-    Thresholds are engineering choices (common practice, no source) with wide margins: a healthy
-    gyro explains more than 90 % of db/dt when the satellite turns faster than 0.5 deg/s.
-
-    Parameters
-    ----------
-    t_gyro : (G,) s; w_gyro : (G, 3) rad/s body; t_mag : (N,) s; b_body_nT : (N, 3) nT body
-    arw_rad_sqrt_s : float or None, stated angle random walk
-    """
-    span = float(t_gyro[-1] - t_gyro[0])
-    s0, s1, ax = _longest_constant_run(t_gyro, w_gyro)
-    if ax >= 0 and (s1 - s0) >= max(stuck_min_s, stuck_min_fraction * span):
-        value = float(w_gyro[np.searchsorted(t_gyro, s0), ax])
-        return GyroCheck(False, f"gyro axis {'xyz'[ax]} repeats the same output {np.rad2deg(value):.4g} deg/s "
-                                f"for {s1 - s0:.0f} s ({100 * (s1 - s0) / span:.0f} % of the log): stuck or dead.",
-                         s0, float(t_gyro[-1]) if s1 >= t_gyro[-1] - 1.0 else s1, ax, None)
-    # kinematic test
-    bdot = local_slope(t_mag, b_body_nT, 1.0)
-    wg = window_mean(t_gyro, w_gyro, t_mag, 1.0)
-    ok = np.all(np.isfinite(bdot), axis=1)
-    bmag = np.linalg.norm(b_body_nT, axis=1)
-    floor = 3.0 * 0.0025 * bmag  # three times the field's own turning rate in a polar LEO
-    fast = ok & (np.linalg.norm(bdot, axis=1) > floor)
-    explained = None
-    if fast.sum() >= 50:
-        e = bdot[fast] + np.cross(wg[fast], b_body_nT[fast])
-        # e = beta x b = -[b x] beta: least squares for a constant bias
-        bx = np.zeros((fast.sum(), 3, 3))
-        b = b_body_nT[fast]
-        bx[:, 0, 1], bx[:, 0, 2], bx[:, 1, 2] = -b[:, 2], b[:, 1], -b[:, 0]
-        bx[:, 1, 0], bx[:, 2, 0], bx[:, 2, 1] = b[:, 2], -b[:, 1], b[:, 0]
-        beta, *_ = np.linalg.lstsq(-bx.reshape(-1, 3), e.ravel(), rcond=None)
-        res = e + np.einsum("nij,j->ni", bx, beta)
-        explained = float(1.0 - np.sum(res ** 2) / np.sum(bdot[fast] ** 2))
-        bad_bias = np.linalg.norm(beta) > max_bias_rad_s
-        if explained < min_explained or bad_bias:
-            tf = t_mag[fast]
-            frac_res = np.linalg.norm(res, axis=1) / np.linalg.norm(bdot[fast], axis=1)
-            badw = tf[frac_res > 0.7]
-            start = float(badw[0]) if len(badw) else float(tf[0])
-            stop = float(badw[-1]) if len(badw) else float(tf[-1])
-            why = (f"a bias of {np.rad2deg(np.linalg.norm(beta)):.2f} deg/s would be needed" if bad_bias else
-                   f"the gyro explains only {100 * max(explained, 0.0):.0f} % of the field's body-frame rate "
-                   f"of change (expected > {100 * min_explained:.0f} %)")
-            return GyroCheck(False, f"gyro output does not follow the measured field's motion: {why}, over "
-                                    f"{fast.sum()} samples where the satellite turns.", start, stop, None,
-                             explained)
-        return GyroCheck(True, f"gyro consistent with the magnetometer: explains {100 * explained:.1f} % of "
-                               f"the field's body-frame rate of change.", explained_fraction=explained)
-    if arw_rad_sqrt_s:
-        dt = float(np.median(np.diff(t_gyro)))
-        white = white_noise_from_differences(w_gyro)
-        expected = arw_rad_sqrt_s / np.sqrt(dt)
-        if white > noise_factor * expected:
-            return GyroCheck(False, f"gyro white noise {np.rad2deg(white):.3g} deg/s per sample is "
-                                    f"{white / expected:.0f} times the stated angle random walk allows, and the "
-                                    f"satellite turns too slowly to test the output against the field.",
-                             float(t_gyro[0]), float(t_gyro[-1]))
-    return GyroCheck(True, "gyro not stuck; the satellite turns too slowly for a kinematic test.")
+__all__ = ["carry_back_with_dynamics", "estimate_dynamics", "initial_state_dynamics", "propagate_rigid_body"]
 
 
 def _dyn_inputs(t: np.ndarray, m_steps: np.ndarray, r_km: np.ndarray) -> np.ndarray:
+    """Per-step inputs of dynamics mode (K, 9): the mean coil dipole over the step (A m^2, body) and the
+    position at both ends of it (km, GCRF; the last step repeats its own)."""
     u = np.zeros((len(t), 9))
     u[:, 0:3] = m_steps
     u[:, 3:6] = r_km
@@ -203,7 +72,7 @@ def propagate_rigid_body(q0, w0, t, m_body, b_ref, r_km, prm, nsub):
             b1 = b_ref[k] + f1 * (b_ref[k + 1] - b_ref[k])
             r0 = r_km[k] + f0 * (r_km[k + 1] - r_km[k])
             r1 = r_km[k] + f1 * (r_km[k + 1] - r_km[k])
-            q, w = core.rk4_rigid_body(q, w, dt, m_body[k], b0, b1, r0, r1, prm)
+            q, w = rk4_rigid_body(q, w, dt, m_body[k], b0, b1, r0, r1, prm)
         qo[k + 1, :] = q
         wo[k + 1, :] = w
     return qo, wo
@@ -231,9 +100,7 @@ def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
     bdot = local_slope(t[first], b_body_nT[first], 1.0)
     ok = np.all(np.isfinite(bdot), axis=1)
     b = b_body_nT[first][ok]
-    bx = np.zeros((len(b), 3, 3))
-    bx[:, 0, 1], bx[:, 0, 2], bx[:, 1, 2] = -b[:, 2], b[:, 1], -b[:, 0]
-    bx[:, 1, 0], bx[:, 2, 0], bx[:, 2, 1] = b[:, 2], -b[:, 1], b[:, 0]
+    bx = cross_matrices(b)
     w_guess, *_ = np.linalg.lstsq(bx.reshape(-1, 3), bdot[ok].ravel(), rcond=None)
     sel10 = np.nonzero(t - t0 <= 10.0)[0]
     dq = Rotation.from_rotvec(-np.outer(t[sel10] - t0, w_guess))
@@ -286,8 +153,7 @@ def initial_state_dynamics(t: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.nd
     s_w = np.maximum(d[3:], floor_rate_rad_s)
     rms = float(np.sqrt(np.mean(best.fun ** 2)) * sigma_vec_nT)
     return InitialState(q0 if q0[3] >= 0 else -q0, best.x[3:].copy(), s_att, s_w, "multi-start-dynamics-lsq",
-                        float(tw[-1] - t0), {"vectors": int(len(sub)), "residual_rms_nT": rms,
-                                             "starts": n_starts})
+                        float(tw[-1] - t0), OpeningFit(int(len(sub)), rms, n_starts))
 
 
 def carry_back_with_dynamics(init: InitialState, t: np.ndarray, k0: int, m_steps: np.ndarray, b_ref: np.ndarray,
@@ -308,25 +174,24 @@ def carry_back_with_dynamics(init: InitialState, t: np.ndarray, k0: int, m_steps
 
     Returns
     -------
-    InitialState at t[0] (``detail["carried_back_s"]`` = the gap)
+    InitialState at t[0] (``carried_back_s`` = the gap)
     """
     gap = float(t[k0] - t[0])
     if k0 <= 0 or gap <= 0.0:
-        return InitialState(init.q_body_from_gcrf, init.v, init.sigma_att_rad, init.sigma_v, init.method,
-                            init.window_s, {**init.detail, "carried_back_s": 0.0})
+        return dataclasses.replace(init, carried_back_s=0.0)
     idx = np.arange(k0, -1, -1)
     m_back = np.empty((len(idx), 3))
     m_back[:-1] = m_steps[idx[1:]]  # backward interval [t_j+1, t_j] holds the dipole of interval j
     m_back[-1] = m_steps[0]
     qs, ws = propagate_rigid_body(np.asarray(init.q_body_from_gcrf, float), np.asarray(init.v, float),
                                   t[idx], m_back, b_ref[idx], r_km[idx], prm, 2)
-    j_min = float(np.linalg.eigvalsh(prm[core.P_J:core.P_J + 9].reshape(3, 3)).min())
-    s_w = prm[core.P_SIGTAU] / j_min
+    j_min = float(np.linalg.eigvalsh(prm[P_J:P_J + 9].reshape(3, 3)).min())
+    s_w = prm[P_SIGTAU] / j_min
     s_att = np.sqrt(np.max(init.sigma_att_rad ** 2) + (np.max(init.sigma_v) * gap) ** 2 + s_w ** 2 * gap ** 3 / 3.0)
     s_rate = np.sqrt(init.sigma_v ** 2 + s_w ** 2 * gap)
     q = qs[-1]
-    return InitialState(q if q[3] >= 0 else -q, ws[-1].copy(), np.full(3, s_att), s_rate, init.method,
-                        init.window_s, {**init.detail, "carried_back_s": gap})
+    return dataclasses.replace(init, q_body_from_gcrf=q if q[3] >= 0 else -q, v=ws[-1].copy(),
+                               sigma_att_rad=np.full(3, s_att), sigma_v=s_rate, carried_back_s=gap)
 
 
 def _fill_rows(t: np.ndarray, x: np.ndarray) -> np.ndarray:
@@ -340,59 +205,77 @@ def _fill_rows(t: np.ndarray, x: np.ndarray) -> np.ndarray:
     return out
 
 
-def estimate_dynamics(tm, bb, br, ok_rows, noise, inertia, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
-                      init_window_s, report, gyro=None):
-    """Dynamics-mode reconstruction on the magnetometer time stamps; returns an AttitudeHistory.
+def _gyro_seeded_start(t: np.ndarray, inputs: PassInputs, check: GyroCheck | None, noise: NoiseModel,
+                       sigma_vec_nT: float, init_window_s: float) -> InitialState | None:
+    """The opening from the gyro while it was alive, when it died only later in the pass; else None.
 
-    When a gyro log exists whose early part is alive (dead only later in the pass), that part seeds
-    the initial attitude and rate; otherwise the start is found from the magnetometer alone.
+    It needs a live stretch longer than the opening window plus 60 s that starts with the pass (within
+    1 s). The opening body rate is the mean gyro rate of the first second less the solved bias.
     """
-    from . import attitude as est  # one-way at run time: estimate owns the result types
+    t_epoch = inputs.t_mag_ns[0]
+    t_gyro_s = (inputs.t_gyro_ns - t_epoch) / NS_PER_S
+    w_gyro = inputs.w_gyro_body_rad_s
+    dead0 = check.dead_start_s if check is not None and check.dead_start_s is not None else None
+    if dead0 is None or not (dead0 - t_gyro_s[0] > init_window_s + 60.0 and t_gyro_s[0] <= t[0] + 1.0):
+        return None
+    alive = t_gyro_s < dead0
+    okm = inputs.usable & (t < dead0)
+    gi = initial_state_with_gyro(t[okm], inputs.b_body_nT[okm], inputs.b_ref_gcrf_nT[okm], t_gyro_s[alive],
+                                 w_gyro[alive], sigma_vec_nT=sigma_vec_nT, sigma_bias0_rad_s=noise.gyro_bias0_rad_s,
+                                 window_s=init_window_s, max_window_s=min(600.0, dead0 - t_gyro_s[0]))
+    w0 = w_gyro[alive][t_gyro_s[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
+    s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * RAD_PER_DEG) ** 2)
+    return InitialState(gi.q_body_from_gcrf, w0, gi.sigma_att_rad, s_w, "gyro-seeded (gyro alive before it died)",
+                        gi.window_s, gi.fit)
 
-    t_epoch = tm[0]
-    t = (tm - t_epoch) / NS_PER_S
-    noise, src = est._resolve_noise(noise, bb[ok_rows], None, None)
-    prm = est._params(noise, 0.0, inertia)
-    # rows without a reference (no orbit position) are not used for updates; for the torque in the
-    # propagation their field and position are interpolated from the neighbouring rows
-    r = _fill_rows(t, br)
-    z = np.nan_to_num(bb)
+
+def _torque_inputs(t: np.ndarray, t_epoch_ns: int, coil_t_utc, i_coil_A, dipole_per_amp,
+                   r_gcrf_km: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """Mean coil dipole over each step (A m^2, body; zero without coils) and the position at each row
+    (km, GCRF; zero without one, missing rows interpolated)."""
     ct = None if coil_t_utc is None else (np.asarray(coil_t_utc).astype("datetime64[ns]").astype(np.int64)
-                                          - t_epoch) / NS_PER_S
+                                          - t_epoch_ns) / NS_PER_S
     m_steps = mean_dipole_over_steps(t, ct, i_coil_A, dipole_per_amp)
     r_km = np.zeros((len(t), 3)) if r_gcrf_km is None else np.nan_to_num(_fill_rows(t, np.asarray(r_gcrf_km, float)))
-    u = _dyn_inputs(t, m_steps, r_km)
+    return m_steps, r_km
+
+
+def estimate_dynamics(inputs: PassInputs, noise: NoiseModel, inertia: np.ndarray, coil_t_utc: np.ndarray | None,
+                      i_coil_A: np.ndarray | None, dipole_per_amp: np.ndarray | None, r_gcrf_km: np.ndarray | None,
+                      init_window_s: float, report: Callable[[str, float], None],
+                      check: GyroCheck | None = None) -> AttitudeHistory:
+    """Dynamics-mode reconstruction on the magnetometer time stamps.
+
+    When a gyro log exists whose early part is alive (dead only later in the pass, ``check``), that
+    part seeds the initial attitude and rate; otherwise the start is found from the magnetometer alone.
+    Parameters as in :func:`recon.estimate.estimate_attitude` (inertia in kg m^2).
+    """
+    t_mag_ns, usable = inputs.t_mag_ns, inputs.usable
+    b_body, b_ref = inputs.b_body_nT, inputs.b_ref_gcrf_nT
+    t = (t_mag_ns - t_mag_ns[0]) / NS_PER_S
+    noise, source = resolve_noise(noise, b_body[usable], None, None)
+    prm = filter_params(noise, 0.0, inertia)
+    # rows without a reference (no orbit position) are not used for updates; for the torque in the
+    # propagation their field and position are interpolated from the neighbouring rows
+    r = _fill_rows(t, b_ref)
+    m_steps, r_km = _torque_inputs(t, t_mag_ns[0], coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km)
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
     report("initialisation", 0.05)
     init = None
-    if gyro is not None:
-        tg, wg, check = gyro
-        tgs = (tg - t_epoch) / NS_PER_S
-        dead0 = check.dead_start_s if check is not None and check.dead_start_s is not None else None
-        if dead0 is not None and dead0 - tgs[0] > init_window_s + 60.0 and tgs[0] <= t[0] + 1.0:
-            alive = tgs < dead0
-            okm = ok_rows & (t < dead0)
-            gi = initial_state_with_gyro(t[okm], bb[okm], br[okm], tgs[alive], wg[alive], sigma_vec_nT=sig_vec,
-                                         sigma_bias0_rad_s=noise.gyro_bias0_rad_s, window_s=init_window_s,
-                                         max_window_s=min(600.0, dead0 - tgs[0]))
-            w0 = wg[alive][tgs[alive] <= t[0] + 1.0].mean(axis=0) - gi.v
-            s_w = np.sqrt(gi.sigma_v ** 2 + (noise.gyro_arw_rad_sqrt_s or 1e-3) ** 2 + (0.01 * RAD_PER_DEG) ** 2)
-            init = InitialState(gi.q_body_from_gcrf, w0, gi.sigma_att_rad, s_w,
-                                "gyro-seeded (gyro alive before it died)", gi.window_s, gi.detail)
+    if inputs.t_gyro_ns is not None:
+        init = _gyro_seeded_start(t, inputs, check, noise, sig_vec, init_window_s)
     if init is None:
-        init = initial_state_dynamics(t[ok_rows], bb[ok_rows], br[ok_rows], m_steps[ok_rows], r_km[ok_rows],
+        init = initial_state_dynamics(t[usable], b_body[usable], b_ref[usable], m_steps[usable], r_km[usable],
                                       prm, sig_vec, window_s=init_window_s)
     # both starts are solved at the first usable row; the filter starts at t[0]
-    init = carry_back_with_dynamics(init, t, int(np.argmax(ok_rows)), m_steps, r, r_km, prm)
+    init = carry_back_with_dynamics(init, t, int(np.argmax(usable)), m_steps, r, r_km, prm)
     report("forward filter and smoother", 0.2)
     out_idx = np.arange(len(t), dtype=np.int64)
-    run = est.run_filter(core.MODE_DYNAMICS, t, u, ok_rows.copy(), z, r, prm, init, out_idx, len(t))
+    run = run_filter(MODE_DYNAMICS, t, _dyn_inputs(t, m_steps, r_km), usable.copy(), np.nan_to_num(b_body), r, prm,
+                     init, out_idx, len(t))
     sel = np.arange(len(t))
-    sm = est._track(run, True, sel, core.MODE_DYNAMICS, prm, None, 0.0)
-    fw = est._track(run, False, sel, core.MODE_DYNAMICS, prm, None, 0.0)
-    return est.AttitudeHistory(tm.astype("datetime64[ns]"), sm, fw, run.nis[ok_rows],
-                               tm[ok_rows].astype("datetime64[ns]"), "dynamics", "", (), noise, src,
-                               {"method": init.method, "window_s": init.window_s,
-                                "rate0_dps": np.rad2deg(init.v).tolist(),
-                                "sigma_att0_deg": np.rad2deg(init.sigma_att_rad).tolist(),
-                                "smoother_steps_not_pd": run.smoother_bad, **init.detail})
+    start = FilterStart(init.method, init.window_s, np.rad2deg(init.sigma_att_rad).tolist(), run.smoother_bad,
+                        init.fit, init.carried_back_s, rate0_dps=np.rad2deg(init.v).tolist())
+    return AttitudeHistory(t_mag_ns.astype("datetime64[ns]"), extract_track(run, True, sel, MODE_DYNAMICS, None, 0.0),
+                           extract_track(run, False, sel, MODE_DYNAMICS, None, 0.0), run.nis[usable],
+                           t_mag_ns[usable].astype("datetime64[ns]"), "dynamics", "", (), noise, source, start)

@@ -23,6 +23,7 @@ Control. Springer. Sec. 5.3 (q-method), 5.5 (covariance of the Wahba solution).
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -31,7 +32,8 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from ..core import scipy_from_shuster_quaternion
-from . import mekf_core as core
+from .kernels import qmul, qnormalize, quat_from_rotvec
+from .types import OpeningFit
 
 __all__ = ["WahbaSolution", "davenport_q_method", "InitialState",
            "initial_state_with_gyro", "integrate_gyro", "carry_back_with_gyro"]
@@ -126,11 +128,11 @@ def integrate_gyro(t_gyro, w_gyro, bias, t_query):
                 wx = w_gyro[j, 0] - bias[0]
                 wy = w_gyro[j, 1] - bias[1]
                 wz = w_gyro[j, 2] - bias[2]
-                dq = core.qmul(core.quat_from_rotvec(-wx * dt, -wy * dt, -wz * dt), dq)
+                dq = qmul(quat_from_rotvec(-wx * dt, -wy * dt, -wz * dt), dq)
             tcur = tnext
             if j + 1 < t_gyro.shape[0] and tcur >= t_gyro[j + 1]:
                 j += 1
-        out[i, :] = core.qnormalize(dq)
+        out[i, :] = qnormalize(dq)
     return out
 
 
@@ -146,7 +148,9 @@ class InitialState:
     sigma_v : (3,) 1-sigma of v used for P0
     method : str
     window_s : float
-    detail : dict
+    fit : OpeningFit or None, figures of the fit that found it
+    carried_back_s : float or None, how far it was carried back from where it was solved, s (None: not
+        carried back)
     """
 
     q_body_from_gcrf: np.ndarray
@@ -155,7 +159,8 @@ class InitialState:
     sigma_v: np.ndarray
     method: str
     window_s: float
-    detail: dict
+    fit: OpeningFit | None = None
+    carried_back_s: float | None = None
 
 
 def _window(t_mag: np.ndarray, b_ref: np.ndarray, t0: float, min_window_s: float, max_window_s: float,
@@ -269,10 +274,8 @@ def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: 
     rms = float(np.sqrt(np.mean(residuals(p, whole, a0)[:-3] ** 2)) * sigma_vec_nT)
     agree = int(sum(c <= 1.01 * costs[int(np.argmin(costs))] for c in costs))
     return InitialState(q0 if q0[3] >= 0 else -q0, p[3:].copy(), s_att, s_b, "multi-start q-method+gyro-bias-lsq", w,
-                        {"vectors": int(len(tq)), "residual_rms_nT": rms, "starts": len(costs),
-                         "starts_at_best": agree,
-                         "field_turn_deg": float(np.rad2deg(np.arccos(np.clip(
-                             rq[0] @ rq[-1] / np.linalg.norm(rq[0]) / np.linalg.norm(rq[-1]), -1, 1))))})
+                        OpeningFit(int(len(tq)), rms, len(costs), agree, float(np.rad2deg(np.arccos(np.clip(
+                            rq[0] @ rq[-1] / np.linalg.norm(rq[0]) / np.linalg.norm(rq[-1]), -1, 1))))))
 
 
 def carry_back_with_gyro(init: InitialState, t_from_s: float, t_to_s: float, t_gyro: np.ndarray,
@@ -294,15 +297,14 @@ def carry_back_with_gyro(init: InitialState, t_from_s: float, t_to_s: float, t_g
 
     Returns
     -------
-    InitialState at t_to_s (``detail["carried_back_s"]`` = the gap)
+    InitialState at t_to_s (``carried_back_s`` = the gap)
     """
     gap = float(t_from_s - t_to_s)
     if gap <= 0.0:
-        return InitialState(init.q_body_from_gcrf, init.v, init.sigma_att_rad, init.sigma_v, init.method,
-                            init.window_s, {**init.detail, "carried_back_s": 0.0})
+        return dataclasses.replace(init, carried_back_s=0.0)
     d = Rotation.from_quat(integrate_gyro(t_gyro, w_gyro, np.asarray(init.v, float),
                                           np.array([t_to_s, t_from_s]))[-1])
     q = (d.inv() * Rotation.from_quat(init.q_body_from_gcrf)).as_quat()
     s = np.sqrt(np.max(init.sigma_att_rad ** 2) + (np.max(init.sigma_v) * gap) ** 2 + arw_rad_sqrt_s ** 2 * gap)
-    return InitialState(q if q[3] >= 0 else -q, init.v, np.full(3, s), init.sigma_v, init.method, init.window_s,
-                        {**init.detail, "carried_back_s": gap})
+    return dataclasses.replace(init, q_body_from_gcrf=q if q[3] >= 0 else -q, sigma_att_rad=np.full(3, s),
+                               carried_back_s=gap)
