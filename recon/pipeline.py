@@ -19,7 +19,7 @@ from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import Anomaly, InputError, __version__
-from .estimate import NoiseModel, estimate_attitude, write_attitude_csv
+from .estimate import NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
 from .load import load_pass
@@ -31,6 +31,7 @@ from .report import (
     say,
     settings_block,
     write_aem,
+    write_attitude_csv,
     write_json,
     write_ledger,
     write_report,

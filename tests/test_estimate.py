@@ -20,7 +20,8 @@ from scipy import stats
 from test_estimate_truth import INERTIA, T0_UTC, attitude_error_rad, make_truth
 
 from recon.core import InputError
-from recon.estimate import NoiseModel, estimate_attitude, write_attitude_csv
+from recon.estimate import NoiseModel, estimate_attitude
+from recon.report import write_attitude_csv
 
 DEG = np.pi / 180.0
 NOISE = NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=0.004 * DEG, gyro_bias_walk_rad_s_sqrt_s=1e-4 * DEG)

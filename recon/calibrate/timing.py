@@ -34,6 +34,7 @@ from ..core import (
     cross_product_dipole,
     currents_from_dipole,
     held_values,
+    seconds_since,
 )
 
 __all__ = ["TimeOffset", "time_offset_from_replay", "mag_time_offset", "MAX_OFFSET_S", "MATCH_FRACTION",
@@ -228,11 +229,7 @@ def mag_time_offset(mission, cleaned) -> TimeOffset:
         return _undetermined("controller.first_tick is not given: the tick instants are unknown")
     mag = cleaned.magnetometer
     epoch = np.datetime64(ctl.first_tick, "ns")
-
-    def sec(t):
-        return (np.asarray(t, "datetime64[ns]") - epoch).astype(np.int64) / NS_PER_S
-
-    t_mag, t_coil = sec(mag.time_utc), sec(cleaned.coils.time_utc)
+    t_mag, t_coil = seconds_since(mag.time_utc, epoch), seconds_since(cleaned.coils.time_utc, epoch)
     lo, hi = max(t_mag[0], t_coil[0]), min(t_mag[-1], t_coil[-1])
     ticks = control_ticks(lo + MAX_OFFSET_S, hi - MAX_OFFSET_S, float(ctl.period_s), 0.0)
     gyro = cleaned.gyro
@@ -240,4 +237,5 @@ def mag_time_offset(mission, cleaned) -> TimeOffset:
         t_mag, mag.values, ticks, t_coil, cleaned.coils.values, law=ctl.law, gain=float(ctl.gain),
         period_s=float(ctl.period_s), dipole_per_amp=coils.dipole_per_amp, max_current_A=coils.max_current_A,
         inertia_kg_m2=mission.inertia_kg_m2, target_momentum_Nms=ctl.target_momentum_Nms,
-        t_gyro_s=None if gyro is None else sec(gyro.time_utc), w_gyro_body_rad_s=None if gyro is None else gyro.values)
+        t_gyro_s=None if gyro is None else seconds_since(gyro.time_utc, epoch),
+        w_gyro_body_rad_s=None if gyro is None else gyro.values)

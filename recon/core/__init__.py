@@ -40,6 +40,7 @@ from .constants import (
 from .errors import InputError
 from .frames import (
     body_from_gcrf,
+    cross_matrices,
     geodetic_to_itrf,
     gmst82_rad,
     itrf_to_gcrf_matrix,
@@ -56,7 +57,7 @@ from .frames import (
 )
 from .laws import bdot_dipole, cross_product_dipole, currents_from_dipole
 from .signal import held_integral, held_mean, local_slope, robust_scale, white_noise_from_differences, window_mean
-from .timetext import utc_text, utc_texts
+from .timetext import seconds_since, utc_at, utc_text, utc_texts
 from .version import __version__
 
 __all__ = [
@@ -72,6 +73,6 @@ __all__ = [
     "effective_current", "held_values", "in_off_window", "in_off_window_utc", "infer_first_tick",
     "mean_dipole_over_steps", "tick_phase",
     "held_integral", "held_mean", "local_slope", "robust_scale", "white_noise_from_differences", "window_mean",
-    "utc_text", "utc_texts", "__version__",
+    "utc_text", "utc_texts", "seconds_since", "utc_at", "cross_matrices", "__version__",
     "bdot_dipole", "cross_product_dipole", "currents_from_dipole",
 ]

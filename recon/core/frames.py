@@ -38,7 +38,7 @@ __all__ = [
     "rotation_from_q", "q_from_rotation", "body_from_gcrf",
     "utc_to_jd", "jd_tt", "jd_ut1", "gmst82_rad",
     "teme_to_itrf_matrix", "itrf_to_gcrf_matrix", "teme_to_gcrf_matrix",
-    "itrf_to_geodetic", "geodetic_to_itrf", "ned_to_itrf_matrix", "scipy_from_shuster_quaternion",
+    "itrf_to_geodetic", "geodetic_to_itrf", "ned_to_itrf_matrix", "scipy_from_shuster_quaternion", "cross_matrices",
 ]
 
 _NS_PER_DAY = 86_400 * 1_000_000_000
@@ -191,3 +191,12 @@ def scipy_from_shuster_quaternion(q_shuster: np.ndarray) -> np.ndarray:
     q = np.array(q_shuster, dtype=float, copy=True)
     q[..., :3] *= -1.0
     return np.where(q[..., 3:4] < 0, -q, q)
+
+
+def cross_matrices(v: np.ndarray) -> np.ndarray:
+    """The cross-product matrix ``[v x]`` of each row of v: (N, 3) -> (N, 3, 3), ``[v x] u = v x u``."""
+    v = np.asarray(v, float)
+    m = np.zeros((len(v), 3, 3))
+    m[:, 0, 1], m[:, 0, 2], m[:, 1, 2] = -v[:, 2], v[:, 1], -v[:, 0]
+    m[:, 1, 0], m[:, 2, 0], m[:, 2, 1] = v[:, 2], -v[:, 1], v[:, 0]
+    return m

@@ -1,7 +1,6 @@
 """Attitude and rate reconstruction: multiplicative EKF forward pass and RTS smoother, gyro or dynamics mode."""
 
 from .attitude import estimate_attitude
-from .attitude_csv import write_attitude_csv
 from .noise import gyro_noise_figures
 from .types import AttitudeHistory, FilterStart, GyroAllanFigures, NoiseModel, NoiseSource, OpeningFit, Track
 
@@ -10,7 +9,6 @@ __all__ = [
     "Track",
     "AttitudeHistory",
     "estimate_attitude",
-    "write_attitude_csv",
     "gyro_noise_figures",
     "GyroAllanFigures",
     "NoiseSource",

@@ -39,9 +39,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import RAD_PER_DEG, Anomaly
-from .kinematics import cross_matrices, kinematic_residual
-from .timeaxis import utc_at
+from ..core import RAD_PER_DEG, Anomaly, cross_matrices, utc_at
+from .kinematics import kinematic_residual
 
 __all__ = ["BiasStep", "find_bias_step", "window_biases", "pooled_bias"]
 

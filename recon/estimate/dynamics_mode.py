@@ -26,11 +26,10 @@ from numba import njit
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
-from ..core import NS_PER_S, RAD_PER_DEG, local_slope, mean_dipole_over_steps
+from ..core import NS_PER_S, RAD_PER_DEG, cross_matrices, local_slope, mean_dipole_over_steps
 from .gyro_check import GyroCheck
 from .initial import InitialState, davenport_q_method, initial_state_with_gyro
 from .kernels import MODE_DYNAMICS, P_J, P_SIGTAU, rk4_rigid_body
-from .kinematics import cross_matrices
 from .noise import resolve_noise
 from .run import extract_track, filter_params, run_filter
 from .types import AttitudeHistory, FilterStart, NoiseModel, OpeningFit, PassInputs

@@ -20,9 +20,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import RAD_PER_DEG, Anomaly, local_slope, white_noise_from_differences, window_mean
-from .kinematics import cross_matrices
-from .timeaxis import utc_at
+from ..core import RAD_PER_DEG, Anomaly, cross_matrices, local_slope, utc_at, white_noise_from_differences, window_mean
 
 __all__ = ["GyroCheck", "check_gyro"]
 

@@ -17,15 +17,7 @@ from scipy.spatial.transform import Rotation
 
 from ..core import local_slope, window_mean
 
-__all__ = ["cross_matrices", "kinematic_residual"]
-
-
-def cross_matrices(v: np.ndarray) -> np.ndarray:
-    """The cross-product matrix ``[v x]`` of each row of v: (N, 3) -> (N, 3, 3), ``[v x] u = v x u``."""
-    m = np.zeros((len(v), 3, 3))
-    m[:, 0, 1], m[:, 0, 2], m[:, 1, 2] = -v[:, 2], v[:, 1], -v[:, 0]
-    m[:, 1, 0], m[:, 2, 0], m[:, 2, 1] = v[:, 2], -v[:, 1], v[:, 0]
-    return m
+__all__ = ["kinematic_residual"]
 
 
 def kinematic_residual(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray,

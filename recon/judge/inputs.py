@@ -10,9 +10,9 @@ from typing import Any
 
 import numpy as np
 
-from ..core import InputError, body_from_gcrf
+from ..core import InputError, body_from_gcrf, seconds_since
 
-__all__ = ["PassArrays", "checked_array", "seconds_since", "check_pass_inputs"]
+__all__ = ["PassArrays", "checked_array", "checked_seconds", "check_pass_inputs"]
 
 
 def checked_array(name: str, a: Any, tail: tuple[int, ...], n: int | None = None,
@@ -29,7 +29,7 @@ def checked_array(name: str, a: Any, tail: tuple[int, ...], n: int | None = None
     return x
 
 
-def seconds_since(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
+def checked_seconds(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
     """UTC times (datetime64[ns], strictly increasing) as float seconds since ``epoch``."""
     try:
         tt = np.asarray(t, dtype="datetime64[ns]")
@@ -37,7 +37,7 @@ def seconds_since(name: str, t: Any, epoch: np.datetime64) -> np.ndarray:
         raise InputError(f"expected UTC times (datetime64[ns]), got {np.asarray(t).dtype}", key=name) from None
     if tt.ndim != 1:
         raise InputError(f"expected a 1-D array of times, got shape {tt.shape}", key=name)
-    s = (tt - epoch).astype(np.int64) / 1e9
+    s = seconds_since(tt, epoch)
     if len(s) > 1 and np.any(np.diff(s) <= 0):
         raise InputError("expected strictly increasing times (clean the log first), got a step back or a "
                          f"repeat at row {int(np.argmax(np.diff(s) <= 0)) + 1}", key=name)
@@ -95,11 +95,11 @@ def check_pass_inputs(*, inertia_kg_m2, mag_sensor_to_body, time_mag_utc, b_mag_
         raise InputError(f"expected a 3x3 inertia matrix, got shape {J.shape}", key="inertia_kg_m2")
     M = checked_array("mag_sensor_to_body", mag_sensor_to_body, (3,))
     epoch = np.asarray(time_utc, dtype="datetime64[ns]")[0]
-    t = seconds_since("time_utc", time_utc, epoch)
+    t = checked_seconds("time_utc", time_utc, epoch)
     w = checked_array("w_body_rad_s", w_body_rad_s, (3,), len(t))
-    t_mag = seconds_since("time_mag_utc", time_mag_utc, epoch)
+    t_mag = checked_seconds("time_mag_utc", time_mag_utc, epoch)
     b_mag_body = checked_array("b_mag_sensor_nT", b_mag_sensor_nT, (3,), len(t_mag)) @ M.T
-    t_coil = seconds_since("time_coil_utc", time_coil_utc, epoch)
+    t_coil = checked_seconds("time_coil_utc", time_coil_utc, epoch)
     i_coil = checked_array("i_coil_A", i_coil_A, (3,), len(t_coil))
     q = checked_array("q_body_from_gcrf", q_body_from_gcrf, (4,), len(t), allow_none=True)
     if b_body_nT is not None:

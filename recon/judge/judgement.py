@@ -49,7 +49,7 @@ from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_
 from .effect import assess_effect
 from .feedback import assess_crosstalk_feedback
 from .findings import findings, verdict
-from .inputs import PassArrays, check_pass_inputs, checked_array, seconds_since
+from .inputs import PassArrays, check_pass_inputs, checked_array, checked_seconds
 from .latency import latency_profile, scan_actuation_latency
 from .replay import CommandComparison
 from .thresholds import MAX_LATENCY_PERIODS, MIN_SEGMENTS, RATE_BIAS_KNOT_S, SEGMENT_POINTS
@@ -187,7 +187,7 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
         if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = seconds_since("time_gyro_utc", time_gyro_utc, data.epoch)
+            tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
             w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
                                  tol=1e-9)
         else:

@@ -9,6 +9,7 @@ from .aem import (
     read_aem,
     write_aem,
 )
+from .attitude_csv import write_attitude_csv
 from .figure_set import pass_figures
 from .html import (
     Figure,
@@ -21,6 +22,7 @@ from .summary import CAUTION, jsonable, settings_block, write_json
 
 __all__ = [
     "figures",
+    "write_attitude_csv",
     "pass_figures",
     "format_inspect_table",
     "write_ledger",

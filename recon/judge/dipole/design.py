@@ -42,7 +42,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ...core import held_values, in_off_window
+from ...core import cross_matrices, held_values, in_off_window
 from .motion import MotionSplines
 
 __all__ = ["Design", "design", "whiteners", "rate_bias_knots_s"]
@@ -63,15 +63,6 @@ class Design:
     y: np.ndarray
     A: np.ndarray
     label: np.ndarray
-
-
-def _cross_matrices(v: np.ndarray) -> np.ndarray:
-    """[v x] for each row of v: (N, 3) -> (N, 3, 3)."""
-    z = np.zeros(len(v))
-    return np.stack([np.stack([z, -v[:, 2], v[:, 1]], -1),
-                     np.stack([v[:, 2], z, -v[:, 0]], -1),
-                     np.stack([-v[:, 1], v[:, 0], z], -1)], axis=1)
-
 
 
 def _regressors(mot: MotionSplines, bounds_s: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
@@ -98,7 +89,7 @@ def _regressors(mot: MotionSplines, bounds_s: np.ndarray, t_coil_s: np.ndarray, 
     dF = mot.F_B(b) - mot.F_B(a)                       # (cells, 3) T s
     cell_int = np.searchsorted(bounds_s, mid, side="right") - 1
     n = len(bounds_s) - 1
-    X = _cross_matrices(dF)                            # int [B x] dt over the cell
+    X = cross_matrices(dF)                            # int [B x] dt over the cell
     # -int [B x] C i dt = -(i^T (x) int[B x] dt) vec(C)
     rows = -(cur[:, :, None, None] * X[:, None, :, :])  # (cells, 3 coils, 3, 3)
     rows = np.transpose(rows, (0, 2, 1, 3)).reshape(len(mid), 3, 9)
@@ -157,7 +148,7 @@ def _rate_bias_regressors(mot: MotionSplines, t_eval: np.ndarray, inertia: np.nd
     cell_int = np.searchsorted(t_eval, mid, side="right") - 1
     A_int = np.zeros((len(t_eval) - 1, 3, 3 * nk))
     for W, kk in zip(Wk, (m, m + 1), strict=True):
-        G = _cross_matrices(W) @ inertia - _cross_matrices(W @ inertia.T)
+        G = cross_matrices(W) @ inertia - cross_matrices(W @ inertia.T)
         for c in range(3):
             np.add.at(A_int, (cell_int, slice(None), 3 * kk + c), G[:, :, c])
     phi = np.column_stack([np.interp(t_eval, knots, np.eye(nk)[k]) for k in range(nk)])   # (n, K)

@@ -6,8 +6,9 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
-from .types import AttitudeHistory
+from ..estimate import AttitudeHistory
 
 __all__ = ["write_attitude_csv"]
 
@@ -15,8 +16,6 @@ __all__ = ["write_attitude_csv"]
 def write_attitude_csv(path: str | Path, hist: AttitudeHistory) -> Path:
     """Write attitude.csv: time_utc, qx, qy, qz, qw (q_body_from_gcrf), rate_x/y/z_dps (body),
     bias_x/y/z_dps, sigma_x/y/z_deg (1-sigma attitude error about each body axis), smoothed."""
-    import pandas as pd
-
     path = Path(path)
     q = hist.q_body_from_gcrf
     w = np.rad2deg(hist.w_body_rad_s)
