@@ -14,7 +14,7 @@ from .engine import run_simulation
 from .environment import Environment
 from .scenarios import SimConfig, scenario_config
 from .sensors import GyroNoise, MagnetometerHardware
-from .writer import render, write_files
+from .writer import FileFacts, render, write_files
 
 __all__ = ["SimulatedPass", "simulate_pass"]
 
@@ -180,7 +180,7 @@ def simulate_pass(scenario: str = "nominal", seed: int = 0, out_dir: str | Path 
     return result
 
 
-def _truth_record(cfg: SimConfig, sim, scenario: str, seed: int, pass_id: str, facts: dict, faults: list,
+def _truth_record(cfg: SimConfig, sim, scenario: str, seed: int, pass_id: str, facts: FileFacts, faults: list,
                   ledger: list, texts: dict, effective: tuple) -> dict:
     """The content of truth/truth.json."""
     C_eff, K_eff, gains = effective
@@ -203,7 +203,7 @@ def _truth_record(cfg: SimConfig, sim, scenario: str, seed: int, pass_id: str, f
         "imperfections": {"flight_like": cfg.imperfections is not None, **sim.imperfections.to_truth()},
         "orbit": {"source": cfg.orbit_source, "tle": list(sim.tle), "tle_in_mission_file": list(sim.mission_tle),
                   "positions_noise_m": cfg.positions_noise_m if cfg.orbit_source == "positions" else None,
-                  **({"gps_minus_utc_s": facts["gps_minus_utc_s"]} if "gps_minus_utc_s" in facts else {})},
+                  **({"gps_minus_utc_s": facts.gps_minus_utc_s} if facts.gps_minus_utc_s is not None else {})},
         "environment": {"field_model": "IGRF-14 (ppigrf), coefficients at the pass epoch",
                         "unmodelled_rms_nT": cfg.unmodelled_rms_nT,
                         "unmodelled_terms_gcrf": sim.env.unmodelled_terms,
@@ -225,8 +225,8 @@ def _truth_record(cfg: SimConfig, sim, scenario: str, seed: int, pass_id: str, f
             "arw_rad_sqrt_s": sim.gyro.arw_rad_sqrt_s, "bias_walk_rad_s_sqrt_s": sim.gyro.rrw_rad_s_sqrt_s,
             "initial_bias_sensor_rad_s": sim.gyro.bias0_rad_s.tolist(),
             "full_scale_rad_s": sim.gyro.full_scale_rad_s,
-            "rate_hz": cfg.gyro_rate_hz, "tick_epoch_utc": facts.get("gyro_tick_epoch_utc"),
-            "rollover_utc": facts.get("gyro_rollover_utc"), "file_resolution_deg_s": 1e-6,
+            "rate_hz": cfg.gyro_rate_hz, "tick_epoch_utc": facts.gyro_tick_epoch_utc,
+            "rollover_utc": facts.gyro_rollover_utc, "file_resolution_deg_s": 1e-6,
             "scale_misalignment": sim.imperfections.gyro_scale_misalignment.tolist()},
         "coils": {"C_A_m2_per_A_nominal": sim.C_nominal.tolist(), "C_A_m2_per_A_true": C_eff.tolist(),
                   "C_A_m2_per_A_hardware": sim.C_hw.tolist(), "current_factor_per_axis": gains,

@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import json
 import math
+from dataclasses import dataclass
 from pathlib import Path
 
 import erfa
@@ -48,7 +49,7 @@ import numpy as np
 from ..core import GPS_EPOCH_UTC, NS_PER_S, NT_PER_UNIT, utc_texts
 from .datafaults import inject
 
-__all__ = ["render", "write_files", "TRUTH_COLUMNS"]
+__all__ = ["render", "write_files", "TRUTH_COLUMNS", "FileFacts"]
 
 DEG = math.pi / 180.0
 TRUTH_COLUMNS = (["time_utc", "t_s", "qx", "qy", "qz", "qw", "wx_rad_s", "wy_rad_s", "wz_rad_s"]
@@ -94,12 +95,28 @@ def gyro_tick_epoch(cfg, t0: np.datetime64, step_ns: int) -> tuple[np.datetime64
     return np.datetime64(np.datetime64(t0, "M"), "ns"), None
 
 
+@dataclass
+class FileFacts:
+    """What writing the files decided that the truth must record.
+
+    Attributes
+    ----------
+    gyro_tick_epoch_utc : str or None, the gyro counter's epoch (UTC text)
+    gyro_rollover_utc : str or None, when the counter wraps (UTC text)
+    gps_minus_utc_s : float or None, GPS - UTC of a position log's stamps, s
+    """
+
+    gyro_tick_epoch_utc: str | None = None
+    gyro_rollover_utc: str | None = None
+    gps_minus_utc_s: float | None = None
+
+
 def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, str], list[dict], dict]:
-    """File texts (name -> text), the data-fault ledger and extra facts for truth.json."""
+    """File texts (name -> text), the data-fault ledger and the facts of the files for truth.json."""
     t0 = sim.t0_utc
     rng = sim.rng_data
     plan = cfg.data_faults or {}
-    texts, ledger, facts = {}, [], {}
+    texts, ledger, facts = {}, [], FileFacts()
     t_mag_utc = t0 + sim.t_mag_ns.astype("timedelta64[ns]")
     # the magnetometer's stamps are late (or early) by its time-tag offset; the truth keeps true instants
     offset = np.timedelta64(int(round(sim.imperfections.mag_time_offset_s * NS_PER_S)), "ns")
@@ -123,8 +140,8 @@ def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, 
         t_g = sim.t_gyro_ns
         counts = ((t0 - epoch).astype("timedelta64[ns]").astype(np.int64) + t_g) // step % (2 ** 32)
         keep = [] if t_wrap is None else [int(np.searchsorted(t_g, t_wrap))]
-        facts["gyro_tick_epoch_utc"] = np.datetime_as_string(epoch, unit="s") + "Z"
-        facts["gyro_rollover_utc"] = (None if t_wrap is None else
+        facts.gyro_tick_epoch_utc = np.datetime_as_string(epoch, unit="s") + "Z"
+        facts.gyro_rollover_utc = (None if t_wrap is None else
                                       np.datetime_as_string(t0 + np.timedelta64(t_wrap, "ns"), unit="ms") + "Z")
 
         def fmt_gyro(t, v):
@@ -157,7 +174,7 @@ def render(sim, cfg, scenario: str, seed: int, pass_id: str) -> tuple[dict[str, 
         rows = [f"{t},{x:.2f},{y:.2f},{z:.2f}" for t, (x, y, z) in zip(_seconds_text(gps_ns), r_m.tolist(),
                                                                           strict=True)]
         texts["positions.csv"] = "gps_s,x_m,y_m,z_m\n" + "\n".join(rows) + "\n"
-        facts["gps_minus_utc_s"] = tai_utc - 19.0
+        facts.gps_minus_utc_s = tai_utc - 19.0
 
     texts["mission.toml"] = _mission(sim, cfg, scenario, seed, pass_id, facts)
     stride = max(1, int(cfg.truth_stride))
@@ -183,7 +200,7 @@ def _mission(sim, cfg, scenario, seed, pass_id, facts) -> str:
             f"noise = {_num(cfg.mag_noise_nT / f)}"]
     if cfg.gyro:
         out += ["", "[gyro]", 'file = "gyro.csv"',
-                f'time = {{ column = "obt", format = "ticks", epoch = "{facts["gyro_tick_epoch_utc"]}", '
+                f'time = {{ column = "obt", format = "ticks", epoch = "{facts.gyro_tick_epoch_utc}", '
                 f"rate_hz = {_num(cfg.gyro_rate_hz)}, rollover_bits = 32 }}",
                 'columns = ["wx", "wy", "wz"]', 'unit = "deg/s"',
                 f"sensor_to_body = {_mat(cfg.gyro_sensor_to_body)}",
