@@ -19,7 +19,7 @@ from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import Anomaly, InputError, __version__
-from .estimate import NoiseModel, estimate_attitude
+from .estimate import AlignmentPrior, NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
 from .load import load_pass
@@ -163,7 +163,7 @@ def _time_tags(mission: Mission, cleaned):
     return cleaned.with_magnetometer_time_shifted(-timing.offset_s), timing, [] if finding is None else [finding]
 
 
-def _estimate(mission: Mission, cleaned, cal, ref, progress):
+def _estimate(mission: Mission, cleaned, cal, ref, timing, progress):
     gyro = cleaned.gyro
     coils = cleaned.coils
     return estimate_attitude(
@@ -175,7 +175,8 @@ def _estimate(mission: Mission, cleaned, cal, ref, progress):
         coil_t_utc=None if coils is None else coils.time_utc,
         i_coil_A=None if coils is None else coils.values,
         dipole_per_amp=None if mission.coils is None else mission.coils.dipole_per_amp,
-        r_gcrf_km=ref.r_gcrf_km,
+        r_gcrf_km=ref.r_gcrf_km, alignment_prior=AlignmentPrior.from_mission(mission, timing.determined),
+        field_residual_rms_nT=cal.residual_rms_nT.get("after"),
         progress=None if progress is None else (lambda stage, f: progress(f"attitude: {stage}", f)))
 
 
@@ -203,7 +204,7 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
         K_nT_per_A=cal.crosstalk_combined_nT_per_A)
 
 
-def _attitude_stage(mission, cleaned, cal, ref, out, bar, skipped):
+def _attitude_stage(mission, cleaned, cal, ref, timing, out, bar, skipped):
     """The attitude history and its files, or None with the reason in ``skipped``."""
     if ref is None:
         skipped["estimate"] = "no reference field (no orbit), so no attitude can be referred to GCRF"
@@ -211,7 +212,7 @@ def _attitude_stage(mission, cleaned, cal, ref, out, bar, skipped):
     if not np.isfinite(cal.b_body_calibrated_nT).any():
         skipped["estimate"] = "no calibrated magnetometer sample is usable"
         return None
-    hist = _estimate(mission, cleaned, cal, ref, bar)
+    hist = _estimate(mission, cleaned, cal, ref, timing, bar)
     write_attitude_csv(out / "attitude.csv", hist)
     write_aem(out / "attitude.aem", hist.time_utc, hist.q_body_from_gcrf,
               creation_date=hist.time_utc[-1], originator="recon", object_name=mission.pass_id,
@@ -243,7 +244,8 @@ def _summary(mission, cleaned, cal, timing, hist, judgement, skipped, anomalies)
         "tool_version": __version__,
         "mission_file": mission.path.name,
         "inputs": cleaned.inputs_summary(),
-        "calibration": {**cal.to_summary(), **timing.to_summary()},
+        "calibration": {**cal.to_summary(), **timing.to_summary(),
+                        **(hist.alignment.to_summary() if hist is not None and hist.alignment is not None else {})},
         "estimate": hist.to_summary() if hist is not None else None,
         "controller": controller,
         "skipped": skipped,
@@ -288,7 +290,7 @@ def run_pass(mission_path: Path | str, out_root: Path | str = "reports", *, prog
     cal = calibrate_pass(mission, cleaned, ref)
     say(bar, "calibrate magnetometer", 1.0)
     anomalies += list(cal.anomalies)
-    hist = _attitude_stage(mission, cleaned, cal, ref, out, bar, skipped)
+    hist = _attitude_stage(mission, cleaned, cal, ref, timing, out, bar, skipped)
     if hist is not None:
         anomalies += list(hist.anomalies)
     judgement = _controller_stage(mission, cleaned, cal, ref, hist, bar, skipped)

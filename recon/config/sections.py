@@ -60,6 +60,8 @@ def sensor_spec(r: Reader, units: tuple[str, ...], *, gyro: bool) -> SensorSpec:
         bias_walk=r.number("bias_walk", None, nonnegative=True) if gyro else None,
         scale=r.number("scale", 1.0),
         offset=r.number("offset", 0.0),
+        misalignment_deg=None if gyro else r.vector("misalignment_deg", 3, None),
+        misalignment_sigma_deg=None if gyro else r.number("misalignment_sigma_deg", None, positive=True),
     )
 
 

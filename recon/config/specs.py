@@ -46,7 +46,9 @@ class TimeSpec:
 @dataclass(frozen=True)
 class SensorSpec:
     """A magnetometer or gyro log. ``full_scale`` and ``noise`` are in the file's unit (after scale
-    and offset); ``sensor_to_body`` is M with v_body = M @ v_sensor."""
+    and offset); ``sensor_to_body`` is M with v_body = M @ v_sensor. Magnetometer only: the prior of
+    its misalignment to the body (``misalignment_deg``, small angles about body x, y, z, body from
+    magnetometer, and its 1-sigma ``misalignment_sigma_deg``), for passes too slow to measure it."""
 
     file: Path
     time: TimeSpec
@@ -58,6 +60,8 @@ class SensorSpec:
     bias_walk: float | None = None
     scale: float = 1.0
     offset: float = 0.0
+    misalignment_deg: np.ndarray | None = None
+    misalignment_sigma_deg: float | None = None
 
 
 @dataclass(frozen=True)

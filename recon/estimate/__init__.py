@@ -1,10 +1,13 @@
 """Attitude and rate reconstruction: multiplicative EKF forward pass and RTS smoother, gyro or dynamics mode."""
 
+from .alignment import AlignmentPrior, AlignmentResult
 from .attitude import estimate_attitude
 from .noise import gyro_noise_figures
 from .types import AttitudeHistory, FilterStart, GyroAllanFigures, NoiseModel, NoiseSource, OpeningFit, Track
 
 __all__ = [
+    "AlignmentPrior",
+    "AlignmentResult",
     "NoiseModel",
     "Track",
     "AttitudeHistory",

@@ -42,11 +42,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import NS_PER_S, InputError
+from ..core import NS_PER_S, InputError, white_noise_from_differences
+from .alignment import AlignmentPrior
 from .consistency import consistency_anomaly
 from .dynamics_mode import estimate_dynamics
 from .gyro_check import GyroCheck, check_gyro
 from .gyro_mode import estimate_gyro
+from .noise import field_model_from_residual
 from .types import AttitudeHistory, NoiseModel, PassInputs
 
 __all__ = ["estimate_attitude", "ModeChoice", "choose_mode"]
@@ -58,7 +60,8 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
                       inertia_kg_m2: np.ndarray | None = None, coil_t_utc: np.ndarray | None = None,
                       i_coil_A: np.ndarray | None = None, dipole_per_amp: np.ndarray | None = None,
                       r_gcrf_km: np.ndarray | None = None, init_window_s: float = 120.0,
-                      rate_window_s: float = 0.5,
+                      rate_window_s: float = 0.5, alignment_prior: AlignmentPrior | None = None,
+                      field_residual_rms_nT: float | None = None,
                       progress: Callable[[str, float], None] | None = None) -> AttitudeHistory:
     """Reconstruct attitude, rate and gyro bias over one pass.
 
@@ -95,6 +98,13 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         this window centred on it (at least one gyro interval), which divides the white-noise
         variance by the window length; 0.5 s changes a magnetorquer-driven rate by well under
         0.001 deg/s (angular accelerations of about 1e-4 rad/s^2, common practice, no source).
+    field_residual_rms_nT : float, optional
+        rms of the calibrated |b| against |b_ref|, nT: the field-model error level is raised to what it
+        shows (see :func:`recon.estimate.noise.field_model_from_residual`).
+    alignment_prior : AlignmentPrior, optional
+        Gyro mode: what is known of the magnetometer's misalignment, the gyro's scale and the
+        time-tag offset before the pass (see :mod:`recon.estimate.alignment`); default: misalignment
+        zero +- 1 deg, scale +- 3 %, skew +- 1 %, time tags known.
     progress : callable(stage: str, fraction: float), optional
 
     Returns
@@ -122,17 +132,23 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         r_gcrf_km = _vectors(r_gcrf_km, len(t_mag_ns), "r_gcrf_km")
     inputs = PassInputs(t_mag_ns, b_body_nT, b_ref_gcrf_nT, _usable_rows(b_body_nT, b_ref_gcrf_nT), t_gyro_ns,
                         w_gyro)
+    if noise.mag_nT is None and field_residual_rms_nT is not None:
+        noise = dataclasses.replace(noise, mag_nT=white_noise_from_differences(b_body_nT[inputs.usable]))
+    noise, raised = field_model_from_residual(noise, field_residual_rms_nT)
     choice = choose_mode(inputs, mode, noise)
     if not choice.use_gyro and inertia_kg_m2 is None:
         raise InputError("expected inertia_kg_m2 for dynamics mode (gyro absent or dead), got none",
                          key="inertia_kg_m2")
     report("set-up", 0.0)
     if choice.use_gyro:
-        hist = estimate_gyro(inputs, noise, init_window_s, rate_window_s, report)
+        hist = estimate_gyro(inputs, noise, init_window_s, rate_window_s, report, alignment_prior)
     else:
         hist = estimate_dynamics(inputs, noise, inertia_kg_m2, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
                                  init_window_s, report, check=choice.check)
     hist = dataclasses.replace(hist, mode_reason=choice.reason, anomalies=choice.anomalies + tuple(hist.anomalies))
+    if raised:
+        hist = dataclasses.replace(hist, noise_source=dataclasses.replace(hist.noise_source,
+                                                                          field_model_nT="calibration |b| residual"))
     inconsistent = consistency_anomaly(hist)
     if inconsistent is not None:
         hist = dataclasses.replace(hist, anomalies=hist.anomalies + (inconsistent,))

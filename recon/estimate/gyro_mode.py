@@ -22,14 +22,16 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import DEG_PER_RAD, NS_PER_S, held_mean, utc_text
+from .alignment import AlignmentFit, AlignmentPrior, AlignmentResult, fit_alignment, sym_from_six
 from .bias_step import BiasStep, find_bias_step
 from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
 from .kernels import MODE_GYRO
 from .noise import resolve_noise
-from .run import FilterRun, extract_track, filter_params, run_filter
+from .nuisance import Corrections, consider_covariance, corrected_inputs, with_consider
+from .run import FilterRun, extract_track, filter_params, forward_innovations, run_filter
 from .types import AttitudeHistory, FilterStart, NoiseModel, PassInputs
 
-__all__ = ["StepGrid", "step_grid", "bias_step_inputs", "estimate_gyro"]
+__all__ = ["StepGrid", "step_grid", "step_rates", "bias_step_inputs", "estimate_gyro", "GyroSolution"]
 
 
 @dataclass(frozen=True)
@@ -41,8 +43,9 @@ class StepGrid:
     t_epoch_ns : int, the filter's start (a magnetometer time stamp), ns since 1970 (UTC)
     first_row : int, magnetometer rows before this one come before the gyro log and are not used
     t_s : (K,) s since the epoch, the steps
-    u : (K, 5) per-step gyro inputs: held gyro sample (rad/s, body), time since it was taken (s),
-        extra bias variance ((rad/s)^2, zero here)
+    u : (K, 6) per-step gyro inputs: the rate over the step (rad/s, body; see :func:`step_rates`),
+        time since the last gyro sample (s), extra bias variance ((rad/s)^2, zero here), extra rate
+        variance ((rad/s)^2, zero here)
     is_mag : (K,) bool, steps with a magnetometer update
     z : (K, 3) nT body; r : (K, 3) nT GCRF, measured and reference field at the magnetometer steps
     mag_pos : (M,) step of each magnetometer row from first_row on
@@ -85,10 +88,35 @@ def step_grid(inputs: PassInputs) -> StepGrid:
     r[mag_pos] = np.nan_to_num(inputs.b_ref_gcrf_nT[first:])
     t_gyro_s = (t_gyro_ns - t_epoch) / NS_PER_S
     j = np.clip(np.searchsorted(t_gyro_ns, steps, side="right") - 1, 0, len(t_gyro_ns) - 1)
-    u = np.zeros((len(steps), 5))
-    u[:, :3] = w_gyro[j]
+    u = np.zeros((len(steps), 6))
+    u[:, :3] = step_rates(t_gyro_s, w_gyro, t, dt_g_ns / NS_PER_S)
     u[:, 3] = t - t_gyro_s[j]
     return StepGrid(t_epoch, first, t, u, is_mag, z, r, mag_pos, t_gyro_s, dt_g_ns / NS_PER_S)
+
+
+def step_rates(t_gyro_s: np.ndarray, w_gyro: np.ndarray, t_steps_s: np.ndarray, dt_nominal_s: float) -> np.ndarray:
+    """The gyro rate each propagation step uses: the gyro linearly interpolated to the step's midpoint
+    (the trapezoid rule over the step: the mean of a rate that moves linearly between two samples),
+    or the last sample held where the gyro log has a gap (consecutive samples more than two nominal
+    intervals apart). The last step repeats the one before it.
+
+    Parameters
+    ----------
+    t_gyro_s : (G,) s; w_gyro : (G, 3) rad/s; t_steps_s : (K,) s; dt_nominal_s : float, s
+
+    Returns
+    -------
+    (K, 3) rad/s
+    """
+    mid = np.empty_like(t_steps_s)
+    mid[:-1] = 0.5 * (t_steps_s[1:] + t_steps_s[:-1])
+    mid[-1] = t_steps_s[-1]
+    j = np.clip(np.searchsorted(t_gyro_s, mid, side="right") - 1, 0, len(t_gyro_s) - 1)
+    j1 = np.minimum(j + 1, len(t_gyro_s) - 1)
+    span = t_gyro_s[j1] - t_gyro_s[j]
+    inside = (j1 > j) & (span <= 2.0 * dt_nominal_s) & (mid >= t_gyro_s[j])
+    f = np.where(inside, (mid - t_gyro_s[j]) / np.where(span > 0, span, 1.0), 0.0)
+    return w_gyro[j] + f[:, None] * (w_gyro[j1] - w_gyro[j])
 
 
 def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray:
@@ -102,12 +130,12 @@ def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray
 
     Parameters
     ----------
-    t : (K,) s, step times; u : (K, 5) per-step gyro inputs (column 4: extra bias variance)
+    t : (K,) s, step times; u : (K, 6) per-step gyro inputs (column 4: extra bias variance)
     step : BiasStep
 
     Returns
     -------
-    (K, 5) copy of u with column 4 filled
+    (K, 6) copy of u with column 4 filled
     """
     out = u.copy()
     total = float(np.sum((2.0 * step.delta_rad_s) ** 2))
@@ -171,33 +199,134 @@ def _run_allowing_bias_step(grid: StepGrid, inputs: PassInputs, noise: NoiseMode
     return result, again
 
 
+@dataclass(frozen=True)
+class GyroSolution:
+    """One gyro-mode solution: the corrected inputs, their step grid, the opening, the run and the
+    gyro bias step found (None: none)."""
+
+    inputs: PassInputs
+    grid: StepGrid
+    init: InitialState
+    run: FilterRun
+    step: BiasStep | None
+
+
+def _solve(inputs: PassInputs, corr: Corrections, noise: NoiseModel, prm: np.ndarray, init_window_s: float,
+           report: Callable[[str, float], None]) -> GyroSolution:
+    """Opening, filter and smoother on the inputs with the corrections applied."""
+    fixed = corrected_inputs(inputs, corr)
+    grid = step_grid(fixed)
+    init = _opening(grid, fixed, noise, init_window_s)
+    run, step = _run_allowing_bias_step(grid, fixed, noise, prm, init, report)
+    return GyroSolution(fixed, grid, init, run, step)
+
+
+def _corrections(params: dict) -> Corrections:
+    """Corrections from a parameter dict of the alignment fit (absent blocks are zero)."""
+    return Corrections(np.asarray(params["theta"], float),
+                       sym_from_six(params["scale"]) if "scale" in params else np.zeros((3, 3)),
+                       float(params["time"][0]) if "time" in params else 0.0)
+
+
+def _likelihood(inputs: PassInputs, sol: GyroSolution, prm: np.ndarray) -> Callable[[dict], np.ndarray]:
+    """The filter's whitened innovations (stacked, the updates of the first solution) as a function of
+    the alignment parameters, from the first solution's opening and bias step."""
+    keep = np.isfinite(forward_innovations(MODE_GYRO, sol.grid.t_s, _step_u(sol.grid, sol.step), sol.grid.is_mag,
+                                           sol.grid.z, sol.grid.r, prm, sol.init)).all(axis=1)
+
+    def evaluate(params: dict) -> np.ndarray:
+        g = step_grid(corrected_inputs(inputs, _corrections(params)))
+        white = forward_innovations(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init)
+        return np.nan_to_num(white[keep]).ravel()
+
+    return evaluate
+
+
+def _step_u(grid: StepGrid, step: BiasStep | None) -> np.ndarray:
+    return grid.u if step is None else bias_step_inputs(grid.t_s, grid.u, step)
+
+
+def _rates(sol: GyroSolution, rate_window_s: float) -> tuple[np.ndarray, float]:
+    """The mean gyro rate over the rate window at each output row, and the white-noise window width."""
+    g = sol.grid
+    width = max(float(rate_window_s), g.dt_gyro_s)
+    return held_mean(g.t_gyro_s, sol.inputs.w_gyro_body_rad_s, g.t_s[g.mag_pos], width), width
+
+
+def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
+               blocks: list[tuple[tuple[str, ...], np.ndarray]], prm: np.ndarray,
+               rate_window_s: float) -> list[tuple[np.ndarray, np.ndarray]]:
+    """The smoothed attitude and rate with the corrections moved by each column of the Cholesky factor
+    of each block's covariance (the solution's opening and bias step kept)."""
+    out = []
+    for layout, cov in blocks:
+        chol = np.linalg.cholesky(cov + 1e-30 * np.eye(len(cov)))
+        for j in range(len(cov)):
+            fixed = corrected_inputs(inputs, corr.moved(chol[:, j], layout))
+            g = step_grid(fixed)
+            out_idx = np.full(len(g.t_s), -1, np.int64)
+            out_idx[g.mag_pos] = np.arange(len(g.mag_pos))
+            run = run_filter(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init, out_idx,
+                             len(g.mag_pos))
+            w_out, _ = _rates(GyroSolution(fixed, g, sol.init, run, sol.step), rate_window_s)
+            q = run.q_s[g.mag_pos]
+            out.append((np.where(q[:, 3:4] < 0, -q, q), w_out - run.v_s[g.mag_pos]))
+    return out
+
+
+def _consider_blocks(fit: AlignmentFit, prior: AlignmentPrior) -> list[tuple[tuple[str, ...], np.ndarray]]:
+    """Whose uncertainty the consider term carries: the fitted parameters with their covariance, and
+    the gyro's scale with its prior when the pass did not show it."""
+    blocks = [(fit.blocks, fit.cov)]
+    if not fit.scale_kept:
+        blocks.append((("scale",), np.diag(prior.block("scale")[1] ** 2)))
+    return blocks
+
+
 def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, rate_window_s: float,
-                  report: Callable[[str, float], None]) -> AttitudeHistory:
+                  report: Callable[[str, float], None], prior: AlignmentPrior | None = None) -> AttitudeHistory:
     """Gyro-mode reconstruction on the magnetometer time stamps from the filter's start on.
 
-    Parameters as in :func:`recon.estimate.estimate_attitude`; the anomaly ``gyro_bias_jump`` is
-    raised when a step in the gyro bias was found.
+    A first run gives the opening and any gyro bias step; the magnetometer's misalignment and the
+    gyro's scale (and the time-tag offset when the prior says it is not known) are then fitted by
+    maximum likelihood around the filter (:mod:`recon.estimate.alignment`), the inputs corrected and the
+    filter run again. The uncertainty of those corrections enters the smoothed attitude's covariance as
+    a consider term. Other parameters as in :func:`recon.estimate.estimate_attitude`; the anomaly
+    ``gyro_bias_jump`` is raised when a step in the gyro bias was found.
     """
-    grid = step_grid(inputs)
-    first, t_gyro_ns, w_gyro = grid.first_row, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
+    prior = prior or AlignmentPrior()
+    grid0 = step_grid(inputs)
+    first, t_gyro_ns = grid0.first_row, inputs.t_gyro_ns
     usable = inputs.usable[first:]
-    noise, source = resolve_noise(noise, inputs.b_body_nT[first:][usable], w_gyro,
+    noise, source = resolve_noise(noise, inputs.b_body_nT[first:][usable], inputs.w_gyro_body_rad_s,
                                   (t_gyro_ns - t_gyro_ns[0]) / NS_PER_S)
-    prm = filter_params(noise, grid.dt_gyro_s, None)
+    prm = filter_params(noise, grid0.dt_gyro_s, None)
     report("initialisation", 0.05)
-    init = _opening(grid, inputs, noise, init_window_s)
-    report("forward filter and smoother", 0.1)
-    run, step = _run_allowing_bias_step(grid, inputs, noise, prm, init, report)
-    anomalies = () if step is None else (step.anomaly(grid.t_epoch_ns),)
-    # the reported rate: the mean gyro rate over the rate window, less the estimated bias
-    width = max(float(rate_window_s), grid.dt_gyro_s)
-    w_out = held_mean(grid.t_gyro_s, w_gyro, grid.t_s[grid.mag_pos], width)
+    sol = _solve(inputs, Corrections(np.asarray(prior.misalignment_rad, float), np.zeros((3, 3)), 0.0), noise, prm,
+                 init_window_s, report)
+    report("sensor alignment (maximum likelihood)", 0.3)
+    fit = fit_alignment(_likelihood(inputs, sol, prm), prior)
+    corr = Corrections(fit.theta_rad, fit.E, fit.time_offset_s)
+    report("final run and consider covariance", 0.75)
+    sol = _solve(inputs, corr, noise, prm, init_window_s, report)
+    w_out, width = _rates(sol, rate_window_s)
     extra = noise.gyro_arw_rad_sqrt_s ** 2 / width
-    tracks = [extract_track(run, smoothed, grid.mag_pos, MODE_GYRO, w_out, extra) for smoothed in (True, False)]
-    t_mag_used = inputs.t_mag_ns[first:]
+    tracks = [extract_track(sol.run, smoothed, sol.grid.mag_pos, MODE_GYRO, w_out, extra) for smoothed in (True, False)]
+    p_att, var_rate = consider_covariance(tracks[0].q_body_from_gcrf, tracks[0].w_body_rad_s,
+                                          _perturbed(sol, inputs, corr, _consider_blocks(fit, prior), prm,
+                                                     rate_window_s))
+    return _history(sol, with_consider(tracks[0], p_att, var_rate), tracks[1], noise, source,
+                    AlignmentResult.from_fit(fit, prior))
+
+
+def _history(sol: GyroSolution, smoothed, forward, noise, source, alignment) -> AttitudeHistory:
+    g, first, init, run = sol.grid, sol.grid.first_row, sol.init, sol.run
+    usable = sol.inputs.usable[first:]
+    anomalies = () if sol.step is None else (sol.step.anomaly(g.t_epoch_ns),)
+    t_mag_used = sol.inputs.t_mag_ns[first:]
     start = FilterStart(init.method, init.window_s, (init.sigma_att_rad * DEG_PER_RAD).tolist(), run.smoother_bad,
-                        init.fit, init.carried_back_s, t0_utc=utc_text(np.datetime64(int(grid.t_epoch_ns), "ns"), "us"),
+                        init.fit, init.carried_back_s, t0_utc=utc_text(np.datetime64(int(g.t_epoch_ns), "ns"), "us"),
                         bias0_dps=(init.v * DEG_PER_RAD).tolist(), magnetometer_rows_before_gyro=int(first))
-    return AttitudeHistory(t_mag_used.astype("datetime64[ns]"), tracks[0], tracks[1], run.nis[grid.mag_pos][usable],
+    return AttitudeHistory(t_mag_used.astype("datetime64[ns]"), smoothed, forward, run.nis[g.mag_pos][usable],
                            t_mag_used[usable].astype("datetime64[ns]"), "gyro", "", anomalies, noise,
-                           dataclasses.replace(source, field_model_nT="given"), start)
+                           dataclasses.replace(source, field_model_nT="given"), start, alignment=alignment)

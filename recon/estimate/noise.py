@@ -33,7 +33,8 @@ import numpy as np
 from ..core import local_slope, white_noise_from_differences
 from .types import GyroAllanFigures, NoiseModel, NoiseSource
 
-__all__ = ["overlapping_adev", "GyroNoiseFigures", "gyro_noise_from_adev", "gyro_noise_figures", "resolve_noise"]
+__all__ = ["field_model_from_residual", "overlapping_adev", "GyroNoiseFigures", "gyro_noise_from_adev",
+           "gyro_noise_figures", "resolve_noise"]
 
 FLICKER_FLOOR_FACTOR = 0.664  # sigma_min = 0.664 B for bias instability, sqrt(2 ln2 / pi) (memory)
 
@@ -177,3 +178,21 @@ def resolve_noise(noise: NoiseModel, b_body_nT: np.ndarray, w_gyro: np.ndarray |
                          "given" if allan is None else "data (Allan deviation)", allan,
                          "data" if "rate_hold_accel_rad_s2" in kw else "given")
     return dataclasses.replace(noise, **kw), source
+
+
+def field_model_from_residual(noise: NoiseModel, residual_rms_nT: float | None) -> tuple[NoiseModel, bool]:
+    """The field-model error raised to what the calibration's |b| residual shows, and whether it was.
+
+    After calibration, ``|b| - |b_ref|`` is the component along the field of what the reference model
+    leaves out, plus the magnetometer's noise: with an error isotropic in direction, its rms is the
+    per-axis sigma, so the vector's rms is ``sqrt(3 (rms^2 - sig_m^2))``. The fit absorbs part of that
+    error into bias and soft iron, so this is a lower bound: it only ever raises the level (a disturbed
+    field, 500 nT in a storm, against the 100 nT of quiet conditions (memory)).
+    """
+    if residual_rms_nT is None or not np.isfinite(residual_rms_nT):
+        return noise, False
+    mag = noise.mag_nT or 0.0  # unknown magnetometer noise: the whole residual counts
+    level = float(np.sqrt(3.0 * max(residual_rms_nT ** 2 - mag ** 2, 0.0)))
+    if level <= noise.field_model_nT:
+        return noise, False
+    return dataclasses.replace(noise, field_model_nT=level), True

@@ -35,7 +35,7 @@ from .kernels import (
 )
 from .types import NoiseModel, Track
 
-__all__ = ["filter_params", "FilterRun", "run_filter", "extract_track"]
+__all__ = ["filter_params", "FilterRun", "run_filter", "forward_innovations", "extract_track"]
 
 
 def filter_params(noise: NoiseModel, h_nom: float, inertia: np.ndarray | None) -> np.ndarray:
@@ -110,10 +110,7 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
     row (288 bytes, 0.29 GB).
     """
     kk = len(t)
-    p0 = np.zeros((N, N))
-    p0[:3, :3] = np.diag(init.sigma_att_rad ** 2)
-    p0[3:6, 3:6] = np.diag(init.sigma_v ** 2)
-    p0[6:, 6:] = np.eye(3) * prm[P_SIGF] ** 2
+    p0 = _initial_covariance(init, prm)
     q_f = np.empty((kk, 4))
     v_f = np.empty((kk, 3))
     db_f = np.empty((kk, 3))
@@ -129,6 +126,31 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
     bad = smoother_pass(mode, t, u, r, prm, q_f, v_f, db_f, p_f, out_idx, q_s, v_s, db_s, p_s6,
                         np.empty((0, N, N)))
     return FilterRun(t, q_f, v_f, db_f, p_f, nis, q_s, v_s, db_s, p_s6, int(bad))
+
+
+def forward_innovations(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: np.ndarray,
+                        r: np.ndarray, prm: np.ndarray, init: InitialState) -> np.ndarray:
+    """The forward MEKF alone, for its whitened innovations: (K, 3), NaN where there is no update.
+
+    Their sum of squares is the sum of the NIS, minus twice the log-likelihood of the measurements up
+    to the log-determinant terms: what a maximum-likelihood fit of parameters around the filter
+    minimises (Gauss-Newton on the stacked whitened innovations).
+    """
+    kk = len(t)
+    p0 = _initial_covariance(init, prm)
+    white = np.empty((kk, 3))
+    forward_pass(mode, t, u, is_mag, z, r, prm, np.asarray(init.q_body_from_gcrf, float), np.asarray(init.v, float),
+                 np.zeros(3), p0, np.empty((kk, 4)), np.empty((kk, 3)), np.empty((kk, 3)), np.empty((kk, NP)),
+                 np.empty(kk), white)
+    return white
+
+
+def _initial_covariance(init: InitialState, prm: np.ndarray) -> np.ndarray:
+    p0 = np.zeros((N, N))
+    p0[:3, :3] = np.diag(init.sigma_att_rad ** 2)
+    p0[3:6, 3:6] = np.diag(init.sigma_v ** 2)
+    p0[6:, 6:] = np.eye(3) * prm[P_SIGF] ** 2
+    return p0
 
 
 def extract_track(run: FilterRun, smoothed: bool, sel: np.ndarray, mode: int, w_out: np.ndarray | None,

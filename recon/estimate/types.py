@@ -19,6 +19,7 @@ import numpy as np
 from scipy import stats
 
 from ..core import NT_PER_UNIT, RAD_S_PER_UNIT, InputError, utc_text
+from .alignment import AlignmentResult
 
 __all__ = ["NoiseModel", "Track", "PassInputs", "GyroAllanFigures", "NoiseSource", "OpeningFit", "FilterStart",
            "AttitudeHistory"]
@@ -270,6 +271,7 @@ class AttitudeHistory:
     noise : NoiseModel actually used (all levels filled in)
     noise_source : NoiseSource, where each level came from
     init : FilterStart, how the filter was started
+    alignment : AlignmentResult or None, the sensors' alignment found in gyro mode
     """
 
     time_utc: np.ndarray
@@ -284,6 +286,7 @@ class AttitudeHistory:
     noise_source: NoiseSource
     init: FilterStart
     nis_dof: int = 3
+    alignment: AlignmentResult | None = None
 
     @property
     def q_body_from_gcrf(self) -> np.ndarray:

@@ -29,7 +29,8 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
 
     Outputs (filled): q_out (K, 4), v_out (K, 3), db_out (K, 3), p_out (K, NP) the covariance after
     the update at each step, upper triangle row by row (see :func:`unpack_covariance`); nis_out (K,)
-    and innov_out (K, 3), NaN where there is no update.
+    and innov_out (K, 3) the whitened innovations (``L^-1 (z - h(x))``, S = L L^T: each update's
+    contribution to the likelihood), NaN where there is no update.
     """
     kk = t.shape[0]
     q, v, db, p = q0.copy(), v0.copy(), db0.copy(), p0.copy()
@@ -44,6 +45,7 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
     kg = np.empty((N, 3))
     dx = np.empty(N)
     innov = np.empty(3)
+    white = np.empty(3)
     for k in range(kk):
         if k > 0:
             predict_into(mode, k - 1, q, v, db, t, u, r, prm, p, q2, v2, db2, m, p2, blk, w3, phi, qd)
@@ -52,13 +54,13 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
             db, db2 = db2, db
             p, p2 = p2, p
         if is_mag[k]:
-            nis_out[k] = update_into(q, v, db, p, z[k], r[k], prm, innov, q2, v2, db2, a3, pht, kg, dx)
+            nis_out[k] = update_into(q, v, db, p, z[k], r[k], prm, innov, q2, v2, db2, a3, pht, kg, dx, white)
             q, q2 = q2, q
             v, v2 = v2, v
             db, db2 = db2, db
-            innov_out[k, 0] = innov[0]
-            innov_out[k, 1] = innov[1]
-            innov_out[k, 2] = innov[2]
+            innov_out[k, 0] = white[0]
+            innov_out[k, 1] = white[1]
+            innov_out[k, 2] = white[2]
         else:
             nis_out[k] = np.nan
             innov_out[k, 0] = np.nan

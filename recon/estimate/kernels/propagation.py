@@ -81,15 +81,17 @@ def _field_decay(dt, prm):
 
 
 @njit(cache=True)
-def _gyro_noise(dt, s0, extra, prm):
+def _gyro_noise(dt, s0, extra, prm, rate_var=0.0):
     """Discrete Q coefficients (a11, a12, a22) of one gyro step (see the module docstring).
 
     s0: time since the held gyro sample was taken, at the start of the step; extra: added bias
-    variance (a bias step allowed at this step, rad^2/s^2).
+    variance (a bias step allowed at this step, rad^2/s^2); rate_var: variance of the rate used over
+    the step beyond the gyro's own noise ((rad/s)^2, per axis: a clipped axis reconstructed from the
+    magnetometer), which adds ``rate_var dt^2`` of attitude variance (an error held over the step).
     """
     sv2 = prm[P_SV] * prm[P_SV]
     su2 = prm[P_SU] * prm[P_SU]
-    a11 = sv2 * dt + su2 * dt * dt * dt / 3.0
+    a11 = sv2 * dt + su2 * dt * dt * dt / 3.0 + rate_var * dt * dt
     # growth of error while a gyro sample is held past its nominal interval h (a gap): the held
     # sample's own noise (variance sv^2/h, times s^2) and an unknown steady angular acceleration
     # (error acc s^2 / 2, variance acc^2 s^4 / 4)
@@ -108,7 +110,8 @@ def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
     """One gyro-mode step, reference form: returns (q_next, beta_next, db_next) and fills the full
     Phi and Q (N x N). ``u = [w_meas (3), s0, extra]``: the held gyro sample (rad/s, body), the time
     since it was taken (s) and an extra bias variance for this step (rad^2/s^2, zero except where a
-    bias jump was found). The passes use the same formulas through :func:`predict_into`.
+    bias jump was found) and, optionally, u[5] the extra rate variance of a reconstructed sample
+    ((rad/s)^2). The passes use the same formulas through :func:`predict_into`.
     """
     w = np.empty(3)
     for i in range(3):
@@ -118,7 +121,7 @@ def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
     phi[:, :] = 0.0
     qd[:, :] = 0.0
     gyro_transition(w, dt, phi)
-    a11, a12, a22 = _gyro_noise(dt, u[3], u[4] if u.shape[0] > 4 else 0.0, prm)
+    a11, a12, a22 = _gyro_noise(dt, u[3], u[4] if u.shape[0] > 4 else 0.0, prm, u[5] if u.shape[0] > 5 else 0.0)
     e, q33 = _field_decay(dt, prm)
     dbn = np.empty(3)
     for i in range(3):
@@ -299,7 +302,8 @@ def predict_into(mode, k, q, v, db, t, u, r, prm, p, qn, vn, dbn, m, pm, blk, w3
             vn[i] = v[i]
         rot_step_into(-w3[0] * dt, -w3[1] * dt, -w3[2] * dt, q, qn)
         gyro_transition(w3, dt, blk)
-        a11, a12, a22 = _gyro_noise(dt, u[k, 3], u[k, 4] if u.shape[1] > 4 else 0.0, prm)
+        a11, a12, a22 = _gyro_noise(dt, u[k, 3], u[k, 4] if u.shape[1] > 4 else 0.0, prm,
+                                    u[k, 5] if u.shape[1] > 5 else 0.0)
         e, q33 = _field_decay(dt, prm)
         for i in range(3):
             dbn[i] = e * db[i]
