@@ -18,7 +18,7 @@ import numpy as np
 from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
-from .core import Anomaly, InputError, __version__
+from .core import RAD_S_PER_UNIT, Anomaly, InputError, __version__
 from .estimate import AlignmentPrior, NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
@@ -177,7 +177,15 @@ def _estimate(mission: Mission, cleaned, cal, ref, timing, progress):
         dipole_per_amp=None if mission.coils is None else mission.coils.dipole_per_amp,
         r_gcrf_km=ref.r_gcrf_km, alignment_prior=AlignmentPrior.from_mission(mission, timing.determined),
         field_residual_rms_nT=cal.residual_rms_nT.get("after"),
+        gyro_clipped=None if gyro is None else gyro.saturated,
+        gyro_sensor_to_body=None if mission.gyro is None else mission.gyro.sensor_to_body,
+        gyro_full_scale_rad_s=_gyro_full_scale(mission),
         progress=None if progress is None else (lambda stage, f: progress(f"attitude: {stage}", f)))
+
+
+def _gyro_full_scale(mission: Mission) -> float | None:
+    g = mission.gyro
+    return None if g is None or g.full_scale is None else float(g.full_scale) * RAD_S_PER_UNIT[g.unit]
 
 
 def _judge(mission: Mission, cleaned, cal, ref, hist):

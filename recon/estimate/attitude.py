@@ -44,12 +44,13 @@ import numpy as np
 
 from ..core import NS_PER_S, InputError, white_noise_from_differences
 from .alignment import AlignmentPrior
+from .clipping import with_clipped_solved
 from .consistency import consistency_anomaly
 from .dynamics_mode import estimate_dynamics
 from .gyro_check import GyroCheck, check_gyro
 from .gyro_mode import estimate_gyro
 from .noise import field_model_from_residual
-from .types import AttitudeHistory, NoiseModel, PassInputs
+from .types import AttitudeHistory, GyroClipping, NoiseModel, PassInputs
 
 __all__ = ["estimate_attitude", "ModeChoice", "choose_mode"]
 
@@ -61,7 +62,8 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
                       i_coil_A: np.ndarray | None = None, dipole_per_amp: np.ndarray | None = None,
                       r_gcrf_km: np.ndarray | None = None, init_window_s: float = 120.0,
                       rate_window_s: float = 0.5, alignment_prior: AlignmentPrior | None = None,
-                      field_residual_rms_nT: float | None = None,
+                      field_residual_rms_nT: float | None = None, gyro_clipped: np.ndarray | None = None,
+                      gyro_sensor_to_body: np.ndarray | None = None, gyro_full_scale_rad_s: float | None = None,
                       progress: Callable[[str, float], None] | None = None) -> AttitudeHistory:
     """Reconstruct attitude, rate and gyro bias over one pass.
 
@@ -98,6 +100,10 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         this window centred on it (at least one gyro interval), which divides the white-noise
         variance by the window length; 0.5 s changes a magnetorquer-driven rate by well under
         0.001 deg/s (angular accelerations of about 1e-4 rad/s^2, common practice, no source).
+    gyro_clipped : (G, 3) bool, optional
+        Gyro samples whose sensor axis is at full scale (the clean stage's saturation flags); with
+        ``gyro_sensor_to_body`` (3, 3) and ``gyro_full_scale_rad_s`` their axes are solved from the
+        field's kinematics (:mod:`recon.estimate.clipping`) instead of being read as rates.
     field_residual_rms_nT : float, optional
         rms of the calibrated |b| against |b_ref|, nT: the field-model error level is raised to what it
         shows (see :func:`recon.estimate.noise.field_model_from_residual`).
@@ -123,7 +129,7 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
     t_mag_ns = _times_ns(t_mag_utc, "t_mag_utc")
     b_body_nT = _vectors(b_body_nT, len(t_mag_ns), "b_body_nT")
     b_ref_gcrf_nT = _vectors(b_ref_gcrf_nT, len(t_mag_ns), "b_ref_gcrf_nT")
-    t_gyro_ns, w_gyro = _gyro_log(gyro_t_utc, w_gyro_body_rad_s)
+    t_gyro_ns, w_gyro, clipped = _gyro_log(gyro_t_utc, w_gyro_body_rad_s, gyro_clipped)
     if mode == "gyro" and t_gyro_ns is None:
         raise InputError("expected gyro time stamps and rates for mode 'gyro', got none", key="mode")
     if mode != "gyro" and inertia_kg_m2 is not None:
@@ -132,6 +138,9 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         r_gcrf_km = _vectors(r_gcrf_km, len(t_mag_ns), "r_gcrf_km")
     inputs = PassInputs(t_mag_ns, b_body_nT, b_ref_gcrf_nT, _usable_rows(b_body_nT, b_ref_gcrf_nT), t_gyro_ns,
                         w_gyro)
+    if clipped is not None and clipped.any() and gyro_sensor_to_body is not None and gyro_full_scale_rad_s:
+        inputs = with_clipped_solved(dataclasses.replace(inputs, gyro_clipping=GyroClipping(
+            w_gyro, clipped, np.asarray(gyro_sensor_to_body, float), float(gyro_full_scale_rad_s))), noise)
     if noise.mag_nT is None and field_residual_rms_nT is not None:
         noise = dataclasses.replace(noise, mag_nT=white_noise_from_differences(b_body_nT[inputs.usable]))
     noise, raised = field_model_from_residual(noise, field_residual_rms_nT)
@@ -178,16 +187,18 @@ def _vectors(x, n: int, key: str) -> np.ndarray:
     return a
 
 
-def _gyro_log(gyro_t_utc, w_gyro_body_rad_s) -> tuple[np.ndarray | None, np.ndarray | None]:
-    """Gyro time stamps (int64 ns) and rates of the finite rows; (None, None) without at least two."""
+def _gyro_log(gyro_t_utc, w_gyro_body_rad_s, clipped) -> tuple[np.ndarray | None, np.ndarray | None,
+                                                                np.ndarray | None]:
+    """Gyro time stamps (int64 ns), rates and clipped flags of the finite rows; Nones without two rows."""
     if gyro_t_utc is None or w_gyro_body_rad_s is None:
-        return None, None
+        return None, None, None
     t_ns = _times_ns(gyro_t_utc, "gyro_t_utc")
     w = _vectors(w_gyro_body_rad_s, len(t_ns), "w_gyro_body_rad_s")
     keep = np.all(np.isfinite(w), axis=1)
     if keep.sum() < 2:
-        return None, None
-    return t_ns[keep], w[keep]
+        return None, None, None
+    flags = None if clipped is None else np.asarray(clipped, bool).reshape(len(t_ns), 3)[keep]
+    return t_ns[keep], w[keep], flags
 
 
 def _inertia(inertia_kg_m2) -> np.ndarray:

@@ -24,7 +24,9 @@ import numpy as np
 from ..core import DEG_PER_RAD, NS_PER_S, held_mean, utc_text
 from .alignment import AlignmentFit, AlignmentPrior, AlignmentResult, fit_alignment, sym_from_six
 from .bias_step import BiasStep, find_bias_step
+from .clipping import with_clipped_solved
 from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
+from .iterate import iterate_smoothing, state_at
 from .kernels import MODE_GYRO
 from .noise import resolve_noise
 from .nuisance import Corrections, consider_covariance, corrected_inputs, with_consider
@@ -91,6 +93,9 @@ def step_grid(inputs: PassInputs) -> StepGrid:
     u = np.zeros((len(steps), 6))
     u[:, :3] = step_rates(t_gyro_s, w_gyro, t, dt_g_ns / NS_PER_S)
     u[:, 3] = t - t_gyro_s[j]
+    if inputs.gyro_extra_var is not None:  # a clipped axis solved from the field: its own uncertainty
+        extra = inputs.gyro_extra_var
+        u[:, 5] = np.maximum(extra[j], extra[np.minimum(j + 1, len(extra) - 1)])
     return StepGrid(t_epoch, first, t, u, is_mag, z, r, mag_pos, t_gyro_s, dt_g_ns / NS_PER_S)
 
 
@@ -213,11 +218,21 @@ class GyroSolution:
 
 def _solve(inputs: PassInputs, corr: Corrections, noise: NoiseModel, prm: np.ndarray, init_window_s: float,
            report: Callable[[str, float], None]) -> GyroSolution:
-    """Opening, filter and smoother on the inputs with the corrections applied."""
+    """Opening, filter and smoother on the inputs with the corrections applied, solved again from the
+    far end of its smoothed track until it settles (:mod:`recon.estimate.iterate`); the solution's
+    ``init`` is then the smoothed start, where a forward run of the same pass is best begun."""
     fixed = corrected_inputs(inputs, corr)
     grid = step_grid(fixed)
     init = _opening(grid, fixed, noise, init_window_s)
     run, step = _run_allowing_bias_step(grid, fixed, noise, prm, init, report)
+    out_idx = np.full(len(grid.t_s), -1, np.int64)
+    out_idx[grid.mag_pos] = np.arange(len(grid.mag_pos))
+    run, runs, _ = iterate_smoothing(run, grid.t_s, _step_u(grid, step), grid.is_mag, grid.z, grid.r, prm, out_idx,
+                                     len(grid.mag_pos))
+    if runs > 1:
+        start = state_at(run, int(grid.mag_pos[0]), 0, False, init.method)
+        init = dataclasses.replace(init, q_body_from_gcrf=start.q_body_from_gcrf, v=start.v,
+                                   sigma_att_rad=start.sigma_att_rad, sigma_v=start.sigma_v)
     return GyroSolution(fixed, grid, init, run, step)
 
 
@@ -302,8 +317,12 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
                                   (t_gyro_ns - t_gyro_ns[0]) / NS_PER_S)
     prm = filter_params(noise, grid0.dt_gyro_s, None)
     report("initialisation", 0.05)
-    sol = _solve(inputs, Corrections(np.asarray(prior.misalignment_rad, float), np.zeros((3, 3)), 0.0), noise, prm,
-                 init_window_s, report)
+    corr0 = Corrections(np.asarray(prior.misalignment_rad, float), np.zeros((3, 3)), 0.0)
+    sol = _solve(inputs, corr0, noise, prm, init_window_s, report)
+    if inputs.gyro_clipping is not None:
+        # solve the clipped axes again with the filter's bias and attitude, and run again
+        inputs = _clipped_again(inputs, sol, noise)
+        sol = _solve(inputs, corr0, noise, prm, init_window_s, report)
     report("sensor alignment (maximum likelihood)", 0.3)
     fit = fit_alignment(_likelihood(inputs, sol, prm), prior)
     corr = Corrections(fit.theta_rad, fit.E, fit.time_offset_s)
@@ -317,6 +336,17 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
                                                      rate_window_s))
     return _history(sol, with_consider(tracks[0], p_att, var_rate), tracks[1], noise, source,
                     AlignmentResult.from_fit(fit, prior))
+
+
+def _clipped_again(inputs: PassInputs, sol: GyroSolution, noise: NoiseModel) -> PassInputs:
+    """The gyro's clipped axes solved again with a solution's bias (at the gyro samples) and attitude."""
+    g = sol.grid
+    t_mag = g.t_s[g.mag_pos]
+    beta = np.column_stack([np.interp(g.t_gyro_s, t_mag, sol.run.v_s[g.mag_pos][:, a]) for a in range(3)])
+    q = np.full((len(inputs.t_mag_ns), 4), np.nan)
+    q[g.first_row:] = sol.run.q_s[g.mag_pos]
+    q[:g.first_row] = q[g.first_row]
+    return with_clipped_solved(inputs, noise, beta_gyro_body=beta, q_mag=q)
 
 
 def _history(sol: GyroSolution, smoothed, forward, noise, source, alignment) -> AttitudeHistory:

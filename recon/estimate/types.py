@@ -21,8 +21,8 @@ from scipy import stats
 from ..core import NT_PER_UNIT, RAD_S_PER_UNIT, InputError, utc_text
 from .alignment import AlignmentResult
 
-__all__ = ["NoiseModel", "Track", "PassInputs", "GyroAllanFigures", "NoiseSource", "OpeningFit", "FilterStart",
-           "AttitudeHistory"]
+__all__ = ["NoiseModel", "Track", "PassInputs", "GyroClipping", "GyroAllanFigures", "NoiseSource", "OpeningFit",
+           "FilterStart", "AttitudeHistory"]
 
 
 @dataclass(frozen=True)
@@ -124,6 +124,9 @@ class PassInputs:
     usable : (N,) bool, rows whose field and reference field are both finite (used for updates)
     t_gyro_ns : (G,) int64 or None, gyro time stamps of the finite gyro rows
     w_gyro_body_rad_s : (G, 3) rad/s, body frame, or None
+    gyro_extra_var : (G,) (rad/s)^2 or None, variance of each gyro sample beyond its white noise (a
+        clipped axis solved from the field, see :mod:`recon.estimate.clipping`)
+    gyro_clipping : GyroClipping or None, what is needed to solve the clipped axes again
     """
 
     t_mag_ns: np.ndarray
@@ -132,6 +135,25 @@ class PassInputs:
     usable: np.ndarray
     t_gyro_ns: np.ndarray | None = None
     w_gyro_body_rad_s: np.ndarray | None = None
+    gyro_extra_var: np.ndarray | None = None
+    gyro_clipping: GyroClipping | None = None
+
+
+@dataclass(frozen=True)
+class GyroClipping:
+    """The gyro's clipped samples, as logged.
+
+    Attributes
+    ----------
+    w_logged_body_rad_s : (G, 3) the gyro as logged, body axes; clipped_sensor : (G, 3) bool, sensor axes
+        at full scale; sensor_to_body : (3, 3); full_scale_rad_s : float; note : str, what was done
+    """
+
+    w_logged_body_rad_s: np.ndarray
+    clipped_sensor: np.ndarray
+    sensor_to_body: np.ndarray
+    full_scale_rad_s: float
+    note: str = ""
 
 
 @dataclass(frozen=True)
