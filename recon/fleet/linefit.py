@@ -42,7 +42,8 @@ class LineFit:
     level : fitted value at ``t_mid`` (the weighted mean time)
     t_mid : weighted mean of t
     t_stat, p_value : slope / slope_sigma and its two-sided p-value from Student's t with ``dof``
-    birge_ratio : sqrt(chi2 / dof) about the line (1 when the sigmas describe the scatter)
+    birge_ratio : sqrt(chi2 / dof) about the line (1 when the sigmas describe the scatter); without
+        sigmas, the residual rms about the line, in the unit of y
     weighted : whether per-pass sigmas weighted the fit
     """
 

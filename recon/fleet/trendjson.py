@@ -31,7 +31,8 @@ def _parameter(t: ParameterTrend, epoch_utc: str) -> dict[str, Any]:
         out.update({
             "weighted": f.weighted, "slope_per_year": f.slope, "slope_sigma_per_year": f.slope_sigma,
             "level": f.level, "level_utc": _years_to_utc(epoch_utc, f.t_mid), "t_stat": f.t_stat, "dof": f.dof,
-            "p_value": f.p_value, "birge_ratio": f.birge_ratio, "threshold_per_year": t.threshold_per_year,
+            "p_value": f.p_value, "birge_ratio": f.birge_ratio if f.weighted else None,
+            "residual_rms": f.birge_ratio if not f.weighted else None, "threshold_per_year": t.threshold_per_year,
             "significant": t.significant, "material": t.material, "drift_detected": t.drift_detected})
     out["points"] = [{"pass_id": p, "time_utc": u, "value": v, "sigma": s}
                      for p, u, v, s in zip(t.pass_ids, t.time_utc, t.values, t.sigmas, strict=True)]

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import base64
 import html
+import math
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -45,6 +46,17 @@ def _e(x: Any) -> str:
 
 def _g(x: float | None, fmt: str = ".3g") -> str:
     return "&ndash;" if x is None else _e(format(x, fmt))
+
+
+def _pm(value: float, sigma: float) -> str:
+    """``value &plusmn; sigma`` with sigma to two significant digits and value to the same decimal place."""
+    if not (sigma > 0 and math.isfinite(sigma)):
+        return f"{_g(value)} &plusmn; {_g(sigma)}"
+    place = math.floor(math.log10(sigma)) - 1
+    if place < -6 or place > 6:
+        return f"{_e(format(value, '.3g'))} &plusmn; {_e(format(sigma, '.2g'))}"
+    fmt = f".{max(0, -place)}f"
+    return f"{_e(format(round(value, -place), fmt))} &plusmn; {_e(format(round(sigma, -place), fmt))}"
 
 
 def _table(header: Sequence[str], rows: Sequence[Sequence[str]], cls: str = "", row_cls: Sequence[str] = ()) -> str:
@@ -84,15 +96,16 @@ def _status(t: ParameterTrend) -> str:
     return "no significant trend"
 
 
-def _trend_rows(r: TrendReport) -> tuple[list[list[str]], list[str]]:
-    order = sorted(r.trends, key=lambda t: (not t.drift_detected, not t.significant))
+def _trend_rows(trends: Sequence[ParameterTrend]) -> tuple[list[list[str]], list[str]]:
+    order = sorted(trends, key=lambda t: (not t.drift_detected, not t.significant))
     rows, classes = [], []
     for t in order:
         f = t.fit
         rows.append([_e(t.parameter.name), _e(t.parameter.unit), str(len(t.values)),
-                     "&ndash;" if f is None else f"{_g(f.slope)} &plusmn; {_g(f.slope_sigma, '.2g')}",
+                     "&ndash;" if f is None else _pm(f.slope, f.slope_sigma),
                      "&ndash;" if f is None else _g(f.t_stat, ".2f"), "&ndash;" if f is None else _g(f.p_value, ".2g"),
-                     "&ndash;" if f is None else _g(f.birge_ratio, ".2f"), _g(t.threshold_per_year), _status(t)])
+                     "&ndash;" if f is None or not f.weighted else _g(f.birge_ratio, ".2f"),
+                     _g(t.threshold_per_year), _status(t)])
         classes.append("drift" if t.drift_detected else "")
     return rows, classes
 
@@ -131,17 +144,21 @@ def _polarity_and_failed(r: TrendReport) -> str:
 def render_trend_html(report: TrendReport, figures: Sequence[Figure] = ()) -> str:
     """The trend page as one HTML string."""
     name = report.satellite or "(unnamed satellite)"
-    rows, classes = _trend_rows(report)
+    header = ["parameter", "unit", "passes", "rate per year (1-sigma)", "t", "p", "Birge ratio", "threshold per year",
+              "finding"]
+    rows, classes = _trend_rows(report.trends)
+    found_rows, found_classes = _trend_rows([t for t in report.trends if t.significant])
     body = "".join([
         f"<h1>Trend: {_e(name)}</h1>",
         f'<p class="sub">{report.passes} pass(es) from {_e(report.first_utc)} to {_e(report.last_utc)} &middot; '
         f"archive {_e(report.archive)} &middot; recon {_e(__version__)}</p>",
-        _verdict(report), _test(report),
-        "<h2>Parameters</h2>",
-        _table(["parameter", "unit", "passes", "rate per year (1-sigma)", "t", "p", "Birge ratio",
-                "threshold per year", "finding"], rows, "trends", classes) if rows
-        else '<p class="note">No archived pass with figures.</p>',
+        _verdict(report),
+        _table(header, found_rows, "findings", found_classes) if found_rows
+        else "<p>No parameter has a significant trend.</p>",
+        _test(report),
         "<h2>Figures</h2>", _figures(figures),
+        "<h2>All parameters</h2>",
+        _table(header, rows, "trends", classes) if rows else '<p class="note">No archived pass with figures.</p>',
         _weekly(report), _polarity_and_failed(report),
         f'<div class="caution"><strong>Caution.</strong> {_e(CAUTION)}</div>',
     ])

@@ -7,6 +7,8 @@ pass never stops a batch.
 
 from __future__ import annotations
 
+import json
+
 from ..pipeline import run_pass
 from .catalogue import PassRecord
 from .discover import PassTask, failed_record, one_line
@@ -22,7 +24,9 @@ def process_pass(task: PassTask) -> PassRecord:
         if result.pass_id != task.pass_id:
             raise RuntimeError(f"the mission file's pass id changed while the batch ran "
                                f"({task.pass_id!r} -> {result.pass_id!r})")
-        return record_from_summary(result.summary, result.out_dir, mission_file=str(task.mission_file),
+        # the figures as summary.json holds them (10 significant digits), so that the archive and the files agree
+        summary = json.loads((result.out_dir / "summary.json").read_text(encoding="utf-8"))
+        return record_from_summary(summary, result.out_dir, mission_file=str(task.mission_file),
                                    input_hash=task.input_hash, satellite=task.satellite, object_id=task.object_id)
     except Exception as e:  # every failure of one pass is recorded, never raised
         return failed_record(task.pass_id, task.mission_file, task.input_hash, one_line(e),
