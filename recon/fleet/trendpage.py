@@ -80,7 +80,9 @@ def _verdict(r: TrendReport) -> str:
 
 def _test(r: TrendReport) -> str:
     s = r.settings
-    return (f"<p>{_e(TEST_STATEMENT)} Per-parameter false-alarm rate {_g(s.false_alarm_per_parameter)}; "
+    statement = TEST_STATEMENT[0].upper() + TEST_STATEMENT[1:]
+    return (f"<p><strong>The test.</strong> {_e(statement)} Per-parameter false-alarm rate "
+            f"{_g(s.false_alarm_per_parameter)}; "
             f"{r.tested} parameter(s) tested, so the chance of a significant trend anywhere on this page when "
             f"nothing drifts is at most {_g(r.page_false_alarm_bound)} (Bonferroni). A trend needs "
             f"{s.min_passes} passes. Rates are per Julian year from {_e(r.epoch_utc)}.</p>")
