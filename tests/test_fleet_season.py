@@ -63,9 +63,9 @@ def _season_trend(tmp_path, drift: bool):
 @pytest.mark.slow
 def test_twenty_pass_season_finds_the_drifts_at_their_rates(tmp_path):
     """20 passes of 1800 s, 18 days apart (342 days), seed 0: bias drifting (+600, -400, +300) nT/yr and the
-    y coil losing 30 %/yr (-0.456 A m^2/A per yr). Measured once (recon 0.1.0): bias +581 +- 33, -420 +- 13,
-    +297.2 +- 7.7 nT/yr (-3.1 %, +5.0 %, -0.9 %); dipole y -0.477 +- 0.026 A m^2/A per yr (+4.4 %); drifts
-    found in exactly bias x, y, z and dipole y. About 4 minutes on two cores."""
+    y coil losing 30 %/yr (-0.456 A m^2/A per yr). Measured (recon 0.1.0): bias +581 +- 33, -420 +- 13,
+    +297.2 +- 7.7 nT/yr (-3.1 %, +4.9 %, -0.9 %); dipole y -0.477 +- 0.026 A m^2/A per yr (+4.4 %); drifts
+    found in exactly bias x, y, z and dipole y. About 2 minutes on two cores."""
     truth, r = _season_trend(tmp_path, drift=True)
     found = {t.parameter.name: t for t in r.trends}
     expected = {f"bias_{a}_nT": rate for a, rate in zip("xyz", truth["drift"]["bias_nT_per_year"], strict=True)}
@@ -82,8 +82,8 @@ def test_twenty_pass_season_finds_the_drifts_at_their_rates(tmp_path):
 
 @pytest.mark.slow
 def test_twenty_pass_season_without_drift_raises_none(tmp_path):
-    """The same season with nothing drifting. Measured once (recon 0.1.0): no drift; 29 parameters tested;
-    the largest |t| was 2.85 (soft iron xx, p = 0.011, against the 0.001 asked)."""
+    """The same season with nothing drifting. Measured (recon 0.1.0): no drift; 29 parameters tested; the
+    largest |t| was 2.85 (soft iron xx, p = 0.011, against the 0.001 asked). About 2 minutes on two cores."""
     _, r = _season_trend(tmp_path, drift=False)
     assert r.tested >= 25
     assert not r.drift_detected, [t.parameter.name for t in r.drifts]

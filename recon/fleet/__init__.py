@@ -50,6 +50,7 @@ from .discover import PassTask, find_missions, input_hash, plan_pass
 from .linefit import LineFit, fit_line
 from .settings import TrendSettings, load_fleet_file
 from .trend import ParameterTrend, TrendReport, WeeklyAnomalies, build_trend
+from .trendfigures import trend_figures
 from .trendjson import trend_summary
 from .trendpage import render_trend_html, write_trend
 from .worker import process_pass
@@ -60,6 +61,6 @@ __all__ = [
     "PassRecord", "Measurement", "AnomalyRecord", "Parameter", "PARAMETERS", "FAMILIES",
     "PassTask", "find_missions", "input_hash", "plan_pass", "process_pass",
     "LineFit", "fit_line", "TrendSettings", "load_fleet_file",
-    "TrendReport", "ParameterTrend", "WeeklyAnomalies", "build_trend", "trend_summary", "render_trend_html",
-    "write_trend",
+    "TrendReport", "ParameterTrend", "WeeklyAnomalies", "build_trend", "trend_summary", "trend_figures",
+    "render_trend_html", "write_trend",
 ]

@@ -101,9 +101,11 @@ class Archive:
             raise InputError(f"expected a writable archive file, got {e}", self.path) from None
         try:
             self.db.execute("PRAGMA foreign_keys = ON")
-            mode = self.db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-            if str(mode).lower() != "wal":
-                raise InputError(f"expected the archive in WAL mode, the file system gave {mode!r}", self.path)
+            mode = self.db.execute("PRAGMA journal_mode").fetchone()[0]
+            if create and str(mode).lower() != "wal":  # a reader leaves the file as it is
+                mode = self.db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+                if str(mode).lower() != "wal":
+                    raise InputError(f"expected the archive in WAL mode, the file system gave {mode!r}", self.path)
             self._schema(create)
         except sqlite3.DatabaseError as e:
             self.db.close()
