@@ -69,10 +69,11 @@ def test_input_hash_covers_every_named_file(mission_dir):
 def test_plan_pass_turns_a_bad_mission_file_into_a_failed_record(mission_dir):
     ok = plan_pass(mission_dir / "mission.toml", mission_dir, mission_dir / "out")
     assert isinstance(ok, PassTask) and ok.pass_id == "unit-test-pass"
+    _edit(mission_dir, 'id = "unit-test-pass"', 'id = "unit-test-pass"\nsatellite = "sat-a"')
     p = _edit(mission_dir, 'file = "mag.csv"', 'file = "gone.csv"')
     bad = plan_pass(p, mission_dir, mission_dir / "out")
     assert isinstance(bad, PassRecord) and bad.status == "failed"
-    assert bad.pass_id == "unit-test-pass"  # the id is still read from the file
+    assert (bad.pass_id, bad.satellite) == ("unit-test-pass", "sat-a")  # still read from the file
     assert "magnetometer.file" in bad.error and "\n" not in bad.error
     (mission_dir / "mission.toml").write_text("[pass\n")
     worse = plan_pass(mission_dir / "mission.toml", mission_dir, mission_dir / "out")

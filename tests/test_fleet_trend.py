@@ -150,6 +150,11 @@ def test_satellite_choice(tmp_path):
     with pytest.raises(InputError, match=r"expected a satellite in the archive \('sat-a', 'sat-b'\), got 'sat-c'"):
         build_trend(path, "sat-c")
     assert build_trend(path, "sat-b").passes == 5
+    one = tmp_path / "one.sqlite"
+    _season_archive(one, n=5, satellite="sat-a")
+    with Archive(one) as a:  # a pass that failed before its satellite could be read
+        a.write(synthetic_record("file:broken/mission.toml", satellite=None, status="failed"))
+    assert build_trend(one).satellite == "sat-a"  # the only satellite with passes that ran
 
 
 def test_trend_outputs_and_cli(tmp_path, capsys):

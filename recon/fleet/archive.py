@@ -178,9 +178,11 @@ class Archive:
         """Pass id -> (input hash, status) of every archived pass."""
         return {pid: (h, s) for pid, h, s in self.db.execute("SELECT pass_id, input_hash, status FROM passes")}
 
-    def satellites(self) -> list[str | None]:
-        """The satellites in the archive (None for passes that name none), sorted."""
-        rows = self.db.execute("SELECT DISTINCT satellite FROM passes").fetchall()
+    def satellites(self, *, with_ok_pass: bool = False) -> list[str | None]:
+        """The satellites in the archive (None for passes that name none), sorted; with ``with_ok_pass``
+        only those with at least one pass that ran."""
+        where = " WHERE status = 'ok'" if with_ok_pass else ""
+        rows = self.db.execute(f"SELECT DISTINCT satellite FROM passes{where}").fetchall()
         return sorted((r[0] for r in rows), key=lambda s: (s is not None, s or ""))
 
     def records(self, satellite: object = ANY_SATELLITE) -> list[PassRecord]:

@@ -99,20 +99,22 @@ def _bytes_hash(path: Path) -> str:
         return ""
 
 
-def _fallback_id(path: Path, root: Path) -> str:
-    """The id of a pass whose mission file cannot be checked: its ``[pass] id`` if that can be read,
-    else ``file:<path under root>``."""
+def _fallback_names(path: Path, root: Path) -> tuple[str, str | None]:
+    """The id and satellite of a pass whose mission file cannot be checked: its ``[pass] id`` and
+    ``satellite`` if they can be read, else ``file:<path under root>`` and None."""
     try:
-        pid = tomllib.loads(path.read_text(encoding="utf-8")).get("pass", {}).get("id")
+        table = tomllib.loads(path.read_text(encoding="utf-8")).get("pass", {})
+        pid, satellite = table.get("id"), table.get("satellite")
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, AttributeError):
-        pid = None
+        pid = satellite = None
+    satellite = satellite if isinstance(satellite, str) and satellite.strip() else None
     if isinstance(pid, str) and pid.strip() and "/" not in pid and "\\" not in pid:
-        return pid
+        return pid, satellite
     try:
         rel = path.resolve().relative_to(root.resolve()).as_posix()
     except ValueError:
         rel = path.as_posix()
-    return f"file:{rel}"
+    return f"file:{rel}", satellite
 
 
 def failed_record(pass_id: str, mission_file: Path, input_hash_hex: str, error: str, *,
@@ -129,5 +131,6 @@ def plan_pass(path: Path, root: Path, out_root: Path) -> PassTask | PassRecord:
         mission = load_mission(path)
         digest = input_hash(mission)
     except (InputError, OSError) as e:
-        return failed_record(_fallback_id(path, root), path, _bytes_hash(path), one_line(e))
+        pass_id, satellite = _fallback_names(path, root)
+        return failed_record(pass_id, path, _bytes_hash(path), one_line(e), satellite=satellite)
     return PassTask(path, mission.pass_id, digest, Path(out_root).resolve(), mission.satellite, mission.object_id)

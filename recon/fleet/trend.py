@@ -173,9 +173,12 @@ def _choose_satellite(db: Archive, satellite: str | None) -> str | None:
             listed = ", ".join(repr(n) for n in names if n is not None) or "none named"
             raise InputError(f"expected a satellite in the archive ({listed}), got {satellite!r}", key="--satellite")
         return satellite
+    ran = db.satellites(with_ok_pass=True)  # a satellite with failed passes only has no trend to show
+    if len(ran) == 1:
+        return ran[0]
     if len(names) > 1:
-        listed = ", ".join("(unnamed)" if n is None else repr(n) for n in names)
-        raise InputError(f"expected one satellite, the archive holds {len(names)} ({listed}): choose one "
+        listed = ", ".join("(unnamed)" if n is None else repr(n) for n in (ran or names))
+        raise InputError(f"expected one satellite, the archive holds {len(ran or names)} ({listed}): choose one "
                          f"with --satellite", key="--satellite")
     return names[0]
 
