@@ -26,7 +26,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "recon"
 
 # The data flow, lowest first: a stage may import the stages before it, never those after.
 ORDER = ["core", "config", "load", "clean", "orbit", "field", "calibrate", "estimate", "judge", "report",
-         "pipeline", "cli"]
+         "pipeline", "fleet", "cli"]
 # Side branches, what they may import, and who may import them (the command line offers the demo).
 SIDE = {"simulate": {"core", "field", "simulate"}}
 SIDE_USERS = {"simulate": {"cli"}}

@@ -50,6 +50,18 @@ def _pass_window(p: Reader, path: Path) -> tuple[str, np.datetime64 | None, np.d
     return pass_id, start, stop
 
 
+def _pass_names(p: Reader) -> tuple[str | None, str | None]:
+    """The optional ``[pass]`` keys ``satellite`` (which spacecraft) and ``object_id`` (its catalogue number
+    or international designator): non-empty strings on one line, or None when absent."""
+    names = []
+    for key in ("satellite", "object_id"):
+        v = p.string(key, default=None)
+        if v is not None and ("\n" in v or "\r" in v or v != v.strip()):
+            raise p.err(key, f"expected a name on one line without leading or trailing spaces, got {v!r}")
+        names.append(v)
+    return names[0], names[1]
+
+
 def _inertia(sc: Reader) -> np.ndarray:
     """``[spacecraft] inertia_kg_m2``: symmetric and positive definite."""
     inertia = sc.matrix("inertia_kg_m2")
@@ -77,7 +89,9 @@ def load_mission(path: str | Path) -> Mission:
     path = Path(path)
     raw = _read_toml(path)
     top = Reader(path.resolve(), raw, "")
-    pass_id, start, stop = _pass_window(top.sub("pass"), path)
+    pass_r = top.sub("pass")
+    pass_id, start, stop = _pass_window(pass_r, path)
+    satellite, object_id = _pass_names(pass_r)
     inertia = _inertia(top.sub("spacecraft"))
 
     mag = sensor_spec(top.sub("magnetometer"), MAG_UNITS, gyro=False)
@@ -98,4 +112,4 @@ def load_mission(path: str | Path) -> Mission:
 
     return Mission(path=path.resolve(), pass_id=pass_id, start=start, stop=stop, inertia_kg_m2=inertia,
                    magnetometer=mag, gyro=gyro, coils=coils, controller=controller, orbit=orbit,
-                   estimator=estimator, raw=raw)
+                   estimator=estimator, raw=raw, satellite=satellite, object_id=object_id)

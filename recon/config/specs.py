@@ -121,7 +121,11 @@ class EstimatorSpec:
 
 @dataclass(frozen=True)
 class Mission:
-    """A checked mission file. Optional sections are ``None`` when absent."""
+    """A checked mission file. Optional sections are ``None`` when absent.
+
+    ``satellite`` (the spacecraft the pass belongs to) and ``object_id`` (its catalogue number or
+    international designator) come from the optional ``[pass]`` keys of the same names; None when absent.
+    """
 
     path: Path
     pass_id: str
@@ -135,3 +139,5 @@ class Mission:
     orbit: OrbitSpec | None
     estimator: EstimatorSpec
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
+    satellite: str | None = None
+    object_id: str | None = None

@@ -14,6 +14,7 @@ malformed lines, saturation) can be injected; every one is recorded in the truth
 from .api import SimulatedPass, simulate_pass
 from .imperfections import IMPERFECTION_NAMES, Imperfections
 from .scenarios import Fault, SimConfig, list_scenarios
+from .season import Season, SeasonDrift, simulate_season
 
 __all__ = ["simulate_pass", "list_scenarios", "SimulatedPass", "SimConfig", "Fault", "Imperfections",
-           "IMPERFECTION_NAMES"]
+           "IMPERFECTION_NAMES", "simulate_season", "Season", "SeasonDrift"]

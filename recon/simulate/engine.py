@@ -117,6 +117,11 @@ def _hardware(cfg, rng: np.random.Generator, drawn: DrawnImperfections):
                             crosstalk_body_diag_nT_per_A=None if diag is None else np.asarray(diag, float))
     if np.any(drawn.mag_misalignment_rad):
         mag = dataclasses.replace(mag, misalignment_body=Rotation.from_rotvec(drawn.mag_misalignment_rad).as_matrix())
+    if cfg.mag_bias_nT is not None:
+        bias = np.asarray(cfg.mag_bias_nT, float)
+        if bias.shape != (3,) or not np.all(np.isfinite(bias)):
+            raise InputError(f"expected 3 finite numbers (nT), got {cfg.mag_bias_nT!r}", key="mag_bias_nT")
+        mag = dataclasses.replace(mag, bias_nT=bias)
     C_nom = np.asarray(cfg.coil_dipole_per_amp_nominal, float)
     tilt = Rotation.from_rotvec(rng.normal(0.0, cfg.coil_misalignment_sigma_rad, 3)).as_matrix()
     C_hw = tilt @ C_nom @ np.diag(1.0 + rng.normal(0.0, cfg.coil_gain_error_sigma, 3))
@@ -301,6 +306,8 @@ def run_simulation(cfg, seed: int) -> SimulationRun:
     streams = np.random.SeedSequence(seed).spawn(9)
     rng_hw, rng_field, rng_init, rng_dist, rng_mag, rng_gyro, rng_pos, rng_data, rng_imp = (
         np.random.default_rng(s) for s in streams)
+    if cfg.hardware_seed is not None:  # the hardware of the pass simulated with seed hardware_seed
+        rng_hw = np.random.default_rng(np.random.SeedSequence(int(cfg.hardware_seed)).spawn(9)[0])
     t0 = np.datetime64(cfg.start_utc, "ns")
     drawn = (draw_imperfections(cfg.imperfections, cfg.inertia_kg_m2, on_window_s(cfg), rng_imp)
              if cfg.imperfections is not None else ideal_imperfections(cfg.inertia_kg_m2, cfg.unmodelled_rms_nT))

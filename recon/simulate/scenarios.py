@@ -93,6 +93,7 @@ class SimConfig:
     mag_full_scale_nT: float = 200_000.0
     mag_soft_iron_sigma: float = 0.015
     mag_bias_range_nT: tuple = (300.0, 3000.0)
+    mag_bias_nT: tuple | None = None  # explicit bias (3,), sensor frame, instead of the drawn one (a season's drift)
     mag_crosstalk_range_nT_per_A: tuple = (800.0, 2500.0)
     mag_crosstalk_body_diag_nT_per_A: tuple | None = None
     # gyro
@@ -123,6 +124,9 @@ class SimConfig:
     unmodelled_rms_nT: float = 100.0
     # flight-like imperfections (None: the ideal hardware of the bench scenarios)
     imperfections: Imperfections | None = None
+    # the seed of the hardware draws (magnetometer S, bias, K; coil tilt and gains; gyro initial bias); None:
+    # the pass seed. Passes that share it fly the same spacecraft while their noise and motion differ.
+    hardware_seed: int | None = None
     # faults
     faults: tuple = ()
     data_faults: dict = field(default_factory=dict)  # file -> {kind: count}; True: ALL_DATA_FAULTS
