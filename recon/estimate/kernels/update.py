@@ -22,6 +22,20 @@ from .layout import P_SIGM, N
 
 
 @njit(cache=True)
+def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
+    """white = L^-1 innov with S = L L^T (the Cholesky factor of the symmetric 3x3 S, lower)."""
+    l00 = np.sqrt(s00)
+    l10 = s01 / l00
+    l20 = s02 / l00
+    l11 = np.sqrt(s11 - l10 * l10)
+    l21 = (s12 - l20 * l10) / l11
+    l22 = np.sqrt(s22 - l20 * l20 - l21 * l21)
+    white[0] = innov[0] / l00
+    white[1] = (innov[1] - l10 * white[0]) / l11
+    white[2] = (innov[2] - l20 * white[0] - l21 * white[1]) / l22
+
+
+@njit(cache=True)
 def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, white):
     """Vector update in place (work arrays a (3, 3), pht (N, 3), kg (N, 3), dx (N,)); returns NIS.
 
@@ -84,15 +98,7 @@ def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, 
     nis = (innov[0] * (i00 * innov[0] + i01 * innov[1] + i02 * innov[2])
            + innov[1] * (i01 * innov[0] + i11 * innov[1] + i12 * innov[2])
            + innov[2] * (i02 * innov[0] + i12 * innov[1] + i22 * innov[2]))
-    l00 = np.sqrt(s00)
-    l10 = s01 / l00
-    l20 = s02 / l00
-    l11 = np.sqrt(s11 - l10 * l10)
-    l21 = (s12 - l20 * l10) / l11
-    l22 = np.sqrt(s22 - l20 * l20 - l21 * l21)
-    white[0] = innov[0] / l00
-    white[1] = (innov[1] - l10 * white[0]) / l11
-    white[2] = (innov[2] - l20 * white[0] - l21 * white[1]) / l22
+    _whiten(innov, s00, s01, s02, s11, s12, s22, white)
     for i in range(N):
         e0, e1, e2 = pht[i, 0], pht[i, 1], pht[i, 2]
         k0 = e0 * i00 + e1 * i01 + e2 * i02
