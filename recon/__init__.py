@@ -11,6 +11,7 @@ __all__ = [
     "Anomaly", "InputError", "Mission", "load_mission", "__version__",
     "load_pass", "clean_pass", "reference_field", "orbit_at", "calibrate_pass", "estimate_attitude",
     "judge_pass", "run_pass", "inspect_pass", "simulate_pass", "write_aem", "read_aem",
+    "run_batch", "build_trend", "simulate_season",
 ]
 
 _LAZY = {
@@ -18,6 +19,7 @@ _LAZY = {
     "calibrate_pass": "calibrate", "estimate_attitude": "estimate", "judge_pass": "judge",
     "run_pass": "pipeline", "inspect_pass": "pipeline", "simulate_pass": "simulate",
     "write_aem": "report", "read_aem": "report",
+    "run_batch": "fleet", "build_trend": "fleet", "simulate_season": "simulate",
 }
 
 

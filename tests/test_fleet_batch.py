@@ -68,7 +68,10 @@ def test_batch_archives_every_pass_and_the_failure(season, local_batch):
     assert rec.measurement("bias_y_nT").value == pytest.approx(summary["calibration"]["bias_nT"][1], rel=1e-12)
     assert rec.measurement("dipole_per_amp_z").sigma == pytest.approx(
         summary["controller"]["z"]["dipole_per_amp_sigma"], rel=1e-12)
-    assert rec.measurement("misalignment_x_deg").value is None  # not in summary.json yet: NULL, not a guess
+    assert rec.measurement("misalignment_x_deg").value == pytest.approx(
+        summary["calibration"]["misalignment_deg"][0], rel=1e-12)
+    assert rec.measurement("misalignment_x_deg").sigma == pytest.approx(
+        summary["calibration"]["misalignment_deg_sigma"][0], rel=1e-12)
     bias_z = pd.read_csv(out / "attitude.csv")["bias_z_dps"]
     assert rec.measurement("gyro_bias_z_dps").value == pytest.approx(float(np.median(bias_z)), rel=1e-12)
     assert len(rec.anomalies) == len(summary["anomalies"]) and rec.start_utc.startswith("2026-01-19T09:12")

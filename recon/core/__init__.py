@@ -22,6 +22,7 @@ from .coils import (
 )
 from .constants import (
     A_PER_UNIT,
+    DAYS_PER_JULIAN_YEAR,
     DEG_PER_RAD,
     GPS_EPOCH_UTC,
     NS_PER_S,
@@ -63,7 +64,8 @@ from .version import __version__
 __all__ = [
     "constants", "frames",
     "Anomaly", "SEVERITIES", "InputError",
-    "A_PER_UNIT", "DEG_PER_RAD", "GPS_EPOCH_UTC", "IGRF_REFERENCE_RADIUS_km", "MU_EARTH_km3_s2", "MU_EARTH_m3_s2",
+    "A_PER_UNIT", "DAYS_PER_JULIAN_YEAR", "DEG_PER_RAD", "GPS_EPOCH_UTC", "IGRF_REFERENCE_RADIUS_km",
+    "MU_EARTH_km3_s2", "MU_EARTH_m3_s2",
     "NS_PER_S", "NT_PER_T", "NT_PER_UNIT", "OMEGA_EARTH_rad_s", "RAD_PER_DEG", "RAD_S_PER_UNIT", "WGS84_E2",
     "WGS84_F", "WGS84_A_km",
     "body_from_gcrf", "geodetic_to_itrf", "gmst82_rad", "itrf_to_gcrf_matrix", "itrf_to_geodetic", "jd_tt",

@@ -26,6 +26,8 @@ DEG_PER_RAD = 180.0 / 3.141592653589793
 RAD_PER_DEG = 3.141592653589793 / 180.0
 # Time stamps are datetime64[ns]: nanoseconds per second
 NS_PER_S = 1_000_000_000
+# Julian year (IAU: 365.25 days of 86400 s), the unit of every rate of change across a season
+DAYS_PER_JULIAN_YEAR = 365.25
 
 # GPS time origin (ICD-GPS-200: 1980-01-06T00:00:00 UTC, when GPS - UTC = 0)
 GPS_EPOCH_UTC = "1980-01-06T00:00:00"

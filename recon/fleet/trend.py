@@ -15,16 +15,15 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core import InputError, utc_text
+from ..core import DAYS_PER_JULIAN_YEAR, InputError, utc_text
 from .archive import Archive
 from .catalogue import AXES, PARAMETERS, Parameter, PassRecord
 from .linefit import LineFit, fit_line
 from .settings import TrendSettings
 
-__all__ = ["ParameterTrend", "WeeklyAnomalies", "TrendReport", "build_trend", "pass_times", "DAYS_PER_YEAR"]
+__all__ = ["ParameterTrend", "WeeklyAnomalies", "TrendReport", "build_trend", "pass_times"]
 
-DAYS_PER_YEAR = 365.25  # Julian year (IAU), the unit of every rate in the trend
-_NS_PER_YEAR = DAYS_PER_YEAR * 86400e9
+_NS_PER_YEAR = DAYS_PER_JULIAN_YEAR * 86400e9
 
 
 @dataclass(frozen=True)

@@ -18,9 +18,10 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
+from ..core import DAYS_PER_JULIAN_YEAR  # noqa: E402
 from ..report import Figure  # noqa: E402
 from .catalogue import FAMILIES  # noqa: E402
-from .trend import DAYS_PER_YEAR, ParameterTrend, TrendReport  # noqa: E402
+from .trend import ParameterTrend, TrendReport  # noqa: E402
 
 __all__ = ["trend_figures", "short_name"]
 
@@ -41,7 +42,7 @@ def short_name(name: str, family: str) -> str:
 
 
 def _panel(ax, t: ParameterTrend) -> None:
-    days = np.asarray(t.years) * DAYS_PER_YEAR
+    days = np.asarray(t.years) * DAYS_PER_JULIAN_YEAR
     sig = np.array([np.nan if s is None else s for s in t.sigmas], float)
     bars = sig if np.isfinite(sig).any() and t.parameter.has_sigma else None
     ax.errorbar(days, t.values, yerr=bars, fmt="o", ms=3.5, color=_POINTS, ecolor="#8fb0d8", elinewidth=1, capsize=2)
@@ -52,7 +53,7 @@ def _panel(ax, t: ParameterTrend) -> None:
         return
     years = np.array([min(t.years), max(t.years)])
     colour = _DRIFT if t.drift_detected else _LINE
-    ax.plot(years * DAYS_PER_YEAR, f.value_at(years), "-", color=colour, lw=2 if t.drift_detected else 1.2)
+    ax.plot(years * DAYS_PER_JULIAN_YEAR, f.value_at(years), "-", color=colour, lw=2 if t.drift_detected else 1.2)
     flag = "DRIFT " if t.drift_detected else ""
     ax.set_title(f"{flag}{name}: {f.slope:+.3g} ± {f.slope_sigma:.2g} /yr, p = {f.p_value:.2g}", fontsize=9,
                  color=colour if t.drift_detected else "black")

@@ -7,8 +7,8 @@ from typing import Any
 
 import numpy as np
 
-from ..core import __version__, utc_text
-from .trend import DAYS_PER_YEAR, ParameterTrend, TrendReport
+from ..core import DAYS_PER_JULIAN_YEAR, __version__, utc_text
+from .trend import ParameterTrend, TrendReport
 
 __all__ = ["trend_summary", "TEST_STATEMENT"]
 
@@ -20,7 +20,7 @@ TEST_STATEMENT = ("weighted least-squares straight line per parameter (weights 1
 
 def _years_to_utc(epoch_utc: str, years: float) -> str:
     t0 = np.datetime64(epoch_utc.rstrip("Z"), "ns")
-    return utc_text(t0 + np.timedelta64(int(round(years * DAYS_PER_YEAR * 86400e9)), "ns"))
+    return utc_text(t0 + np.timedelta64(int(round(years * DAYS_PER_JULIAN_YEAR * 86400e9)), "ns"))
 
 
 def _parameter(t: ParameterTrend, epoch_utc: str) -> dict[str, Any]:
@@ -55,7 +55,7 @@ def trend_summary(report: TrendReport) -> dict[str, Any]:
                  "parameters_tested": report.tested,
                  "page_false_alarm_bound": report.page_false_alarm_bound,
                  "min_passes": report.settings.min_passes,
-                 "year": f"Julian year ({DAYS_PER_YEAR} days), counted from epoch_utc"},
+                 "year": f"Julian year ({DAYS_PER_JULIAN_YEAR} days), counted from epoch_utc"},
         "settings": dataclasses.asdict(report.settings),
         "drift_detected": report.drift_detected,
         "drifts": [t.parameter.name for t in report.drifts],

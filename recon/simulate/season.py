@@ -26,15 +26,13 @@ from pathlib import Path
 
 import numpy as np
 
-from ..core import NS_PER_S, InputError, utc_text
+from ..core import DAYS_PER_JULIAN_YEAR, NS_PER_S, InputError, utc_text
 from .api import simulate_pass
 from .scenarios import Fault
 from .writer import write_files
 
-__all__ = ["SeasonDrift", "Season", "simulate_season", "SEASON_BIAS0_nT", "DAYS_PER_YEAR"]
+__all__ = ["SeasonDrift", "Season", "simulate_season", "SEASON_BIAS0_nT"]
 
-# Julian year (IAU: 365.25 days of 86400 s); the unit of every season rate
-DAYS_PER_YEAR = 365.25
 # The bias of the season's first pass, sensor frame, nT: inside the simulator's usual 300-3000 nT per axis
 SEASON_BIAS0_nT = (1200.0, -800.0, 500.0)
 
@@ -124,7 +122,7 @@ def simulate_season(n_passes: int, out_dir: str | Path, *, seed: int = 0, drift:
     satellite = satellite or ("demo-steady" if steady else "demo-drift")
     out = Path(out_dir)
     epochs = _epochs(int(n_passes), first_utc, spacing_days)
-    years = (epochs - epochs[0]).astype(np.int64) / NS_PER_S / 86400.0 / DAYS_PER_YEAR
+    years = (epochs - epochs[0]).astype(np.int64) / NS_PER_S / 86400.0 / DAYS_PER_JULIAN_YEAR
     width = max(2, len(str(n_passes)))
     records, paths = [], []
     for k, (t_k, y_k) in enumerate(zip(epochs, years, strict=True)):
