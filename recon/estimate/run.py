@@ -2,6 +2,11 @@
 RTS smoother over a step grid, and the estimate on the output rows as a :class:`Track`.
 
 The model and its references are in :mod:`recon.estimate.kernels`.
+
+References
+----------
+Schweppe, F. C. (1965). Evaluation of likelihood functions for Gaussian signals. IEEE Trans. Inform.
+Theory 11(1), 61-70 (the likelihood from the filter's innovations) (memory).
 """
 
 from __future__ import annotations
@@ -35,7 +40,7 @@ from .kernels import (
 )
 from .types import NoiseModel, Track
 
-__all__ = ["filter_params", "FilterRun", "run_filter", "forward_innovations", "extract_track"]
+__all__ = ["filter_params", "FilterRun", "run_filter", "forward_innovations", "forward_log_likelihood", "extract_track"]
 
 
 def filter_params(noise: NoiseModel, h_nom: float, inertia: np.ndarray | None) -> np.ndarray:
@@ -116,7 +121,7 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
     db_f = np.empty((kk, 3))
     p_f = np.empty((kk, NP))
     nis = np.empty(kk)
-    innov = np.empty((kk, 3))
+    innov = np.empty((kk, 4))
     forward_pass(mode, t, u, is_mag, z, r, prm, np.asarray(init.q_body_from_gcrf, float),
                  np.asarray(init.v, float), np.zeros(3), p0, q_f, v_f, db_f, p_f, nis, innov)
     q_s = np.empty((kk, 4))
@@ -129,20 +134,31 @@ def run_filter(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: n
 
 
 def forward_innovations(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: np.ndarray,
-                        r: np.ndarray, prm: np.ndarray, init: InitialState) -> np.ndarray:
-    """The forward MEKF alone, for its whitened innovations: (K, 3), NaN where there is no update.
+                        r: np.ndarray, prm: np.ndarray, init: InitialState, log_det: bool = False) -> np.ndarray:
+    """The forward MEKF alone, for its whitened innovations: (K, 3), NaN where there is no update
+    (with ``log_det``: (K, 4), the fourth column log det S of each update, S in nT^2).
 
     Their sum of squares is the sum of the NIS, minus twice the log-likelihood of the measurements up
     to the log-determinant terms: what a maximum-likelihood fit of parameters around the filter
-    minimises (Gauss-Newton on the stacked whitened innovations).
+    minimises (Gauss-Newton on the stacked whitened innovations). A fit of the noise levels needs the
+    log-determinants too (:func:`forward_log_likelihood`).
     """
     kk = len(t)
     p0 = _initial_covariance(init, prm)
-    white = np.empty((kk, 3))
+    white = np.empty((kk, 4))
     forward_pass(mode, t, u, is_mag, z, r, prm, np.asarray(init.q_body_from_gcrf, float), np.asarray(init.v, float),
                  np.zeros(3), p0, np.empty((kk, 4)), np.empty((kk, 3)), np.empty((kk, 3)), np.empty((kk, NP)),
                  np.empty(kk), white)
-    return white
+    return white if log_det else white[:, :3]
+
+
+def forward_log_likelihood(mode: int, t: np.ndarray, u: np.ndarray, is_mag: np.ndarray, z: np.ndarray,
+                           r: np.ndarray, prm: np.ndarray, init: InitialState) -> float:
+    """-2 log-likelihood of the magnetometer updates under the filter's model, without the constant:
+    the sum over updates of NIS + log det S (the prediction-error decomposition; Schweppe 1965)."""
+    white = forward_innovations(mode, t, u, is_mag, z, r, prm, init, log_det=True)
+    ok = np.isfinite(white).all(axis=1)
+    return float(np.sum(white[ok, :3] ** 2) + np.sum(white[ok, 3]))
 
 
 def _initial_covariance(init: InitialState, prm: np.ndarray) -> np.ndarray:

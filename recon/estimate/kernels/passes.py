@@ -29,7 +29,7 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
 
     Outputs (filled): q_out (K, 4), v_out (K, 3), db_out (K, 3), p_out (K, NP) the covariance after
     the update at each step, upper triangle row by row (see :func:`unpack_covariance`); nis_out (K,)
-    and innov_out (K, 3) the whitened innovations (``L^-1 (z - h(x))``, S = L L^T: each update's
+    and innov_out (K, 4) the whitened innovations (``L^-1 (z - h(x))``, S = L L^T) and log det S (each update's
     contribution to the likelihood), NaN where there is no update.
     """
     kk = t.shape[0]
@@ -45,7 +45,7 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
     kg = np.empty((N, 3))
     dx = np.empty(N)
     innov = np.empty(3)
-    white = np.empty(3)
+    white = np.empty(4)
     for k in range(kk):
         if k > 0:
             predict_into(mode, k - 1, q, v, db, t, u, r, prm, p, q2, v2, db2, m, p2, blk, w3, phi, qd)
@@ -61,11 +61,13 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
             innov_out[k, 0] = white[0]
             innov_out[k, 1] = white[1]
             innov_out[k, 2] = white[2]
+            innov_out[k, 3] = white[3]
         else:
             nis_out[k] = np.nan
             innov_out[k, 0] = np.nan
             innov_out[k, 1] = np.nan
             innov_out[k, 2] = np.nan
+            innov_out[k, 3] = np.nan
         for i in range(4):
             q_out[k, i] = q[i]
         for i in range(3):

@@ -81,17 +81,18 @@ def _field_decay(dt, prm):
 
 
 @njit(cache=True)
-def _gyro_noise(dt, s0, extra, prm, rate_var=0.0):
+def _gyro_noise(dt, s0, extra, prm, rate_psd=0.0):
     """Discrete Q coefficients (a11, a12, a22) of one gyro step (see the module docstring).
 
     s0: time since the held gyro sample was taken, at the start of the step; extra: added bias
-    variance (a bias step allowed at this step, rad^2/s^2); rate_var: variance of the rate used over
-    the step beyond the gyro's own noise ((rad/s)^2, per axis: a clipped axis reconstructed from the
-    magnetometer), which adds ``rate_var dt^2`` of attitude variance (an error held over the step).
+    variance (a bias step allowed at this step, rad^2/s^2); rate_psd: spectral density of the error of
+    the rate used over the step beyond the gyro's own noise (rad^2/s, per axis: a clipped axis
+    reconstructed from the magnetometer, whose error is correlated over seconds and counted as a
+    density), which adds ``rate_psd dt`` of attitude variance.
     """
     sv2 = prm[P_SV] * prm[P_SV]
     su2 = prm[P_SU] * prm[P_SU]
-    a11 = sv2 * dt + su2 * dt * dt * dt / 3.0 + rate_var * dt * dt
+    a11 = sv2 * dt + su2 * dt * dt * dt / 3.0 + rate_psd * dt
     # growth of error while a gyro sample is held past its nominal interval h (a gap): the held
     # sample's own noise (variance sv^2/h, times s^2) and an unknown steady angular acceleration
     # (error acc s^2 / 2, variance acc^2 s^4 / 4)
@@ -110,8 +111,8 @@ def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
     """One gyro-mode step, reference form: returns (q_next, beta_next, db_next) and fills the full
     Phi and Q (N x N). ``u = [w_meas (3), s0, extra]``: the held gyro sample (rad/s, body), the time
     since it was taken (s) and an extra bias variance for this step (rad^2/s^2, zero except where a
-    bias jump was found) and, optionally, u[5] the extra rate variance of a reconstructed sample
-    ((rad/s)^2). The passes use the same formulas through :func:`predict_into`.
+    bias jump was found) and, optionally, u[5] the spectral density of a reconstructed sample's rate
+    error (rad^2/s). The passes use the same formulas through :func:`predict_into`.
     """
     w = np.empty(3)
     for i in range(3):

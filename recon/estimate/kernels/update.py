@@ -23,7 +23,8 @@ from .layout import P_SIGM, N
 
 @njit(cache=True)
 def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
-    """white = L^-1 innov with S = L L^T (the Cholesky factor of the symmetric 3x3 S, lower)."""
+    """white[:3] = L^-1 innov with S = L L^T (the Cholesky factor of the symmetric 3x3 S, lower);
+    white[3] = log det S = 2 log(l00 l11 l22)."""
     l00 = np.sqrt(s00)
     l10 = s01 / l00
     l20 = s02 / l00
@@ -33,14 +34,16 @@ def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
     white[0] = innov[0] / l00
     white[1] = (innov[1] - l10 * white[0]) / l11
     white[2] = (innov[2] - l20 * white[0] - l21 * white[1]) / l22
+    white[3] = 2.0 * np.log(l00 * l11 * l22)
 
 
 @njit(cache=True)
 def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, white):
     """Vector update in place (work arrays a (3, 3), pht (N, 3), kg (N, 3), dx (N,)); returns NIS.
 
-    ``innov`` receives the innovation ``z - h(x)`` (nT) and ``white`` the whitened innovation
-    ``L^-1 (z - h(x))`` with ``S = L L^T`` (Cholesky), whose squared length is the NIS.
+    ``innov`` receives the innovation ``z - h(x)`` (nT) and ``white`` (4,) the whitened innovation
+    ``L^-1 (z - h(x))`` with ``S = L L^T`` (Cholesky), whose squared length is the NIS, then
+    ``log det S`` (S in nT^2): the two terms of the update's contribution to -2 log-likelihood.
 
     ``h(x) = A(q) (b_ref + db)``, ``H = [[h x], 0, A]``, ``R = sig_m^2 I``. The covariance update is Joseph's form
     ``(I - K H) P (I - K H)^T + K R K^T``, evaluated as ``P - K (H P) - (K (H P))^T + K S K^T``, which
@@ -138,6 +141,6 @@ def vector_update(q, v, db, p, z, b_ref, prm, innov):
     vn = np.empty(3)
     dbn = np.empty(3)
     nis = update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, np.empty((3, 3)), np.empty((N, 3)),
-                       np.empty((N, 3)), np.empty(N), np.empty(3))
+                       np.empty((N, 3)), np.empty(N), np.empty(4))
     return qn, vn, dbn, nis
 
