@@ -8,13 +8,22 @@ axes, by weighted least squares from what is still known there:
 - the measured field's kinematics: in body axes ``db/dt = -w x b + A db_ref/dt``, so
   ``[b x] w = db/dt - A db_ref/dt`` gives the two components of w across the field (the slope of the
   field over one second, with the magnetometer's noise);
-- the rate interpolated between the unclipped samples that bound the clipped run, with an uncertainty
-  growing with the distance to the nearer bound at the pass's typical angular acceleration (it
-  carries the component along the field when the other two say nothing of it).
+- the rate carried through the clipped run by Euler's equations from the unclipped samples that bound
+  it, with the covariance the inertia's and the torque's uncertainty give it (:mod:`.euler_prior`; it
+  carries the component along the field when the other two say nothing of it). Without an inertia,
+  the rate interpolated between those samples, with an uncertainty growing with the distance to the
+  nearer one at the pass's typical angular acceleration (it cannot see a rate beyond the range, so
+  it is a poorer stand-in).
 
 The clipped components of the sample are replaced by the solution (held to the bound: a solution that
-falls inside the range is set to the full scale), and the solution's variance is returned per sample
-for the filter to add to its attitude process noise while it uses that sample. With no attitude yet
+falls inside the range is set to the full scale). The solution's error is not white: across the field
+it comes from the field's slope over ``2 SLOPE_HALF_WIDTH_S`` seconds, along the field from the
+interpolation across the whole clipped run, so it is nearly the same from one sample to the next over
+those times. An error of variance ``s^2`` held for a time ``tau`` turns the attitude as much as white
+noise of density ``2 s^2 tau`` would over the same time, so each sample carries the density
+``2 max(s_along^2 tau_along, s_across^2 tau_across)`` (``tau_along`` half the clipped run,
+``tau_across`` the slope's window) for the filter to add to its attitude process noise while it uses
+that sample. With no attitude yet
 the field's own turn ``A db_ref/dt`` is left out (about 80 nT/s against the several thousand of a fast
 tumble); the caller solves again with the filter's attitude and bias.
 
@@ -33,6 +42,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from ..core import NS_PER_S, cross_matrices, local_slope, white_noise_from_differences
+from .euler_prior import euler_prior
 from .types import NoiseModel, PassInputs
 
 __all__ = ["ClippedGyro", "reconstruct_clipped", "with_clipped_solved", "SLOPE_HALF_WIDTH_S"]
@@ -48,35 +58,37 @@ class ClippedGyro:
     Attributes
     ----------
     w_body_rad_s : (G, 3) the gyro (bias included, as logged) with clipped components replaced, body axes
-    extra_var_rad2_s2 : (G,) variance of each sample's rate beyond the gyro's white noise (largest body
-        axis), (rad/s)^2; zero on unclipped samples
+    extra_psd_rad2_s : (G,) spectral density of each sample's rate error beyond the gyro's white noise
+        (see the module docstring), rad^2/s; zero on unclipped samples
     clipped_samples : int; clipped_fraction : float, of the gyro samples
     note : str
     """
 
     w_body_rad_s: np.ndarray
-    extra_var_rad2_s2: np.ndarray
+    extra_psd_rad2_s: np.ndarray
     clipped_samples: int
     clipped_fraction: float
     note: str
 
 
 def _bounds_prior(t: np.ndarray, w_true: np.ndarray, clipped_any: np.ndarray, accel_rms: float):
-    """Rate interpolated between the unclipped samples around each clipped one, and its variance."""
+    """Rate interpolated between the unclipped samples around each clipped one, its variance, and the
+    length of the clipped run each sample is in, s."""
     good = np.flatnonzero(~clipped_any)
     if len(good) < 2:
-        return np.zeros_like(w_true), np.full(len(t), np.inf)
+        return np.zeros_like(w_true), np.full(len(t), np.inf), np.full(len(t), float(t[-1] - t[0]))
     prior = np.column_stack([np.interp(t, t[good], w_true[good, a]) for a in range(3)])
     k = np.clip(np.searchsorted(t[good], t), 1, len(good) - 1)
     d = np.minimum(np.abs(t - t[good[k - 1]]), np.abs(t[good[k]] - t))
-    return prior, (accel_rms * np.maximum(d, 1e-3)) ** 2
+    return prior, (accel_rms * np.maximum(d, 1e-3)) ** 2, t[good[k]] - t[good[k - 1]]
 
 
 def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_sensor: np.ndarray,
                         sensor_to_body: np.ndarray, full_scale_rad_s: float, t_mag_s: np.ndarray,
                         b_body_nT: np.ndarray, sigma_mag_nT: float, arw_rad_sqrt_s: float, accel_rms_rad_s2: float,
                         *, beta_body_rad_s: np.ndarray | None = None, q_body_from_gcrf: np.ndarray | None = None,
-                        b_ref_gcrf_nT: np.ndarray | None = None) -> ClippedGyro:
+                        b_ref_gcrf_nT: np.ndarray | None = None, inertia_kg_m2: np.ndarray | None = None,
+                        m_body_Am2: np.ndarray | None = None) -> ClippedGyro:
     """Solve the clipped axes of a gyro log (see the module docstring).
 
     Parameters
@@ -89,6 +101,9 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
     beta_body_rad_s : (G, 3) the gyro's bias at its samples (default zero)
     q_body_from_gcrf, b_ref_gcrf_nT : (N, 4), (N, 3) attitude and reference field at the magnetometer
         samples, for the field's own turn (left out without them)
+    inertia_kg_m2 : (3, 3) nominal inertia, for Euler's equations through a clipped run (the bounds'
+        interpolation without it); m_body_Am2 : (G, 3) the coils' dipole at the gyro samples (zero
+        without it)
 
     Returns
     -------
@@ -101,18 +116,23 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
     m = np.asarray(sensor_to_body, float)
     beta = np.zeros((len(t_gyro_s), 3)) if beta_body_rad_s is None else np.asarray(beta_body_rad_s, float)
     w_true_logged = np.asarray(w_gyro_body, float) - beta
-    prior, prior_var = _bounds_prior(t_gyro_s, w_true_logged, clipped_any, accel_rms_rad_s2)
-    c, c_var = _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t_gyro_s[clipped_any], q_body_from_gcrf,
-                                 b_ref_gcrf_nT)
+    prior, prior_var, run_s = _bounds_prior(t_gyro_s, w_true_logged, clipped_any, accel_rms_rad_s2)
     dt = float(np.median(np.diff(t_gyro_s)))
     g_var = (arw_rad_sqrt_s or 1e-4) ** 2 / dt
+    prior_cov = np.eye(3)[None] * prior_var[:, None, None]
+    if inertia_kg_m2 is not None:
+        b_at = _field_at(t_gyro_s, t_mag_s, b_body_nT)
+        m_at = np.zeros((len(t_gyro_s), 3)) if m_body_Am2 is None else m_body_Am2
+        prior, prior_cov = euler_prior(t_gyro_s, w_true_logged, clipped_any, inertia_kg_m2, m_at, b_at, g_var)
+    c, c_var = _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t_gyro_s[clipped_any], q_body_from_gcrf,
+                                 b_ref_gcrf_nT)
     idx = np.flatnonzero(clipped_any)
     w_out = np.asarray(w_gyro_body, float).copy()
     extra = np.zeros(len(t_gyro_s))
     w_sensor_logged = w_out @ m  # rows of M^T w
     for k, g in enumerate(idx):
-        info = np.eye(3) / prior_var[g]
-        rhs = prior[g] / prior_var[g]
+        info = np.linalg.inv(prior_cov[g]) if np.all(np.isfinite(prior_cov[g])) else np.zeros((3, 3))
+        rhs = info @ prior[g]
         bx, d = c[k]
         if np.all(np.isfinite(bx)) and np.all(np.isfinite(d)):
             info += bx.T @ bx / c_var[k]
@@ -128,13 +148,33 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
             sign = np.sign(w_sensor_logged[g, j])
             w_sensor_logged[g, j] = sign * max(sign * w_sensor[j], full_scale_rad_s)
         w_out[g] = m @ w_sensor_logged[g]
-        extra[g] = float(np.max(np.diag(cov)))
+        # along the field the error is the interpolation's, the same over the run; across it the slope's
+        along = _field_unit(bx) if np.all(np.isfinite(bx)) else np.zeros(3)
+        var_along = float(along @ cov @ along) if along.any() else float(np.max(np.diag(cov)))
+        var_across = max(float(np.trace(cov)) - var_along, 0.0) / 2.0
+        extra[g] = 2.0 * max(var_along * max(0.5 * run_s[g], 2.0 * SLOPE_HALF_WIDTH_S),
+                             var_across * 2.0 * SLOPE_HALF_WIDTH_S)
     frac = n / len(t_gyro_s)
     note = (f"{n} gyro samples ({100 * frac:.1f} %) had an axis at full scale "
             f"({np.degrees(full_scale_rad_s):.3g} deg/s); "
             f"their clipped axes were solved from the field's kinematics and the unclipped axes (median "
-            f"1-sigma {np.degrees(np.sqrt(np.median(extra[idx]))):.3f} deg/s)")
+            f"rate error {np.degrees(np.sqrt(np.median(extra[idx]))):.3g} deg/sqrt(s))")
     return ClippedGyro(w_out, extra, n, frac, note)
+
+
+def _field_at(t_query: np.ndarray, t_mag_s: np.ndarray, b_body_nT: np.ndarray) -> np.ndarray:
+    """The measured field interpolated to the query times (zero where there is none)."""
+    ok = np.all(np.isfinite(b_body_nT), axis=1)
+    if not ok.any():
+        return np.zeros((len(t_query), 3))
+    return np.column_stack([np.interp(t_query, t_mag_s[ok], b_body_nT[ok, a]) for a in range(3)])
+
+
+def _field_unit(bx: np.ndarray) -> np.ndarray:
+    """The field's unit vector from its cross-product matrix [b x]."""
+    b = np.array([bx[2, 1], bx[0, 2], bx[1, 0]])
+    n = float(np.linalg.norm(b))
+    return b / n if n > 0 else np.zeros(3)
 
 
 def _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t_query, q, b_ref):
@@ -175,6 +215,7 @@ def with_clipped_solved(inputs: PassInputs, noise: NoiseModel, *, beta_gyro_body
     rec = reconstruct_clipped(t_g, c.w_logged_body_rad_s, c.clipped_sensor, c.sensor_to_body, c.full_scale_rad_s,
                               t_m[ok], inputs.b_body_nT[ok], sigma_mag, arw, max(accel, 1e-4),
                               beta_body_rad_s=beta_gyro_body, q_body_from_gcrf=None if q_mag is None else q_mag[ok],
-                              b_ref_gcrf_nT=None if q_mag is None else inputs.b_ref_gcrf_nT[ok])
-    return dataclasses.replace(inputs, w_gyro_body_rad_s=rec.w_body_rad_s, gyro_extra_var=rec.extra_var_rad2_s2,
+                              b_ref_gcrf_nT=None if q_mag is None else inputs.b_ref_gcrf_nT[ok],
+                              inertia_kg_m2=c.inertia_kg_m2, m_body_Am2=c.m_body_Am2)
+    return dataclasses.replace(inputs, w_gyro_body_rad_s=rec.w_body_rad_s, gyro_extra_psd=rec.extra_psd_rad2_s,
                                gyro_clipping=dataclasses.replace(c, note=rec.note))
