@@ -8,6 +8,9 @@ axes, is invisible to a magnitude-only calibration. The gyro reads ``w_g = (I + 
 symmetric (scale factors on the diagonal, non-orthogonality off it). Both show when the body turns: the
 field measured in body axes and the field carried along by the gyro disagree unless theta and E are
 right (in body axes ``db/dt = -w x b + A db_ref/dt``). A late magnetometer stamp shows the same way.
+The part of the unmodelled field that stays put over the pass (a constant vector in GCRF, the "field"
+block) is not fitted (tried: it traded against the misalignment and the scale, and made the attitude
+worse on two of three simulated tumbling passes); its uncertainty is carried as a consider term.
 
 The filter's whitened innovations ``e_k = L_k^-1 (z_k - h_k)`` (S_k = L_k L_k^T) are the measurements'
 likelihood: ``-2 ln L = sum |e_k|^2 + sum ln det S_k + const``. Their sum of squares is minimised over
@@ -45,7 +48,7 @@ DETERMINED_SHRINK = 4.0
 GAUSS_NEWTON_STEPS = 3
 # Forward-difference step, as a fraction of each parameter's prior sigma.
 DIFFERENCE_STEP = 0.1
-BLOCK_SIZE = {"theta": 3, "scale": 6, "time": 1}
+BLOCK_SIZE = {"theta": 3, "scale": 6, "time": 1, "field": 3}
 
 
 @dataclass(frozen=True)
@@ -60,6 +63,8 @@ class AlignmentPrior:
     skew_sigma : float, gyro non-orthogonality, per pair of axes
     time_offset_sigma_s : float or None, the magnetometer's time-tag offset (None: not estimated here,
         the control law already gave it)
+    field_sigma_nT : float, per GCRF axis, the constant part of the unmodelled field over the pass
+        (the caller sets it from the fitted level of the unmodelled field)
     """
 
     misalignment_rad: np.ndarray = field(default_factory=lambda: np.zeros(3))
@@ -67,6 +72,7 @@ class AlignmentPrior:
     scale_sigma: float = 0.03
     skew_sigma: float = 0.01
     time_offset_sigma_s: float | None = None
+    field_sigma_nT: float = 100.0 / np.sqrt(3.0)
 
     @classmethod
     def from_mission(cls, mission, time_offset_known: bool = True) -> AlignmentPrior:
@@ -85,6 +91,8 @@ class AlignmentPrior:
             return np.asarray(self.misalignment_rad, float), np.full(3, self.misalignment_sigma_rad)
         if name == "scale":
             return np.zeros(6), np.r_[np.full(3, self.scale_sigma), np.full(3, self.skew_sigma)]
+        if name == "field":
+            return np.zeros(3), np.full(3, self.field_sigma_nT)
         return np.zeros(1), np.full(1, self.time_offset_sigma_s or 0.3)
 
 
@@ -111,6 +119,8 @@ class AlignmentFit:
     scale_kept : bool; scale_gain : float, chi-square gained by the scale terms; scale_penalty : float
     chi2_per_dof : float, Birge ratio of the innovations; equations : int
     theta_shrink : (3,) prior variance over posterior variance per axis (>= 4: the data determine it)
+    scale_cov_fitted : (6, 6) the gyro scale's covariance in the fit that had it, kept or not: what
+        the pass says about the scale (near the prior when it cannot see it)
     """
 
     x: np.ndarray
@@ -122,6 +132,7 @@ class AlignmentFit:
     chi2_per_dof: float
     equations: int
     theta_shrink: np.ndarray
+    scale_cov_fitted: np.ndarray
 
     def part(self, name: str) -> tuple[np.ndarray, np.ndarray] | None:
         """One block's values and covariance, or None when the block was not fitted."""
@@ -143,6 +154,11 @@ class AlignmentFit:
     def E(self) -> np.ndarray:
         p = self.part("scale")
         return np.zeros((3, 3)) if p is None else sym_from_six(p[0])
+
+    @property
+    def field_offset_nT(self) -> np.ndarray:
+        p = self.part("field")
+        return np.zeros(3) if p is None else p[0]
 
     @property
     def time_offset_s(self) -> float:
@@ -205,7 +221,8 @@ def fit_alignment(evaluate: Callable[[dict], np.ndarray], prior: AlignmentPrior)
     birge = max(chi / max(n - len(x), 1), 1.0)
     cov = np.linalg.inv(info) * birge
     shrink = prior.misalignment_sigma_rad ** 2 / np.diag(cov)[:3]
-    return AlignmentFit(x, cov, blocks, kept, float(gain), penalty, birge, n, shrink)
+    scale_cov = (np.linalg.inv(i1) * max(chi1 / max(n - len(x1), 1), 1.0))[3:9, 3:9]  # ("theta", "scale", ...)
+    return AlignmentFit(x, cov, blocks, kept, float(gain), penalty, birge, n, shrink, scale_cov)
 
 
 @dataclass(frozen=True)

@@ -42,7 +42,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import NS_PER_S, InputError, white_noise_from_differences
+from ..core import NS_PER_S, InputError, held_values, white_noise_from_differences
 from .alignment import AlignmentPrior
 from .clipping import with_clipped_solved
 from .consistency import consistency_anomaly
@@ -140,7 +140,9 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
                         w_gyro)
     if clipped is not None and clipped.any() and gyro_sensor_to_body is not None and gyro_full_scale_rad_s:
         inputs = with_clipped_solved(dataclasses.replace(inputs, gyro_clipping=GyroClipping(
-            w_gyro, clipped, np.asarray(gyro_sensor_to_body, float), float(gyro_full_scale_rad_s))), noise)
+            w_gyro, clipped, np.asarray(gyro_sensor_to_body, float), float(gyro_full_scale_rad_s),
+            inertia_kg_m2=None if inertia_kg_m2 is None else _inertia(inertia_kg_m2),
+            m_body_Am2=_coil_dipole_at(t_gyro_ns, coil_t_utc, i_coil_A, dipole_per_amp))), noise)
     if noise.mag_nT is None and field_residual_rms_nT is not None:
         noise = dataclasses.replace(noise, mag_nT=white_noise_from_differences(b_body_nT[inputs.usable]))
     noise, raised = field_model_from_residual(noise, field_residual_rms_nT)
@@ -155,7 +157,7 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         hist = estimate_dynamics(inputs, noise, inertia_kg_m2, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
                                  init_window_s, report, check=choice.check)
     hist = dataclasses.replace(hist, mode_reason=choice.reason, anomalies=choice.anomalies + tuple(hist.anomalies))
-    if raised:
+    if raised and hist.noise_source.field_model_nT in (None, "given"):  # not fitted on the pass
         hist = dataclasses.replace(hist, noise_source=dataclasses.replace(hist.noise_source,
                                                                           field_model_nT="calibration |b| residual"))
     inconsistent = consistency_anomaly(hist)
@@ -163,6 +165,16 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         hist = dataclasses.replace(hist, anomalies=hist.anomalies + (inconsistent,))
     report("done", 1.0)
     return hist
+
+
+def _coil_dipole_at(t_ns: np.ndarray, coil_t_utc, i_coil_A, dipole_per_amp) -> np.ndarray | None:
+    """The coils' dipole C i at the given times (current held from each log row; zero before the log
+    and where a current is missing), A m^2; None without a coil log."""
+    if coil_t_utc is None or i_coil_A is None or dipole_per_amp is None:
+        return None
+    t_coil = _times_ns(coil_t_utc, "coil_t_utc")
+    i = held_values(t_coil, np.asarray(i_coil_A, float), t_ns)
+    return np.nan_to_num(i) @ np.asarray(dipole_per_amp, float).T
 
 
 # ------------------------------------------------------------------------------------ input checks

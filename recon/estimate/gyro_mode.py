@@ -25,132 +25,17 @@ from ..core import DEG_PER_RAD, NS_PER_S, held_mean, utc_text
 from .alignment import AlignmentFit, AlignmentPrior, AlignmentResult, fit_alignment, sym_from_six
 from .bias_step import BiasStep, find_bias_step
 from .clipping import with_clipped_solved
+from .field_noise import FieldNoiseFit, fit_field_noise
 from .initial import InitialState, carry_back_with_gyro, initial_state_with_gyro
 from .iterate import iterate_smoothing, state_at
-from .kernels import MODE_GYRO
+from .kernels import MODE_GYRO, P_SIGF, P_TAUF
 from .noise import resolve_noise
 from .nuisance import Corrections, consider_covariance, corrected_inputs, with_consider
-from .run import FilterRun, extract_track, filter_params, forward_innovations, run_filter
+from .run import FilterRun, extract_track, filter_params, forward_innovations, forward_log_likelihood, run_filter
+from .step_grid import StepGrid, bias_step_inputs, step_grid
 from .types import AttitudeHistory, FilterStart, NoiseModel, PassInputs
 
-__all__ = ["StepGrid", "step_grid", "step_rates", "bias_step_inputs", "estimate_gyro", "GyroSolution"]
-
-
-@dataclass(frozen=True)
-class StepGrid:
-    """The gyro-mode step grid: every gyro and every magnetometer time stamp from the filter's start on.
-
-    Attributes
-    ----------
-    t_epoch_ns : int, the filter's start (a magnetometer time stamp), ns since 1970 (UTC)
-    first_row : int, magnetometer rows before this one come before the gyro log and are not used
-    t_s : (K,) s since the epoch, the steps
-    u : (K, 6) per-step gyro inputs: the rate over the step (rad/s, body; see :func:`step_rates`),
-        time since the last gyro sample (s), extra bias variance ((rad/s)^2, zero here), extra rate
-        variance ((rad/s)^2, zero here)
-    is_mag : (K,) bool, steps with a magnetometer update
-    z : (K, 3) nT body; r : (K, 3) nT GCRF, measured and reference field at the magnetometer steps
-    mag_pos : (M,) step of each magnetometer row from first_row on
-    t_gyro_s : (G,) s since the epoch, gyro time stamps
-    dt_gyro_s : float, median gyro interval, s
-    """
-
-    t_epoch_ns: int
-    first_row: int
-    t_s: np.ndarray
-    u: np.ndarray
-    is_mag: np.ndarray
-    z: np.ndarray
-    r: np.ndarray
-    mag_pos: np.ndarray
-    t_gyro_s: np.ndarray
-    dt_gyro_s: float
-
-
-def step_grid(inputs: PassInputs) -> StepGrid:
-    """Steps at every gyro and every magnetometer time stamp in [start, last magnetometer row].
-
-    The filter starts at the first magnetometer row that has a gyro sample within two gyro intervals
-    (before it, the first gyro sample is held backwards); earlier magnetometer rows are not used.
-    """
-    t_mag_ns, t_gyro_ns, w_gyro = inputs.t_mag_ns, inputs.t_gyro_ns, inputs.w_gyro_body_rad_s
-    dt_g_ns = int(np.median(np.diff(t_gyro_ns)))
-    first = int(np.searchsorted(t_mag_ns, t_gyro_ns[0] - 2 * dt_g_ns))
-    t_epoch = t_mag_ns[first]
-    t_mag_used = t_mag_ns[first:]
-    t_gyro_in = t_gyro_ns[(t_gyro_ns >= t_epoch) & (t_gyro_ns <= t_mag_used[-1])]
-    steps = np.union1d(t_gyro_in, t_mag_used)
-    t = (steps - t_epoch) / NS_PER_S
-    mag_pos = np.searchsorted(steps, t_mag_used)
-    is_mag = np.zeros(len(steps), bool)
-    is_mag[mag_pos[inputs.usable[first:]]] = True
-    z = np.zeros((len(steps), 3))
-    r = np.zeros((len(steps), 3))
-    z[mag_pos] = np.nan_to_num(inputs.b_body_nT[first:])
-    r[mag_pos] = np.nan_to_num(inputs.b_ref_gcrf_nT[first:])
-    t_gyro_s = (t_gyro_ns - t_epoch) / NS_PER_S
-    j = np.clip(np.searchsorted(t_gyro_ns, steps, side="right") - 1, 0, len(t_gyro_ns) - 1)
-    u = np.zeros((len(steps), 6))
-    u[:, :3] = step_rates(t_gyro_s, w_gyro, t, dt_g_ns / NS_PER_S)
-    u[:, 3] = t - t_gyro_s[j]
-    if inputs.gyro_extra_var is not None:  # a clipped axis solved from the field: its own uncertainty
-        extra = inputs.gyro_extra_var
-        u[:, 5] = np.maximum(extra[j], extra[np.minimum(j + 1, len(extra) - 1)])
-    return StepGrid(t_epoch, first, t, u, is_mag, z, r, mag_pos, t_gyro_s, dt_g_ns / NS_PER_S)
-
-
-def step_rates(t_gyro_s: np.ndarray, w_gyro: np.ndarray, t_steps_s: np.ndarray, dt_nominal_s: float) -> np.ndarray:
-    """The gyro rate each propagation step uses: the gyro linearly interpolated to the step's midpoint
-    (the trapezoid rule over the step: the mean of a rate that moves linearly between two samples),
-    or the last sample held where the gyro log has a gap (consecutive samples more than two nominal
-    intervals apart). The last step repeats the one before it.
-
-    Parameters
-    ----------
-    t_gyro_s : (G,) s; w_gyro : (G, 3) rad/s; t_steps_s : (K,) s; dt_nominal_s : float, s
-
-    Returns
-    -------
-    (K, 3) rad/s
-    """
-    mid = np.empty_like(t_steps_s)
-    mid[:-1] = 0.5 * (t_steps_s[1:] + t_steps_s[:-1])
-    mid[-1] = t_steps_s[-1]
-    j = np.clip(np.searchsorted(t_gyro_s, mid, side="right") - 1, 0, len(t_gyro_s) - 1)
-    j1 = np.minimum(j + 1, len(t_gyro_s) - 1)
-    span = t_gyro_s[j1] - t_gyro_s[j]
-    inside = (j1 > j) & (span <= 2.0 * dt_nominal_s) & (mid >= t_gyro_s[j])
-    f = np.where(inside, (mid - t_gyro_s[j]) / np.where(span > 0, span, 1.0), 0.0)
-    return w_gyro[j] + f[:, None] * (w_gyro[j1] - w_gyro[j])
-
-
-def bias_step_inputs(t: np.ndarray, u: np.ndarray, step: BiasStep) -> np.ndarray:
-    """Per-step gyro inputs with the bias free to move over the step's time interval.
-
-    The extra bias variance ``|2 delta|^2`` (rad/s)^2 per axis (twice the found change, so the filter
-    is not held to the estimate) is spread over the propagation intervals that overlap
-    ``[t_lo_s, t_hi_s]`` in proportion to the overlap, a random walk confined to the interval in
-    which the step happened; an interval of zero length puts it all on the propagation that ends at
-    the step.
-
-    Parameters
-    ----------
-    t : (K,) s, step times; u : (K, 6) per-step gyro inputs (column 4: extra bias variance)
-    step : BiasStep
-
-    Returns
-    -------
-    (K, 6) copy of u with column 4 filled
-    """
-    out = u.copy()
-    total = float(np.sum((2.0 * step.delta_rad_s) ** 2))
-    overlap = np.clip(np.minimum(t[1:], step.t_hi_s) - np.maximum(t[:-1], step.t_lo_s), 0.0, None)
-    if overlap.sum() > 1e-9:
-        out[:-1, 4] += total * overlap / float(overlap.sum())
-    else:
-        k = int(np.clip(np.searchsorted(t, step.t_s), 1, len(t) - 1))
-        out[k - 1, 4] += total
-    return out
+__all__ = ["estimate_gyro", "GyroSolution"]
 
 
 def _opening(grid: StepGrid, inputs: PassInputs, noise: NoiseModel, init_window_s: float) -> InitialState:
@@ -231,8 +116,11 @@ def _solve(inputs: PassInputs, corr: Corrections, noise: NoiseModel, prm: np.nda
                                      len(grid.mag_pos))
     if runs > 1:
         start = state_at(run, int(grid.mag_pos[0]), 0, False, init.method)
+        # never held tighter than the opening was: the likelihood of the alignment fit and the consider
+        # runs start here, and a start held tight at a wrong track pulls the fit to absorb it
         init = dataclasses.replace(init, q_body_from_gcrf=start.q_body_from_gcrf, v=start.v,
-                                   sigma_att_rad=start.sigma_att_rad, sigma_v=start.sigma_v)
+                                   sigma_att_rad=np.maximum(start.sigma_att_rad, init.sigma_att_rad),
+                                   sigma_v=np.maximum(start.sigma_v, init.sigma_v))
     return GyroSolution(fixed, grid, init, run, step)
 
 
@@ -240,7 +128,8 @@ def _corrections(params: dict) -> Corrections:
     """Corrections from a parameter dict of the alignment fit (absent blocks are zero)."""
     return Corrections(np.asarray(params["theta"], float),
                        sym_from_six(params["scale"]) if "scale" in params else np.zeros((3, 3)),
-                       float(params["time"][0]) if "time" in params else 0.0)
+                       float(params["time"][0]) if "time" in params else 0.0,
+                       np.asarray(params["field"], float) if "field" in params else np.zeros(3))
 
 
 def _likelihood(inputs: PassInputs, sol: GyroSolution, prm: np.ndarray) -> Callable[[dict], np.ndarray]:
@@ -270,31 +159,40 @@ def _rates(sol: GyroSolution, rate_window_s: float) -> tuple[np.ndarray, float]:
 
 def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
                blocks: list[tuple[tuple[str, ...], np.ndarray]], prm: np.ndarray,
-               rate_window_s: float) -> list[tuple[np.ndarray, np.ndarray]]:
-    """The smoothed attitude and rate with the corrections moved by each column of the Cholesky factor
-    of each block's covariance (the solution's opening and bias step kept)."""
+               rate_window_s: float) -> tuple[tuple[np.ndarray, np.ndarray], list[tuple[np.ndarray, np.ndarray]]]:
+    """The smoothed attitude and rate of one run with the corrections as they are (the nominal), and of
+    one run with the corrections moved by each column of the Cholesky factor of each block's covariance.
+    Every run starts from the solution's start with its bias step, so the runs differ only by the
+    corrections (not by where the iterated solution happened to start)."""
+
+    def one(c: Corrections) -> tuple[np.ndarray, np.ndarray]:
+        fixed = corrected_inputs(inputs, c)
+        g = step_grid(fixed)
+        out_idx = np.full(len(g.t_s), -1, np.int64)
+        out_idx[g.mag_pos] = np.arange(len(g.mag_pos))
+        run = run_filter(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init, out_idx,
+                         len(g.mag_pos))
+        w_out, _ = _rates(GyroSolution(fixed, g, sol.init, run, sol.step), rate_window_s)
+        q = run.q_s[g.mag_pos]
+        return np.where(q[:, 3:4] < 0, -q, q), w_out - run.v_s[g.mag_pos]
+
     out = []
     for layout, cov in blocks:
         chol = np.linalg.cholesky(cov + 1e-30 * np.eye(len(cov)))
-        for j in range(len(cov)):
-            fixed = corrected_inputs(inputs, corr.moved(chol[:, j], layout))
-            g = step_grid(fixed)
-            out_idx = np.full(len(g.t_s), -1, np.int64)
-            out_idx[g.mag_pos] = np.arange(len(g.mag_pos))
-            run = run_filter(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init, out_idx,
-                             len(g.mag_pos))
-            w_out, _ = _rates(GyroSolution(fixed, g, sol.init, run, sol.step), rate_window_s)
-            q = run.q_s[g.mag_pos]
-            out.append((np.where(q[:, 3:4] < 0, -q, q), w_out - run.v_s[g.mag_pos]))
-    return out
+        out += [one(corr.moved(chol[:, j], layout)) for j in range(len(cov))]
+    return one(corr), out
 
 
 def _consider_blocks(fit: AlignmentFit, prior: AlignmentPrior) -> list[tuple[tuple[str, ...], np.ndarray]]:
-    """Whose uncertainty the consider term carries: the fitted parameters with their covariance, and
-    the gyro's scale with its prior when the pass did not show it."""
+    """Whose uncertainty the consider term carries: the fitted parameters with their covariance; the
+    gyro's scale, when the pass did not show it, with what the pass says about it (its covariance in the
+    fit that had it: the prior's where the pass cannot see it, far less where it could and found
+    nothing); and the unmodelled field's part that stays put over the pass (a constant GCRF vector of
+    the fitted level, which the filter's decaying field state does not hold)."""
     blocks = [(fit.blocks, fit.cov)]
     if not fit.scale_kept:
-        blocks.append((("scale",), np.diag(prior.block("scale")[1] ** 2)))
+        blocks.append((("scale",), fit.scale_cov_fitted))
+    blocks.append((("field",), np.diag(prior.block("field")[1] ** 2)))
     return blocks
 
 
@@ -302,12 +200,15 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
                   report: Callable[[str, float], None], prior: AlignmentPrior | None = None) -> AttitudeHistory:
     """Gyro-mode reconstruction on the magnetometer time stamps from the filter's start on.
 
-    A first run gives the opening and any gyro bias step; the magnetometer's misalignment and the
-    gyro's scale (and the time-tag offset when the prior says it is not known) are then fitted by
-    maximum likelihood around the filter (:mod:`recon.estimate.alignment`), the inputs corrected and the
-    filter run again. The uncertainty of those corrections enters the smoothed attitude's covariance as
-    a consider term. Other parameters as in :func:`recon.estimate.estimate_attitude`; the anomaly
-    ``gyro_bias_jump`` is raised when a step in the gyro bias was found.
+    A first run gives the opening and any gyro bias step (clipped gyro axes are solved again with its
+    bias and attitude, and the pass run again). Then, by maximum likelihood around the filter: the
+    unmodelled field's level (:mod:`recon.estimate.field_noise`), the magnetometer's misalignment and
+    the gyro's scale (and the time-tag offset when the prior says it is not known;
+    :mod:`recon.estimate.alignment`), and the field's level again with those corrections; the inputs
+    are corrected and the filter run again. The uncertainty of the corrections, and of the field's
+    part that stays put over the pass, enters the smoothed attitude's covariance as a consider term.
+    Other parameters as in :func:`recon.estimate.estimate_attitude`; the anomaly ``gyro_bias_jump`` is
+    raised when a step in the gyro bias was found.
     """
     prior = prior or AlignmentPrior()
     grid0 = step_grid(inputs)
@@ -323,19 +224,47 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
         # solve the clipped axes again with the filter's bias and attitude, and run again
         inputs = _clipped_again(inputs, sol, noise)
         sol = _solve(inputs, corr0, noise, prm, init_window_s, report)
-    report("sensor alignment (maximum likelihood)", 0.3)
+    # the unmodelled field's level first: with the mission file's (quiet-day) level the alignment fit
+    # would take a disturbed field for a misalignment; then the alignment; then the level again
+    report("unmodelled field (maximum likelihood)", 0.25)
+    given_field_nT = noise.field_model_nT
+    noise, prm, _ = _with_field_fit(inputs, sol, corr0, noise, prm, grid0.dt_gyro_s, False, given_field_nT)
+    report("sensor alignment (maximum likelihood)", 0.35)
     fit = fit_alignment(_likelihood(inputs, sol, prm), prior)
-    corr = Corrections(fit.theta_rad, fit.E, fit.time_offset_s)
+    corr = Corrections(fit.theta_rad, fit.E, fit.time_offset_s, fit.field_offset_nT)
+    report("unmodelled field (maximum likelihood)", 0.6)
+    noise, prm, field = _with_field_fit(inputs, sol, corr, noise, prm, grid0.dt_gyro_s, True, given_field_nT)
+    source = dataclasses.replace(source, field_model_nT="maximum likelihood on this pass",
+                                 field_model_interval_nT=field.interval_nT)
+    prior = dataclasses.replace(prior, field_sigma_nT=field.sigma_nT / np.sqrt(3.0))
     report("final run and consider covariance", 0.75)
     sol = _solve(inputs, corr, noise, prm, init_window_s, report)
     w_out, width = _rates(sol, rate_window_s)
     extra = noise.gyro_arw_rad_sqrt_s ** 2 / width
     tracks = [extract_track(sol.run, smoothed, sol.grid.mag_pos, MODE_GYRO, w_out, extra) for smoothed in (True, False)]
-    p_att, var_rate = consider_covariance(tracks[0].q_body_from_gcrf, tracks[0].w_body_rad_s,
-                                          _perturbed(sol, inputs, corr, _consider_blocks(fit, prior), prm,
-                                                     rate_window_s))
+    nominal, moved = _perturbed(sol, inputs, corr, _consider_blocks(fit, prior), prm, rate_window_s)
+    p_att, var_rate = consider_covariance(*nominal, moved)
     return _history(sol, with_consider(tracks[0], p_att, var_rate), tracks[1], noise, source,
                     AlignmentResult.from_fit(fit, prior))
+
+
+def _with_field_fit(inputs: PassInputs, sol: GyroSolution, corr: Corrections, noise: NoiseModel,
+                    prm: np.ndarray, dt_gyro_s: float, interval: bool, given_nT: float
+                    ) -> tuple[NoiseModel, np.ndarray, FieldNoiseFit]:
+    """The unmodelled field's level and correlation time by maximum likelihood on the corrected inputs,
+    from the solution's start and bias step, not below ``given_nT`` (:mod:`recon.estimate.field_noise`);
+    the noise model and filter parameters with them."""
+    g = step_grid(corrected_inputs(inputs, corr))
+    u = _step_u(g, sol.step)
+
+    def neg2_log_l(sigma_nT: float, tau_s: float) -> float:
+        p = prm.copy()
+        p[P_SIGF], p[P_TAUF] = sigma_nT / np.sqrt(3.0), tau_s
+        return forward_log_likelihood(MODE_GYRO, g.t_s, u, g.is_mag, g.z, g.r, p, sol.init)
+
+    field = fit_field_noise(neg2_log_l, given_nT, noise.field_model_tau_s, interval=interval)
+    noise = dataclasses.replace(noise, field_model_nT=field.sigma_nT, field_model_tau_s=field.tau_s)
+    return noise, filter_params(noise, dt_gyro_s, None), field
 
 
 def _clipped_again(inputs: PassInputs, sol: GyroSolution, noise: NoiseModel) -> PassInputs:
@@ -359,4 +288,4 @@ def _history(sol: GyroSolution, smoothed, forward, noise, source, alignment) -> 
                         bias0_dps=(init.v * DEG_PER_RAD).tolist(), magnetometer_rows_before_gyro=int(first))
     return AttitudeHistory(t_mag_used.astype("datetime64[ns]"), smoothed, forward, run.nis[g.mag_pos][usable],
                            t_mag_used[usable].astype("datetime64[ns]"), "gyro", "", anomalies, noise,
-                           dataclasses.replace(source, field_model_nT="given"), start, alignment=alignment)
+                           source, start, alignment=alignment)

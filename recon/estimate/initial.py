@@ -181,7 +181,7 @@ def _subsample(n: int, n_max: int) -> np.ndarray:
 def initial_state_with_gyro(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray,
                             t_gyro: np.ndarray, w_gyro: np.ndarray, *, sigma_vec_nT: float,
                             sigma_bias0_rad_s: float, window_s: float = 120.0,
-                            max_window_s: float = 600.0, min_turn_deg: float = 15.0,
+                            max_window_s: float = 1800.0, min_turn_deg: float = 45.0,
                             n_starts: int = 8, first_s: float = 20.0,
                             floor_att_rad: float = np.deg2rad(3.0),
                             floor_bias_rad_s: float = np.deg2rad(0.05)) -> InitialState:

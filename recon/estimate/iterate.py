@@ -6,8 +6,10 @@ track, and the smoother inherits that. So the pass is solved again, alternately 
 in time, each run starting from where the previous smoothed track is best known: its other end. A
 run backwards in time is the same filter on the time-reversed pass: the body turns at -w, so the gyro
 reads -(w + beta) and the bias it estimates is -beta. The iteration stops when the smoothed attitude
-moves by less than a tenth of its own sigma anywhere (or after ``MAX_RUNS`` runs); the run kept is the
-last, in forward time.
+moves by less than a tenth of its own sigma anywhere (or after ``MAX_RUNS`` runs). The run kept is a
+run forwards in time, so that its filter track is the causal one (what was known at each instant from
+the data before it): when the last run went backwards, one more forward run is made from its smoothed
+start.
 
 References
 ----------
@@ -105,4 +107,7 @@ def iterate_smoothing(first: FilterRun, t: np.ndarray, u: np.ndarray, is_mag: np
         run, runs, backwards = nxt, runs + 1, not backwards
         if moved <= SETTLED_SIGMAS:
             break
+    if not backwards:  # the last run went backwards in time: its filter track is not the causal one
+        start = state_at(run, sel[0], 0, False, "smoothed start of the previous run")
+        run, runs = run_filter(MODE_GYRO, t, u, is_mag, z, r, prm, start, out_idx, n_out), runs + 1
     return dataclasses.replace(run), runs, moved

@@ -3,7 +3,8 @@ consider covariance that carries their uncertainty into the attitude's.
 
 - :class:`Corrections` holds the magnetometer's misalignment (theta, body axes: ``b = R(theta) b_c``),
   the gyro's scale and non-orthogonality (E: ``w = (I + E)^-1 w_g``) and the magnetometer's time-tag
-  offset (stamps minus true instants); :func:`corrected_inputs` applies them.
+  offset (stamps minus true instants) and the constant part of the unmodelled field over the pass
+  (GCRF, added to the reference field); :func:`corrected_inputs` applies them.
 - :func:`consider_covariance`: the filter does not carry these as states, so the uncertainty of their
   estimates is added to the smoothed attitude's covariance as a consider term,
   ``P_att += sum_j s_j s_j^T``, with ``s_j`` the change of the smoothed attitude when the corrections
@@ -41,15 +42,18 @@ class Corrections:
     theta_rad : (3,) magnetometer misalignment, body axes
     E : (3, 3) gyro scale factors and non-orthogonality (symmetric)
     time_offset_s : float, magnetometer stamps minus true instants
+    field_nT : (3,) GCRF, the unmodelled field's constant part, added to the reference field
     """
 
     theta_rad: np.ndarray
     E: np.ndarray
     time_offset_s: float = 0.0
+    field_nT: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(3))
 
     def moved(self, dx: np.ndarray, layout: tuple[str, ...]) -> Corrections:
-        """These corrections moved by dx, whose blocks follow ``layout`` ("theta" 3, "scale" 6, "time" 1)."""
-        th, e, dt = self.theta_rad.copy(), self.E.copy(), self.time_offset_s
+        """These corrections moved by dx, whose blocks follow ``layout`` ("theta" 3, "scale" 6, "time" 1,
+        "field" 3)."""
+        th, e, dt, f = self.theta_rad.copy(), self.E.copy(), self.time_offset_s, np.asarray(self.field_nT, float)
         k = 0
         for name in layout:
             if name == "theta":
@@ -62,7 +66,10 @@ class Corrections:
             elif name == "time":
                 dt = dt + float(dx[k])
                 k += 1
-        return Corrections(th, e, dt)
+            elif name == "field":
+                f = f + dx[k:k + 3]
+                k += 3
+        return Corrections(th, e, dt, f)
 
 
 def corrected_inputs(inputs: PassInputs, c: Corrections) -> PassInputs:
@@ -81,6 +88,8 @@ def corrected_inputs(inputs: PassInputs, c: Corrections) -> PassInputs:
         x, x_new = (t - t[0]) / NS_PER_S, (t_new - t[0]) / NS_PER_S
         ref = np.column_stack([np.interp(x_new, x, ref[:, a]) for a in range(3)])
         t = t_new
+    if np.any(c.field_nT):
+        ref = ref + np.asarray(c.field_nT, float)[None, :]
     return dataclasses.replace(inputs, t_mag_ns=t, b_body_nT=b, w_gyro_body_rad_s=w, b_ref_gcrf_nT=ref)
 
 

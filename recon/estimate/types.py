@@ -124,8 +124,9 @@ class PassInputs:
     usable : (N,) bool, rows whose field and reference field are both finite (used for updates)
     t_gyro_ns : (G,) int64 or None, gyro time stamps of the finite gyro rows
     w_gyro_body_rad_s : (G, 3) rad/s, body frame, or None
-    gyro_extra_var : (G,) (rad/s)^2 or None, variance of each gyro sample beyond its white noise (a
-        clipped axis solved from the field, see :mod:`recon.estimate.clipping`)
+    gyro_extra_psd : (G,) rad^2/s or None, spectral density of each gyro sample's rate error beyond its
+        white noise (a clipped axis solved from the field, an error correlated over a time tau_c counted
+        as a density 2 sigma^2 tau_c; see :mod:`recon.estimate.clipping`)
     gyro_clipping : GyroClipping or None, what is needed to solve the clipped axes again
     """
 
@@ -135,7 +136,7 @@ class PassInputs:
     usable: np.ndarray
     t_gyro_ns: np.ndarray | None = None
     w_gyro_body_rad_s: np.ndarray | None = None
-    gyro_extra_var: np.ndarray | None = None
+    gyro_extra_psd: np.ndarray | None = None
     gyro_clipping: GyroClipping | None = None
 
 
@@ -147,6 +148,8 @@ class GyroClipping:
     ----------
     w_logged_body_rad_s : (G, 3) the gyro as logged, body axes; clipped_sensor : (G, 3) bool, sensor axes
         at full scale; sensor_to_body : (3, 3); full_scale_rad_s : float; note : str, what was done
+    inertia_kg_m2 : (3, 3) or None, nominal inertia (Euler's equations through a clipped run)
+    m_body_Am2 : (G, 3) or None, the coils' dipole at the gyro samples
     """
 
     w_logged_body_rad_s: np.ndarray
@@ -154,6 +157,8 @@ class GyroClipping:
     sensor_to_body: np.ndarray
     full_scale_rad_s: float
     note: str = ""
+    inertia_kg_m2: np.ndarray | None = None
+    m_body_Am2: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -192,6 +197,7 @@ class NoiseSource:
     gyro_allan: GyroAllanFigures | None = None
     rate_hold_accel_rad_s2: str | None = None
     field_model_nT: str | None = None
+    field_model_interval_nT: tuple[float, float] | None = None
 
     def to_summary(self) -> dict[str, Any]:
         out: dict[str, Any] = {"mag_nT": self.mag_nT}
@@ -203,6 +209,8 @@ class NoiseSource:
             out["rate_hold_accel_rad_s2"] = self.rate_hold_accel_rad_s2
         if self.field_model_nT is not None:
             out["field_model_nT"] = self.field_model_nT
+        if self.field_model_interval_nT is not None:
+            out["field_model_nT_interval_68"] = [float(x) for x in self.field_model_interval_nT]
         return out
 
 
