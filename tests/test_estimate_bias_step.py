@@ -13,7 +13,7 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from recon.estimate.bias_step import BiasStep, find_bias_step, pooled_bias
-from recon.estimate.gyro_mode import bias_step_inputs
+from recon.estimate.step_grid import bias_step_inputs
 
 DEG = np.pi / 180.0
 BIAS_WALK = 1e-4 * DEG  # rad/s/sqrt(s), the filter's default
