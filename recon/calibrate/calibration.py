@@ -270,7 +270,8 @@ def _what_to_apply(inputs: CalibrationInputs, fit: MagnitudeFit, fusion: Crossta
     if fusion is None:
         return (b_apply, s_apply, np.zeros((3, 3))), anomalies
     if fusion.agreement.agree is False:
-        anomalies.append(crosstalk_estimates_disagree(fusion.agreement, fusion.scale_factor, inputs.span))
+        anomalies.append(crosstalk_estimates_disagree(fusion.agreement, fusion.scale_factor, fusion.left_out,
+                                                      inputs.span))
     k_apply = fusion.crosstalk_nT_per_A.copy()
     significant = crosstalk_significant(k_apply, fusion.sigma_nT_per_A, inputs.max_current_A, inputs.noise_nT,
                                         mag_sampling, inputs.span)

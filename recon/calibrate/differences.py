@@ -1,40 +1,42 @@
-"""Crosstalk from rotation-compensated differences of magnetometer sample pairs, with its nuisances.
+"""Crosstalk from rotation-compensated differences of magnetometer samples, with its nuisances.
 
 Both gyro-based crosstalk estimates (the current steps, :mod:`recon.calibrate.steps`, and the
-synchronous detection of the duty cycle, :mod:`recon.calibrate.synchronous`) regress the difference
-of two magnetometer samples, ``first`` and ``second``, with the turn of the field between them removed.
-This module holds that regression once.
+synchronous detection of the duty cycle, :mod:`recon.calibrate.synchronous`) regress a sample, the
+``target``, less a weighted sum of other samples, its ``references``, each turned into the target's
+axes. This module holds that regression once. For the steps the reference is the one sample before
+(weight 1); for synchronous detection, off samples on both sides with the weights of a straight line
+through them in time.
 
-With ``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon.calibrate.model`, sensor axes) and ``R`` the
-change of the components of a fixed vector from the instant of ``first`` to that of ``second`` seen
-from the turning sensor frame (``R = exp(-[w x] dt)`` for a constant rate ``w`` over
-``dt = t_second - t_first``, which may be negative), the difference is
+With ``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon.calibrate.model`, sensor axes) and ``R_r`` the
+change of the components of a fixed vector from the instant of reference ``r`` to that of the target
+seen from the turning sensor frame (``R = exp(-[w x] dt)`` for a constant rate ``w`` over
+``dt_r = t_target - t_r``, of either sign), the row
 
-    d = m_second - R m_first
-      = K i_second - R K i_first                     (the coil fields)
-      + (I - R) b0                                   (bias turned with the frame)
-      + (S - I) R b_first - R (S - I) b_first        (soft iron does not commute with the turn)
-      + A_second g_dot dt                            (the field's own change along the orbit)
-      - R [m_first x] (beta + E w) dt                (gyro bias beta and, optionally, the gyro's
-                                                      scale and axis errors E, both as the gyro
-                                                      errs in the magnetometer's axes)
-      + n_second - R n_first,
+    d = m_t - sum_r w_r R_r m_r
+      = K i_t - sum_r w_r R_r K i_r                          (the coil fields)
+      + (I - sum_r w_r R_r) b0                               (bias turned with the frame)
+      + sum_r w_r ((S - I) R_r b_r - R_r (S - I) b_r)        (soft iron does not commute with the turn)
+      + A_t g_dot sum_r w_r dt_r                             (the field's own change along the orbit)
+      - sum_r w_r R_r [m_r x] (beta + E w) dt_r              (gyro bias beta and, optionally, the
+                                                              gyro's scale and axis errors E, as the
+                                                              gyro errs in the magnetometer's axes)
+      + n_t - sum_r w_r R_r n_r              (with sum_r w_r = 1)
 
-exactly linear in ``K`` and, to first order in the small quantities, in the nuisances ``b0``,
-``S - I`` (the measured ``m_first`` standing in for ``b_first``), ``beta``, ``E`` (a general 3x3
-matrix: scale factors, non-orthogonality and the rotation between gyro and magnetometer axes) and
-``g_dot``: the field's rate in a frame fixed in inertial space (carried by the integrated gyro,
-``A``), one vector per segment (a block of time, restarted at gaps). The ``E`` columns matter when
-the two samples are far apart in time (a 3 % scale error turns 8 deg/s over 0.5 s into ~100 nT).
+is exactly linear in ``K`` and, to first order in the small quantities, in the nuisances ``b0``,
+``S - I`` (the measured ``m_r`` standing in for ``b_r``), ``beta``, ``E`` (a general 3x3 matrix:
+scale factors, non-orthogonality and the rotation between gyro and magnetometer axes) and ``g_dot``:
+the field's rate in a frame fixed in inertial space (carried by the integrated gyro, ``A``), one
+vector per segment (a block of time, restarted at gaps; its columns vanish when the weights fit a
+straight line through the target's instant). The ``E`` columns matter when the samples are far
+apart in time (a 3 % scale error turns 8 deg/s over 0.5 s into ~100 nT).
 
-Noise: a sample may appear in several pairs, so the differences are correlated. The estimate is
-ordinary least squares (rows of equal variance ``2 sigma^2`` for isotropic noise) and its covariance
-the exact sandwich ``(X^T X)^-1 X^T Sigma_d X (X^T X)^-1`` with ``Sigma_d = sigma^2 D D^T``, ``D``
-the difference operator (row = ``n_second - R n_first``), and ``sigma^2`` estimated without bias
-from the residual sum of squares (``E[RSS] = sigma^2 (tr(D D^T) - tr((X^T X)^-1 X^T D D^T X))``;
-Seber & Lee 2003, Linear Regression Analysis, sec. 3.3, generalised to a known correlation shape).
-Rows whose residual lies more than 5 robust sigma from zero (a glitch) are dropped and the fit
-repeated once.
+Noise: a sample may appear in several rows, so the rows are correlated. The estimate is ordinary
+least squares and its covariance the exact sandwich ``(X^T X)^-1 X^T Sigma_d X (X^T X)^-1`` with
+``Sigma_d = sigma^2 D D^T``, ``D`` the operator from the samples' noise to the rows' (row =
+``n_t - sum_r w_r R_r n_r``), and ``sigma^2`` estimated without bias from the residual sum of squares
+(``E[RSS] = sigma^2 (tr(D D^T) - tr((X^T X)^-1 X^T D D^T X))``; Seber & Lee 2003, Linear Regression
+Analysis, sec. 3.3, generalised to a known correlation shape). Rows whose residual lies more than 5
+robust sigma from zero (a glitch) are dropped and the fit repeated once.
 
 References
 ----------
@@ -61,7 +63,7 @@ OUTLIER_FENCE = 5.0
 
 @dataclass(frozen=True)
 class PairSet:
-    """The sample pairs of one regression (P pairs over n kept samples, sensor axes).
+    """The rows of one regression: P targets, each with r references, over n kept samples (sensor axes).
 
     Attributes
     ----------
@@ -69,29 +71,40 @@ class PairSet:
         The kept samples (finite).
     i_A : (n, 3) array, A
         The current each kept sample saw (finite).
-    first, second : (P,) int arrays
-        Each pair's samples (indices into ``m_nT``).
-    dt_s : (P,) array, s
-        ``t_second - t_first`` (negative when ``second`` comes first).
-    turn : (P, 3, 3) array
-        ``R``: components at ``first`` to components at ``second`` (see the module notes).
+    target : (P,) int array
+        Each row's target sample (index into ``m_nT``).
+    refs : (P, r) int array
+        Its reference samples.
+    weights : (P, r) array
+        Their weights (summing to 1 over a row).
+    dt_s : (P, r) array, s
+        ``t_target - t_reference`` (either sign).
+    turn : (P, r, 3, 3) array
+        ``R``: components at the reference to components at the target (see the module notes).
     trend : (P, 3, 3) array
-        The field-rate columns of each pair, ``A_second dt``.
+        The field-rate columns of each row, ``A_target sum_r w_r dt_r``.
     segment : (P,) int array
-        The segment (block of constant field rate) of each pair, 0, 1, ... in order.
-    w_rad_s : (P, 3) array, rad/s, sensor axes
-        The mean measured rate over each pair (for the gyro scale columns).
+        The segment (block of constant field rate) of each row, 0, 1, ... in order.
+    w_rad_s : (P, r, 3) array, rad/s, sensor axes
+        The mean measured rate from each reference to the target (for the gyro scale columns).
     """
 
     m_nT: np.ndarray
     i_A: np.ndarray
-    first: np.ndarray
-    second: np.ndarray
+    target: np.ndarray
+    refs: np.ndarray
+    weights: np.ndarray
     dt_s: np.ndarray
     turn: np.ndarray
     trend: np.ndarray
     segment: np.ndarray
     w_rad_s: np.ndarray
+
+    @classmethod
+    def of_pairs(cls, m_nT, i_A, first, second, dt_s, turn, trend, segment, w_rad_s) -> PairSet:
+        """Rows with one reference each (``first``, weight 1) and the target ``second``."""
+        return cls(m_nT, i_A, np.asarray(second), np.asarray(first)[:, None], np.ones((len(first), 1)),
+                   np.asarray(dt_s)[:, None], np.asarray(turn)[:, None], trend, segment, np.asarray(w_rad_s)[:, None])
 
 
 @dataclass(frozen=True)
@@ -105,6 +118,7 @@ class DifferenceFit:
     noise_nT : float
         Magnetometer noise per axis (1 sigma) estimated from the residuals.
     n_pairs, n_rejected : int
+        Rows used and rows dropped as glitches.
     """
 
     crosstalk_nT_per_A: np.ndarray
@@ -153,41 +167,44 @@ def fit_differences(pairs: PairSet, coils: np.ndarray, *, gyro_scale: bool = Fal
     k_est[flat] = theta[:n_k]
     cov = np.full((9, 9), np.nan)
     cov[np.ix_(flat, flat)] = cov_all[:n_k, :n_k]
-    return DifferenceFit(k_est.reshape(3, 3), cov, float(np.sqrt(sigma2)), len(pairs.first), int((~use).sum()))
+    return DifferenceFit(k_est.reshape(3, 3), cov, float(np.sqrt(sigma2)), len(pairs.target), int((~use).sum()))
 
 
 def _design(pairs: PairSet, coils, gyro_scale: bool) -> _Design:
-    """The regression of ``d = m_second - R m_first`` on K (the coils given), the bias, the soft iron,
-    the gyro bias and optionally the gyro's scale and axis errors; the field rates enter as the
+    """The regression of ``d = m_t - sum_r w_r R_r m_r`` on K (the coils given), the bias, the soft
+    iron, the gyro bias and optionally the gyro's scale and axis errors; the field rates enter as the
     ``trend`` columns (see the module notes)."""
-    first, second, m, i, r_mat, dt = pairs.first, pairs.second, pairs.m_nT, pairs.i_A, pairs.turn, pairs.dt_s
+    tgt, m, i = pairs.target, pairs.m_nT, pairs.i_A
+    wr = pairs.turn * pairs.weights[:, :, None, None]  # w_r R_r (P, r, 3, 3)
     cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
     bias_col = len(cols_k)
     soft_col = bias_col + 3
     gyro_col = soft_col + 6
     scale_col = gyro_col + 3
     n_par = scale_col + (9 if gyro_scale else 0)
-    x = np.zeros((len(first), 3, n_par))
+    x = np.zeros((len(tgt), 3, n_par))
     eye = np.eye(3)
+    i_ref = i[pairs.refs]  # (P, r, 3)
     for col, (j, c) in enumerate(cols_k):
-        x[:, :, col] = i[second, c][:, None] * eye[j] - i[first, c][:, None] * r_mat[:, :, j]
-    x[:, :, bias_col:bias_col + 3] = eye - r_mat
-    mf = m[first]
-    rm = np.einsum("pab,pb->pa", r_mat, mf)
+        x[:, :, col] = i[tgt, c][:, None] * eye[j] - np.einsum("pr,pra->pa", i_ref[:, :, c], wr[:, :, :, j])
+    x[:, :, bias_col:bias_col + 3] = eye - wr.sum(axis=1)
+    mr = m[pairs.refs]  # (P, r, 3)
+    rm = np.einsum("prab,prb->pa", wr, mr)  # sum_r w_r R_r m_r
     for n, (a, b) in enumerate(SYM_INDEX):
         xi = np.zeros((3, 3))
         xi[a, b] = xi[b, a] = 1.0
-        x[:, :, soft_col + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mf @ xi.T)
-    # gyro bias: -R [m x] dt, column e of [m x] is m x e_e
-    turned_cross = [-np.einsum("pab,pb->pa", r_mat, np.cross(mf, eye[e])) * dt[:, None] for e in range(3)]
+        x[:, :, soft_col + n] = rm @ xi.T - np.einsum("prab,prb->pa", wr, mr @ xi.T)
+    # gyro bias: -sum_r w_r R_r [m_r x] dt_r; column e of [m x] is m x e_e
+    turned_cross = [-np.einsum("prab,prb->pra", wr, np.cross(mr, eye[e])) * pairs.dt_s[:, :, None]
+                    for e in range(3)]  # each (P, r, 3)
     for e in range(3):
-        x[:, :, gyro_col + e] = turned_cross[e]
+        x[:, :, gyro_col + e] = turned_cross[e].sum(axis=1)
     if gyro_scale:
         # E w: element (e, q) of E contributes w_q along e_e
         for e in range(3):
             for q in range(3):
-                x[:, :, scale_col + 3 * e + q] = turned_cross[e] * pairs.w_rad_s[:, q][:, None]
-    y = m[second] - rm
+                x[:, :, scale_col + 3 * e + q] = np.einsum("pra,pr->pa", turned_cross[e], pairs.w_rad_s[:, :, q])
+    y = m[tgt] - rm
     return _Design(x, y, cols_k)
 
 
@@ -211,21 +228,24 @@ def _robust_fit(design: _Design, trend, seg):
 
 def _sandwich_covariance(xt, pairs: PairSet, use, rss):
     """Covariance of theta (p, p) and the noise variance sigma^2 (nT^2) from the sandwich with the
-    correlated noise of the differences: Z = D^T X (X with the field-rate columns projected out, which
+    correlated noise of the rows: Z = D^T X (X with the field-rate columns projected out, which
     leaves the estimate and its covariance unchanged: Frisch-Waugh-Lovell)."""
     n_par = xt.shape[2]
-    xu, ru = xt[use], pairs.turn[use]
+    xu = xt[use]
+    wr = pairs.turn[use] * pairs.weights[use][:, :, None, None]
     z = np.zeros((len(pairs.m_nT), 3, n_par))
-    np.add.at(z, pairs.second[use], xu)
-    np.add.at(z, pairs.first[use], -np.einsum("pba,pbi->pai", ru, xu))
+    np.add.at(z, pairs.target[use], xu)
+    np.add.at(z, pairs.refs[use], -np.einsum("prba,pbi->prai", wr, xu))
     xf, zf = xu.reshape(-1, n_par), z.reshape(-1, n_par)
     xx = xf.T @ xf
     zz = zf.T @ zf
     xx_inv = np.linalg.pinv(xx, hermitian=True)
-    # E[RSS] = sigma^2 (tr(D D^T) - tr(H D D^T)); the field-rate columns add between 0 and 6 per
-    # segment to tr(H D D^T) (3 is taken): an error below one part in the number of pairs
+    # E[RSS] = sigma^2 (tr(D D^T) - tr(H D D^T)), tr(D D^T) = 3 (1 + sum_r w_r^2) per row; the
+    # field-rate columns add between 0 and 6 per segment to tr(H D D^T) (3 is taken): an error below
+    # one part in the number of rows
     n_used_seg = len(np.unique(pairs.segment[use]))
-    dof = 6.0 * int(use.sum()) - float(np.trace(xx_inv @ zz)) - 3.0 * n_used_seg
+    tr_dd = 3.0 * float(np.sum(1.0 + np.sum(pairs.weights[use] ** 2, axis=1)))
+    dof = tr_dd - float(np.trace(xx_inv @ zz)) - 3.0 * n_used_seg
     sigma2 = rss / max(dof, 1.0)
     return sigma2 * xx_inv @ zz @ xx_inv, sigma2
 

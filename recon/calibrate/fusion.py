@@ -5,14 +5,25 @@ directions of K the data determine, and the uncertainty the others leave in the 
    information and are taken as independent. Their covariance-weighted combination ``k_hat`` (without
    the prior) and ``chi2 = sum_x (k_x - k_hat)^T C_x^-1 (k_x - k_hat)`` over the elements each one
    gives, with ``sum_x n_x - rank`` degrees of freedom (for two estimates of the same elements this is
-   ``d^T (C_a + C_b)^-1 d``). When they disagree (p below ``AGREEMENT_P``), every covariance is
-   multiplied by ``chi2 / dof`` before they are combined: the scale-factor rule of the Particle Data
-   Group (Navas et al. 2024, Review of Particle Physics, Phys. Rev. D 110, 030001, Introduction,
-   sec. 5.2.2), which makes the spread of the estimates part of the stated uncertainty.
+   ``d^T (C_a + C_b)^-1 d``). When they disagree (p below ``AGREEMENT_P``) and leaving one of three out
+   makes the other two agree, that one is left out (the one whose absence agrees best); of two, the
+   attitude-independent one is left out when it is one of them (it sees K only through ``|b|``, where
+   K trades with soft iron and bias: the cause of a 35,000 nT/A crosstalk applied on slow passes
+   before this combination existed). Otherwise every covariance is multiplied by ``chi2 / dof`` before
+   they are combined: the scale-factor rule of the Particle Data Group (Navas et al. 2024, Review of
+   Particle Physics, Phys. Rev. D 110, 030001, Introduction, sec. 5.2.2), which makes the spread of the
+   estimates part of the stated uncertainty.
 2. Combination with the prior (:mod:`recon.calibrate.prior`: zero mean, ``sigma_p`` per element):
-   information ``I = sum_x C_x^-1 + D^-2`` (``D = diag(sigma_p)``), ``P = I^-1``,
+   information ``I = sum_x C_x^-1 + D^-2`` (``D = diag(s sigma_p)``), ``P = I^-1``,
    ``k_post = P sum_x C_x^-1 k_x`` (Bar-Shalom, Li & Kirubarajan 2001, Estimation with Applications to
    Tracking and Navigation, sec. 3.3; Gelman et al. 2013, Bayesian Data Analysis, 3rd ed., sec. 3.5).
+   (2b) The geometric prior is a Gaussian stand-in for a heavy tail (``1 / r^3``): a magnetometer
+   closer than the range's middle sees several times its sigma. Its scale ``s`` (at least 1) is
+   therefore the one under which the estimates are most likely (empirical Bayes: the marginal
+   likelihood of a hyperparameter, Casella 1985, An introduction to empirical Bayes data analysis,
+   The American Statistician 39(2), 83-87 (memory)), so that a crosstalk of 40,000 nT/A, which the
+   data show plainly in some directions, widens the prior of the directions they barely see instead
+   of being pulled to zero in them. Crosstalk of the prior's size or less leaves ``s = 1``.
 3. Directions. In the prior's units (``P_w = D^-1 P D^-1``, the prior is then the identity) the
    eigenvectors of ``P_w`` are the directions of K the data inform independently; eigenvalue
    ``lambda`` is the fraction of the prior variance left. A direction is *determined* when the data
@@ -27,13 +38,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import optimize, stats
 
 from .agreement import AGREEMENT_P, CrosstalkAgreement, combine_crosstalk
 from .model import crosstalk_name
 
-__all__ = ["MIN_VARIANCE_SHRINK", "CrosstalkEstimate", "CrosstalkDirection", "CrosstalkFusion", "fuse_crosstalk",
-           "consistency", "field_covariance_nT2"]
+__all__ = ["MIN_VARIANCE_SHRINK", "MAX_PRIOR_WIDENING", "CrosstalkEstimate", "CrosstalkDirection", "CrosstalkFusion",
+           "fuse_crosstalk", "consistency", "field_covariance_nT2"]
 
 # A direction of K is determined when the data shrink its prior variance at least this many times.
 # Four (sigma halved) is the least at which the data, not the prior, say what K is. At a hundred
@@ -43,6 +54,9 @@ __all__ = ["MIN_VARIANCE_SHRINK", "CrosstalkEstimate", "CrosstalkDirection", "Cr
 # estimates shrink the variance 6-40 times while their error is 50-100 % of K; those directions are
 # held at the prior, which costs the field under 10 nT at such currents.
 MIN_VARIANCE_SHRINK = 100.0
+# The prior's sigma is never widened beyond this factor (a magnetometer 0.05 m from a coil; larger
+# crosstalk would saturate a sensor in a few mA)
+MAX_PRIOR_WIDENING = 100.0
 
 
 @dataclass(frozen=True)
@@ -97,6 +111,7 @@ class CrosstalkFusion:
         Its covariance: the data's in the determined directions, the prior's in the others.
     sigma_nT_per_A : (3, 3) array
     prior_sigma_nT_per_A : (3,) array, per coil column
+        The prior's sigma as used (the geometric one times ``prior_widening``).
     directions : tuple of CrosstalkDirection, most shrunk first
     elements_determined : (3, 3) bool array
         Elements whose variance the data shrink at least ``min_variance_shrink`` times.
@@ -106,6 +121,10 @@ class CrosstalkFusion:
         The factor applied to every estimate's sigma (1 when they agree).
     estimates : tuple of str
         The names of the estimates combined.
+    left_out : str or None
+        The estimate left out because it alone disagreed with the others.
+    prior_widening : float
+        The factor (at least 1) applied to the geometric prior's sigma (step 2b).
     min_variance_shrink : float
     """
 
@@ -119,6 +138,8 @@ class CrosstalkFusion:
     scale_factor: float
     estimates: tuple[str, ...]
     min_variance_shrink: float
+    left_out: str | None = None
+    prior_widening: float = 1.0
 
     @property
     def n_determined(self) -> int:
@@ -185,9 +206,42 @@ def fuse_crosstalk(estimates: list[CrosstalkEstimate], prior_sigma_nT_per_A: np.
     CrosstalkFusion
     """
     agreement = consistency(estimates)
-    scale2 = agreement.chi2 / agreement.dof if agreement.agree is False else 1.0
-    d = np.tile(np.asarray(prior_sigma_nT_per_A, float), 3)  # row-major: element (axis, coil) -> coil
-    info = np.diag(1.0 / d**2)
+    left_out = _odd_one_out(estimates) if agreement.agree is False else None
+    if left_out is not None:
+        estimates = [e for e in estimates if e.name != left_out]
+    scale2 = agreement.chi2 / agreement.dof if agreement.agree is False and left_out is None else 1.0
+    info_data, vec = _information(estimates, scale2)
+    d0 = np.tile(np.asarray(prior_sigma_nT_per_A, float), 3)  # row-major: element (axis, coil) -> coil
+    widen = _prior_widening(info_data, vec, d0)
+    d = widen * d0
+    post = np.linalg.inv(info_data + np.diag(1.0 / d**2))
+    post = 0.5 * (post + post.T)
+    k_post = post @ vec
+    lam, u = np.linalg.eigh(post / np.outer(d, d))  # the prior's units: the prior is the identity
+    shrink = 1.0 / np.maximum(lam, 1e-300)
+    det = shrink >= min_variance_shrink
+    z_applied = u[:, det] @ (u[:, det].T @ (k_post / d))
+    cov = ((u[:, det] * lam[det]) @ u[:, det].T + u[:, ~det] @ u[:, ~det].T) * np.outer(d, d)
+    dirs = []
+    for q in np.argsort(-shrink):
+        v = d * u[:, q]
+        norm = float(np.linalg.norm(v))
+        dirs.append(CrosstalkDirection((v / norm).reshape(3, 3), float(np.sqrt(lam[q]) * norm), float(shrink[q]),
+                                       bool(det[q])))
+    return CrosstalkFusion(
+        crosstalk_nT_per_A=(d * z_applied).reshape(3, 3), covariance=cov,
+        sigma_nT_per_A=np.sqrt(np.diag(cov)).reshape(3, 3),
+        prior_sigma_nT_per_A=widen * np.asarray(prior_sigma_nT_per_A, float), directions=tuple(dirs),
+        elements_determined=(np.diag(cov) <= d**2 / min_variance_shrink * (1.0 + 1e-9)).reshape(3, 3),
+        agreement=agreement, scale_factor=float(np.sqrt(scale2)),
+        estimates=tuple(e.name for e in estimates if e.given.any()), min_variance_shrink=float(min_variance_shrink),
+        left_out=left_out, prior_widening=float(widen))
+
+
+def _information(estimates: list[CrosstalkEstimate], scale2: float) -> tuple[np.ndarray, np.ndarray]:
+    """The estimates' information (9, 9), (nT/A)^-2, and information-weighted sum (9,), their
+    covariances multiplied by ``scale2``."""
+    info = np.zeros((9, 9))
     vec = np.zeros(9)
     for e in estimates:
         g = e.given
@@ -196,30 +250,47 @@ def fuse_crosstalk(estimates: list[CrosstalkEstimate], prior_sigma_nT_per_A: np.
         i_sub = np.linalg.pinv(scale2 * np.asarray(e.covariance, float)[np.ix_(g, g)], hermitian=True)
         info[np.ix_(g, g)] += i_sub
         vec[g] += i_sub @ np.asarray(e.crosstalk_nT_per_A, float).ravel()[g]
-    post = np.linalg.inv(info)
-    post = 0.5 * (post + post.T)
-    k_post = post @ vec
-    lam, u = np.linalg.eigh(post / np.outer(d, d))  # the prior's units: the prior is the identity
-    shrink = 1.0 / np.maximum(lam, 1e-300)
-    det = shrink >= min_variance_shrink
-    z_post = k_post / d
-    z_applied = u[:, det] @ (u[:, det].T @ z_post)
-    cov_w = (u[:, det] * lam[det]) @ u[:, det].T + u[:, ~det] @ u[:, ~det].T
-    cov = cov_w * np.outer(d, d)
-    order = np.argsort(-shrink)
-    dirs = []
-    for q in order:
-        v = d * u[:, q]
-        norm = float(np.linalg.norm(v))
-        dirs.append(CrosstalkDirection((v / norm).reshape(3, 3), float(np.sqrt(lam[q]) * norm), float(shrink[q]),
-                                       bool(det[q])))
-    elements = (np.diag(cov) <= d**2 / min_variance_shrink * (1.0 + 1e-9)).reshape(3, 3)
-    return CrosstalkFusion(
-        crosstalk_nT_per_A=(d * z_applied).reshape(3, 3), covariance=cov,
-        sigma_nT_per_A=np.sqrt(np.diag(cov)).reshape(3, 3),
-        prior_sigma_nT_per_A=np.asarray(prior_sigma_nT_per_A, float), directions=tuple(dirs),
-        elements_determined=elements, agreement=agreement, scale_factor=float(np.sqrt(scale2)),
-        estimates=tuple(e.name for e in estimates if e.given.any()), min_variance_shrink=float(min_variance_shrink))
+    return 0.5 * (info + info.T), vec
+
+
+def _prior_widening(info: np.ndarray, vec: np.ndarray, d: np.ndarray) -> float:
+    """The factor (at least 1) on the prior's sigma that makes the data most likely (step 2b of the
+    module notes): in the prior's units, along each eigenvector ``v`` of the data's information (eigenvalue
+    ``mu``), the data's estimate ``z_v`` is distributed ``N(0, s^2 + 1/mu)``; ``s^2`` maximises the
+    product of those densities."""
+    mu, v = np.linalg.eigh(info * np.outer(d, d))
+    keep = mu > 1e-9 * max(float(mu.max(initial=0.0)), 1e-300)
+    if not keep.any():
+        return 1.0
+    mu, v = mu[keep], v[:, keep]
+    z = (v.T @ (d * vec)) / mu
+
+    def minus_log_likelihood(log_s2: float) -> float:
+        var = np.exp(log_s2) + 1.0 / mu
+        return float(np.sum(np.log(var) + z**2 / var))
+
+    best = optimize.minimize_scalar(minus_log_likelihood, bounds=(0.0, np.log(MAX_PRIOR_WIDENING**2)),
+                                    method="bounded")
+    return float(np.sqrt(np.exp(best.x))) if best.fun < minus_log_likelihood(0.0) else 1.0
+
+
+def _odd_one_out(estimates: list[CrosstalkEstimate]) -> str | None:
+    """Of estimates that disagree, the one to leave out: of three or more, the one whose absence leaves
+    the others agreeing best; of two, the attitude-independent one ("magnitude"), which sees K only
+    through ``|b|``, where K trades with soft iron and bias, and leans on the reference field, while
+    the gyro-based ones measure ``K i`` as a vector. None when no such one exists."""
+    usable = [e for e in estimates if e.given.any()]
+    if len(usable) == 2:
+        names = {e.name for e in usable}
+        return "magnitude" if "magnitude" in names else None
+    if len(usable) < 3:
+        return None
+    best, best_p = None, -1.0
+    for e in usable:
+        rest = consistency([x for x in usable if x is not e])
+        if rest.agree is not False and (rest.p_value if rest.p_value is not None else 1.0) > best_p:
+            best, best_p = e.name, (rest.p_value if rest.p_value is not None else 1.0)
+    return best
 
 
 def field_covariance_nT2(covariance: np.ndarray, i_coil_A: np.ndarray) -> np.ndarray:

@@ -207,5 +207,5 @@ def _turned_pairs(pairs: _Pairs, tg, wg, block_s) -> PairSet:
             acc = np.eye(3)
         acc = r_mat[p] @ acc
         a_next[p] = acc
-    return PairSet(m_nT=pairs.m_nT, i_A=pairs.i_A, first=k0, second=k0 + 1, dt_s=pairs.dt_s, turn=r_mat,
-                   trend=a_next * pairs.dt_s[:, None, None], segment=seg, w_rad_s=w)
+    return PairSet.of_pairs(pairs.m_nT, pairs.i_A, k0, k0 + 1, pairs.dt_s, r_mat, a_next * pairs.dt_s[:, None, None],
+                            seg, w)

@@ -1,33 +1,38 @@
 """Coil crosstalk by synchronous detection of the duty cycle: each sample taken with the coils on,
-against the sample taken with them off that follows it.
+against the samples taken with them off around it.
 
 With ``mag_sampling = "windowed"`` the coils are switched off around every control tick, so the
 magnetometer's own samples alternate between readings of the field alone (inside the off windows)
 and readings of the field plus the coil field ``K i`` (outside). A sample ``j`` taken with the coils
-on, less the off sample ``b`` that follows it turned into ``j``'s axes by the gyro,
+on, less the field the off samples around it give at its instant (each turned into ``j``'s axes by
+the gyro, then a straight line through them in time evaluated at ``t_j``),
 
-    m_j - R m_b = K i_j + (nuisances) + n_j - R n_b,
+    m_j - sum_r w_r R_r m_r = K i_j + (nuisances) + n_j - sum_r w_r R_r n_r,
 
 measures ``K i_j`` directly as a vector, whether or not the current changes from one period to the
 next (the step estimate, :mod:`recon.calibrate.steps`, needs it to change; the magnitude fit needs the
 dipole to have a part along the field). With ``"coils_on"`` there are no off samples: the samples on
 both sides of a current step play their part, which is the step estimate. The regression, its
 nuisances and its covariance are :mod:`recon.calibrate.differences`, here with the gyro's scale and
-axis errors too (the two samples are up to a period apart).
+axis errors too (the samples are seconds apart). The straight line cancels the field's own change
+along the orbit and, to first order, the gyro's errors, which then only cost a little precision.
 
-Why the off sample *after* ``j`` and not the mean of the two around it: the onboard controller reads
-the off sample at the tick that starts ``j``'s period to compute ``i_j`` (B-dot from its difference
-with the one before), so that sample's noise drives ``i_j``; a regressor correlated with its own noise
+Which off samples: those of the windows of ticks ``k+1`` (after ``j``) and ``k-2`` (before it), where
+``k`` is the tick that starts ``j``'s period -- not those of ticks ``k`` and ``k-1``. The onboard
+controller reads the off samples at tick ``k`` (and, for B-dot, at ``k-1``, whose difference it
+takes) to compute ``i_j``, so their noise drives ``i_j``; a regressor correlated with its own noise
 biases least squares (the errors-in-variables problem of closed-loop identification; Ljung 1999,
-System Identification, 2nd ed., sec. 13.4). For B-dot at 2.7e-5 A per nT of noise (gain 40,000
-A m^2 s/T, 1.5 A m^2/A, one-second ticks) and 100 nT noise the bias of the two-sided difference is
-about ``0.5 x 2.7e-5 x 100^2 / var(i)``, some 300 nT/A at 20 mA rms. The off sample after ``j`` was
-read for the *next* command, which ``j`` does not see. The price: that sample alone stands for the
-field, and the field's turn and its own change are removed over up to a period instead of cancelling
-between two neighbours, so the gyro's errors and the field's rate enter as nuisance columns.
+System Identification, 2nd ed., sec. 13.4). On a simulated ten-minute B-dot pass (seed 1, 100 nT
+noise, 8-25 mA rms) the difference against the off sample at tick ``k`` alone was off by up to
+8,000 nT/A (16 sigma); against the one at ``k+1`` by 1-2 sigma. The window at ``k-2`` adds the straight
+line (the field's change and the gyro's errors cancel to first order); wider spans (``k+2``, ``k-3``,
+...) lowered the precision on the same passes (sigma 10-40 % larger: the turn over several seconds
+makes the nuisances harder to tell from K). The precision is bounded by the off samples: one per
+period, each reused by the periods around it, so with currents that change slowly from one period to
+the next the reference costs about one sample's noise per period whatever the weights.
 
-Which samples: an on sample at least ``SETTLE_s`` after the tick that commanded its current (the drive
-may take that long to establish it), whose period ends in an off sample with the gyro running
+Which on samples: at least ``SETTLE_s`` after the tick that commanded their current (the drive may
+take that long to establish it), with every reference window present and the gyro running
 throughout.
 
 References
@@ -45,7 +50,8 @@ from scipy.spatial.transform import Rotation, Slerp
 from .differences import PairSet, fit_differences
 from .model import AXES, crosstalk_name
 
-__all__ = ["SynchronousFit", "fit_crosstalk_synchronous", "SETTLE_s", "MIN_PERIODS", "GYRO_GAP_FACTOR"]
+__all__ = ["SynchronousFit", "fit_crosstalk_synchronous", "SETTLE_s", "MIN_PERIODS", "GYRO_GAP_FACTOR", "NEAR",
+           "REFERENCE_TICKS"]
 
 # On samples closer than this to the tick that commanded their current are not used: a drive takes
 # tens to about 150 ms from command to current (common practice, no source).
@@ -53,8 +59,14 @@ SETTLE_s = 0.2
 # A coil's crosstalk column needs a non-zero current in at least this many control periods (common
 # practice, no source).
 MIN_PERIODS = 5
-# A gyro interval longer than this multiple of the median is a gap: no pair spans it.
+# A gyro interval longer than this multiple of the median is a gap: no row spans it.
 GYRO_GAP_FACTOR = 1.5
+# Off windows used on each side of a coils-on sample (one: more stretched the gyro's turn and lowered
+# the precision on simulated passes, see the module notes)
+NEAR = 1
+# The ticks whose windows serve as references, relative to the tick k that starts the sample's period:
+# not k or k - 1 (the controller read them for the current the sample sees)
+REFERENCE_TICKS = tuple(range(-1 - NEAR, -1)) + tuple(range(1, NEAR + 1))
 
 
 @dataclass(frozen=True)
@@ -119,37 +131,53 @@ def fit_crosstalk_synchronous(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A
     i = np.asarray(i_coil_A, dtype=float)
     off = np.asarray(off, dtype=bool)
     ticks = np.asarray(ticks_s, dtype=float)
-    on, after, period = _on_samples(t, m, i, off, ticks, settle_s)
+    ok = np.all(np.isfinite(m), axis=1)
+    period = np.searchsorted(ticks, t, side="right") - 1
+    refs = _reference_samples(t, off & ok, ticks)
     track = _GyroTrack.from_rates(np.asarray(gyro_t_s, float), np.asarray(w_sensor_rad_s, float))
-    on &= track.covers(t, after)
+    on = _on_samples(t, ok & ~off & np.all(np.isfinite(i), axis=1), period, ticks, refs, settle_s)
+    on &= track.covers(t, refs, period)
     n_periods, coils, undetermined = _periods_per_coil(i, on, period, min_periods)
     if not np.any(coils):
         nan33 = np.full((3, 3), np.nan)
         return SynchronousFit(nan33, nan33.copy(), np.full((9, 9), np.nan), undetermined, n_periods, np.nan,
                               int(on.sum()), 0)
-    pairs = _pairs(t, m, i, np.flatnonzero(on), after, track, block_s)
-    fit = fit_differences(pairs, coils, gyro_scale=True)
+    rows = _rows(t, m, i, np.flatnonzero(on), refs[np.clip(period[on], 0, len(refs) - 1)], track, block_s)
+    fit = fit_differences(rows, coils, gyro_scale=True)
     return SynchronousFit(fit.crosstalk_nT_per_A, fit.sigma_nT_per_A, fit.covariance, undetermined, n_periods,
                           fit.noise_nT, fit.n_pairs, fit.n_rejected)
 
 
-def _on_samples(t, m, i, off, ticks, settle_s):
-    """Which samples can be used as coils-on samples (N,) bool, the off sample after each (N,) int
-    (-1: none), and each sample's period (N,) int (index of the tick before it)."""
-    n = len(t)
-    ok = np.all(np.isfinite(m), axis=1)
-    period = np.searchsorted(ticks, t, side="right") - 1
-    off_idx = np.flatnonzero(off & ok)
-    nxt = np.searchsorted(off_idx, np.arange(n), side="right")
-    after = np.where(nxt < len(off_idx), off_idx[np.minimum(nxt, len(off_idx) - 1)], -1)
-    on = ok & ~off & np.all(np.isfinite(i), axis=1) & (period >= 0) & (after >= 0)
-    since = t - ticks[np.clip(period, 0, max(len(ticks) - 1, 0))] if len(ticks) else np.zeros(n)
-    on &= since >= settle_s
-    # the off sample must belong to the window of the next tick: the same period, then its end
-    next_tick = ticks[np.clip(period + 1, 0, max(len(ticks) - 1, 0))] if len(ticks) else np.zeros(n)
-    half = 0.5 * float(np.median(np.diff(ticks))) if len(ticks) > 1 else np.inf
-    on &= (period + 1 < len(ticks)) & (np.abs(t[np.maximum(after, 0)] - next_tick) < half)
-    return on, after, period
+def _reference_samples(t, off_ok, ticks) -> np.ndarray:
+    """For each period k (K, s) the off samples of the reference windows (ticks k + REFERENCE_TICKS),
+    -1 where a window has fewer samples than the widest, and a row of -1 when one of them is empty."""
+    n_ticks = len(ticks)
+    idx = np.flatnonzero(off_ok)
+    if not n_ticks or not len(idx):
+        return np.full((n_ticks, len(REFERENCE_TICKS)), -1)
+    j = np.searchsorted(ticks, t[idx])  # the window of the nearest tick holds the sample
+    lo, hi = np.clip(j - 1, 0, n_ticks - 1), np.clip(j, 0, n_ticks - 1)
+    near = np.where(np.abs(t[idx] - ticks[lo]) <= np.abs(t[idx] - ticks[hi]), lo, hi)
+    width = int(np.bincount(near, minlength=n_ticks).max())
+    window = np.full((n_ticks + 1, width), -1)  # the last row: no window
+    rank = np.arange(len(idx)) - np.searchsorted(near, near, side="left")
+    window[near, rank] = idx
+    k = np.arange(n_ticks)[:, None] + np.array(REFERENCE_TICKS)[None, :]
+    k = np.where((k >= 0) & (k < n_ticks), k, n_ticks)
+    refs = window[k].reshape(n_ticks, -1)  # (K, windows x width)
+    complete = np.all(window[k][:, :, 0] >= 0, axis=1)
+    refs[~complete] = -1
+    return refs
+
+
+def _on_samples(t, usable, period, ticks, refs, settle_s) -> np.ndarray:
+    """Coils-on samples to use (N,) bool: usable, at least ``settle_s`` after their period's tick, and
+    with every reference window present."""
+    n_ticks = len(ticks)
+    inside = (period >= 0) & (period < n_ticks - 1)
+    k = np.clip(period, 0, max(n_ticks - 1, 0))
+    since = t - ticks[k] if n_ticks else np.zeros(len(t))
+    return usable & inside & (since >= settle_s) & (refs[k, 0] >= 0 if n_ticks else False)
 
 
 def _periods_per_coil(i, on, period, min_periods):
@@ -166,23 +194,30 @@ def _periods_per_coil(i, on, period, min_periods):
     return n_periods, coils, undetermined
 
 
-def _pairs(t, m, i, on_idx, after, track: _GyroTrack, block_s) -> PairSet:
-    """The pairs (off sample after -> on sample) over the samples used, with their turns from the
-    integrated gyro and the field-rate columns of their blocks."""
-    b_idx = after[on_idx]
-    used = np.unique(np.r_[on_idx, b_idx])
+def _rows(t, m, i, on_idx, refs, track: _GyroTrack, block_s) -> PairSet:
+    """The rows (coils-on sample against its reference off samples) with their turns from the
+    integrated gyro, the straight-line weights and the field-rate columns of their blocks."""
+    present = refs >= 0
+    used = np.unique(np.r_[on_idx, refs[present]])
     pos = np.searchsorted(used, np.arange(len(t)))  # position of a used sample in ``used``
-    first, second = pos[b_idx], pos[on_idx]
-    dt = t[on_idx] - t[b_idx]
-    a_on, a_off = track.attitude(t[on_idx]), track.attitude(t[b_idx])
-    rel = a_on * a_off.inv()
-    turn = rel.as_matrix()
-    w = -rel.as_rotvec() / dt[:, None]
-    block = np.floor((t[on_idx] - t[on_idx[0]]) / block_s).astype(int)
+    safe = np.where(present, refs, on_idx[:, None])  # an absent reference points at the target, weight 0
+    t_ref, t_on = t[safe], t[on_idx]
+    n = present.sum(axis=1)
+    mean = np.sum(np.where(present, t_ref, 0.0), axis=1) / n
+    sxx = np.sum(np.where(present, (t_ref - mean[:, None]) ** 2, 0.0), axis=1)
+    weights = np.where(present, 1.0 / n[:, None] + (t_ref - mean[:, None]) * ((t_on - mean) / sxx)[:, None], 0.0)
+    a_on = track.attitude(t_on)
+    a_ref = track.attitude(t_ref.ravel())
+    rel = Rotation.from_quat(np.repeat(a_on.as_quat(), refs.shape[1], axis=0)) * a_ref.inv()
+    dt = (t_on[:, None] - t_ref)
+    turn = rel.as_matrix().reshape(len(on_idx), -1, 3, 3)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(present[:, :, None], -rel.as_rotvec().reshape(len(on_idx), -1, 3) / dt[:, :, None], 0.0)
+    block = np.floor((t_on - t_on[0]) / block_s).astype(int)
     segment = np.unique(block, return_inverse=True)[1]
-    trend = a_on.as_matrix() * dt[:, None, None]
-    return PairSet(m_nT=m[used], i_A=np.nan_to_num(i[used]), first=first, second=second, dt_s=dt, turn=turn,
-                   trend=trend, segment=segment, w_rad_s=w)
+    trend = a_on.as_matrix() * np.sum(weights * dt, axis=1)[:, None, None]
+    return PairSet(m_nT=m[used], i_A=np.nan_to_num(i[used]), target=pos[on_idx], refs=pos[safe], weights=weights,
+                   dt_s=np.where(present, dt, 0.0), turn=turn, trend=trend, segment=segment, w_rad_s=w)
 
 
 @dataclass(frozen=True)
@@ -207,12 +242,17 @@ class _GyroTrack:
         steps = Rotation.from_rotvec(np.where(gap[:, None], 0.0, -0.5 * (w[1:] + w[:-1]) * dt[:, None]))
         return cls(t, _cumulative(steps), np.r_[0, np.cumsum(gap)])
 
-    def covers(self, t: np.ndarray, after: np.ndarray) -> np.ndarray:
-        """Whether the track runs without a gap from each sample to the sample ``after`` it (N,) bool."""
-        if self.rotations is None:
+    def covers(self, t: np.ndarray, refs: np.ndarray, period: np.ndarray) -> np.ndarray:
+        """Whether the track runs without a gap over each sample's reference windows (N,) bool:
+        from its earliest reference to its latest (``refs`` per period, ``period`` per sample)."""
+        if self.rotations is None or not len(refs):
             return np.zeros(len(t), bool)
-        a, b = t, t[np.maximum(after, 0)]
-        inside = (a >= self.t_s[0]) & (b <= self.t_s[-1])
+        r = refs[np.clip(period, 0, len(refs) - 1)]
+        present = r >= 0
+        a = np.where(present, t[np.maximum(r, 0)], np.inf).min(axis=1)
+        b = np.where(present, t[np.maximum(r, 0)], -np.inf).max(axis=1)
+        a, b = np.minimum(a, t), np.maximum(b, t)
+        inside = present.any(axis=1) & (a >= self.t_s[0]) & (b <= self.t_s[-1])
         pa = self.part[np.clip(np.searchsorted(self.t_s, a, side="right") - 1, 0, len(self.t_s) - 1)]
         pb = self.part[np.clip(np.searchsorted(self.t_s, b, side="left"), 0, len(self.t_s) - 1)]
         return inside & (pa == pb)
