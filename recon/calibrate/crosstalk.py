@@ -54,7 +54,9 @@ def estimate_crosstalk(inputs: CalibrationInputs, gyro: GyroRates | None, contro
     fusion = fuse_crosstalk(estimates, sigma_p)
     notes += (prior_note(sigma_p) if prior_sigma is None else
               f"crosstalk prior: zero +- {', '.join(f'{v:.0f}' for v in sigma_p)} nT/A per element (given)",)
-    used = " and ".join(fusion.estimates) + " estimates" if fusion.estimates else "estimates (none gives a value)"
+    n_used = len(fusion.estimates)
+    used = (" and ".join(fusion.estimates) + (" estimates" if n_used > 1 else " estimate") if n_used
+            else "estimates (none gives a value)")
     notes += (f"crosstalk: {fusion.n_determined} of 9 directions determined (prior variance shrunk at least "
               f"{fusion.min_variance_shrink:g} times by the {used}); the others are held at the prior",)
     return CrosstalkEstimates(step, sync, fusion, fusion.agreement, notes)
