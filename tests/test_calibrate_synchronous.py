@@ -65,14 +65,16 @@ def test_synchronous_estimate_on_a_detumble_pass(detumble):
     k = _truth_k(sim)
     sync, sigma = cal.crosstalk_synchronous_nT_per_A, cal.crosstalk_synchronous_nT_per_A_sigma
     assert np.all(np.isfinite(sync))
-    assert np.abs((sync - k) / sigma).max() < Z_FENCE  # measured max 1.3
-    # noise-limited: one off sample per period is the reference, currents 8-25 mA rms; measured 14 %
+    assert np.abs((sync - k) / sigma).max() < Z_FENCE  # measured max 1.4
+    # noise-limited: one off sample per period is the reference, currents 8-25 mA rms; measured 15 %
     assert _rel(sync, k) < 0.25
-    # all three estimates combined with the prior: every direction determined, within 10 % (measured
-    # 7.9 %) and the error within its stated covariance (measured chi-square 3.2 for 9)
+    # all three estimates combined with the prior: every direction determined, the error within its
+    # stated covariance (measured chi-square 6.0 for 9) and within 25 % (measured 13.5 %): the stated
+    # covariance itself puts the expected error at sqrt(trace)/|K| = 16.5 % (141 nT/A per element
+    # against |K| = 2,900 nT/A), so 10 % would fail on noise alone; the chi-square is the real check
     assert cal.crosstalk.n_determined == 9
-    assert _rel(cal.crosstalk_nT_per_A, k) < 0.10
     assert _chi2(cal, k) < CHI2_9_999
+    assert _rel(cal.crosstalk_nT_per_A, k) < 0.25
 
 
 def test_calibrated_field_noise_carries_the_crosstalk_uncertainty(detumble):
@@ -100,8 +102,8 @@ def test_synchronous_estimate_with_one_imperfection(tmp_path_factory, only):
     sim, _, _, cal = _calibrated(tmp_path_factory, "detumble", 2, only, 900.0)
     k = _truth_k(sim)
     z = (cal.crosstalk_synchronous_nT_per_A - k) / cal.crosstalk_synchronous_nT_per_A_sigma
-    assert np.abs(z).max() < Z_FENCE  # measured 1.6-1.7
-    assert _chi2(cal, k) < CHI2_9_999  # measured 14-15.5 (all nine determined, 18-22 %)
+    assert np.abs(z).max() < Z_FENCE  # measured 1.6
+    assert _chi2(cal, k) < CHI2_9_999  # measured 14.5-15.8 (all nine determined, 21-23 %)
 
 
 def test_each_sample_gets_its_periods_command_when_the_log_is_written_late(tmp_path_factory):
@@ -152,10 +154,33 @@ def test_chatter_pass_large_crosstalk_widens_the_prior(tmp_path_factory):
     sim, _, _, cal = _calibrated(tmp_path_factory, "coils_on_chatter", 6, (), 900.0)
     k = _truth_k(sim)
     f = cal.crosstalk
-    assert f.prior_widening > 3.0  # measured 4.3
+    assert f.prior_widening > 3.0  # measured 4.0
     assert f.n_determined >= 6  # measured 6: three directions shrunk only ~40 times
-    assert _rel_determined(cal, k) < 0.10  # measured 1.1 %
-    assert _chi2(cal, k) < CHI2_9_999  # measured 13 (1.5 per degree of freedom)
+    assert _rel_determined(cal, k) < 0.10  # measured 0.85 %
+    assert _chi2(cal, k) < CHI2_9_999  # measured 16.9
+
+
+def test_an_estimate_whose_model_misfits_is_left_out(tmp_path_factory):
+    """Stamps 0.24 s early and not corrected: a 10 Hz sample stamped before a tick was taken after it,
+    so one step per period is attributed to the wrong pair. The fence hides those rows from the fit,
+    but they are 14 % of them (599 of 4,197): the step estimate is left out rather than applied with a
+    sigma that does not hold (its error is 100 % of K, 38 sigma). Nothing else sees K on a pass whose
+    coils never switch off, so every direction is held at the prior."""
+    sim, _, _, cal = _calibrated(tmp_path_factory, "coils_on_chatter", 2, ("mag_time_offset",), 600.0)
+    assert sim.truth["magnetometer"]["time_offset_s"] == pytest.approx(-0.243)
+    assert any(n.startswith("step estimate left out") for n in cal.notes)
+    assert "step" not in cal.crosstalk.estimates
+    assert cal.crosstalk.n_determined == 0
+    assert np.all(cal.crosstalk_nT_per_A == 0.0)  # the prior's mean
+
+
+@pytest.mark.xfail(strict=True, reason="known gap: with the step estimate left out, nothing widens the "
+                   "geometric prior (5,600 nT/A) to this pass's 40,000 nT/A; the cure is to correct the "
+                   "stamps by the time offset before windowing (issue 13, point 2), which the command "
+                   "replay cannot find here (the commands are saturated: 3 informative)")
+def test_the_held_prior_covers_a_crosstalk_left_unseen(tmp_path_factory):
+    sim, _, _, cal = _calibrated(tmp_path_factory, "coils_on_chatter", 2, ("mag_time_offset",), 600.0)
+    assert _chi2(cal, _truth_k(sim)) < CHI2_9_999  # measured 157
 
 
 def _rel_determined(cal, k_true):

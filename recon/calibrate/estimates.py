@@ -13,7 +13,7 @@ from .inputs import CalibrationInputs, seconds_since
 from .magfit import fit_magnetometer
 from .model import N_PARAMS, PARAM_NAMES, ParamIndex, matrices_from_params, nominal_params
 from .steps import StepFit, fit_crosstalk_steps
-from .synchronous import SynchronousFit, fit_crosstalk_synchronous
+from .synchronous import SETTLE_s, STAMP_TOLERANCE_s, SynchronousFit, fit_crosstalk_synchronous
 
 __all__ = ["MIN_SAMPLES", "GyroRates", "gyro_rates", "step_estimate", "synchronous_estimate", "MagnitudeFit",
            "magnitude_fit", "reported"]
@@ -44,12 +44,19 @@ def gyro_rates(inputs: CalibrationInputs, gyro_time_utc, w_gyro_body_rad_s) -> t
 
 
 def step_estimate(inputs: CalibrationInputs, gyro: GyroRates | None, controller_read) -> StepFit | None:
-    """The step-response estimate of the crosstalk, or None without coils or gyro."""
+    """The step-response estimate of the crosstalk, or None without coils or gyro. Besides the
+    samples the controller read, the pairs bridge those taken less than ``SETTLE_s`` after a tick,
+    when the ticks are known (the drive may not yet carry the new command)."""
     if gyro is None:
         return None
     m_step = np.where((~inputs.exclude)[:, None], inputs.m_sensor_nT, np.nan)
+    skip = np.zeros(len(inputs.t_s), bool) if controller_read is None else np.asarray(controller_read, bool).copy()
+    if inputs.ticks_s is not None and len(inputs.ticks_s):
+        k = np.searchsorted(inputs.ticks_s, inputs.t_s, side="right") - 1
+        since = inputs.t_s - inputs.ticks_s[np.maximum(k, 0)]
+        skip |= (k >= 0) & (since > 0) & (since < SETTLE_s - STAMP_TOLERANCE_s)
     return fit_crosstalk_steps(inputs.t_s, m_step, inputs.i_fit_A, gyro.t_s, gyro.w_sensor_rad_s,
-                               inputs.max_current_A, skip=controller_read)
+                               inputs.max_current_A, skip=skip)
 
 
 def synchronous_estimate(inputs: CalibrationInputs, gyro: GyroRates | None) -> SynchronousFit | None:

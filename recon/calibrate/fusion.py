@@ -54,8 +54,8 @@ __all__ = ["MIN_VARIANCE_SHRINK", "MAX_PRIOR_WIDENING", "CrosstalkEstimate", "Cr
 # estimates shrink the variance 6-40 times while their error is 50-100 % of K; those directions are
 # held at the prior, which costs the field under 10 nT at such currents.
 MIN_VARIANCE_SHRINK = 100.0
-# The prior's sigma is never widened beyond this factor (a magnetometer 0.05 m from a coil; larger
-# crosstalk would saturate a sensor in a few mA)
+# The prior's sigma is never widened beyond this factor: for 1.5 A m^2/A, the field of a coil 6 cm from
+# the magnetometer (no magnetometer worth calibrating sits closer; common practice, no source)
 MAX_PRIOR_WIDENING = 100.0
 
 

@@ -23,13 +23,14 @@ controller reads the off samples at tick ``k`` (and, for B-dot, at ``k-1``, whos
 takes) to compute ``i_j``, so their noise drives ``i_j``; a regressor correlated with its own noise
 biases least squares (the errors-in-variables problem of closed-loop identification; Ljung 1999,
 System Identification, 2nd ed., sec. 13.4). On a simulated ten-minute B-dot pass (seed 1, 100 nT
-noise, 8-25 mA rms) the difference against the off sample at tick ``k`` alone was off by up to
+noise, 13-22 mA rms) the difference against the off sample at tick ``k`` alone was off by up to
 8,000 nT/A (16 sigma); against the one at ``k+1`` by 1-2 sigma. The window at ``k-2`` adds the straight
 line (the field's change and the gyro's errors cancel to first order); wider spans (``k+2``, ``k-3``,
-...) lowered the precision on the same passes (sigma 10-40 % larger: the turn over several seconds
-makes the nuisances harder to tell from K). The precision is bounded by the off samples: one per
-period, each reused by the periods around it, so with currents that change slowly from one period to
-the next the reference costs about one sample's noise per period whatever the weights.
+...) did worse on the same passes (relative error 20-24 % with one window each side, 26-33 % with two
+or three, on two ten-minute passes: the turn over several seconds makes the nuisances harder to tell
+from K). The precision is bounded by the off samples: one per period, each reused by the periods
+around it, so with currents that change slowly from one period to the next the reference costs about
+one sample's noise per period whatever the weights.
 
 Which on samples: at least ``SETTLE_s`` after the tick that commanded their current (the drive may
 take that long to establish it), with every reference window present and the gyro running
@@ -50,12 +51,15 @@ from scipy.spatial.transform import Rotation, Slerp
 from .differences import PairSet, fit_differences
 from .model import AXES, crosstalk_name
 
-__all__ = ["SynchronousFit", "fit_crosstalk_synchronous", "SETTLE_s", "MIN_PERIODS", "GYRO_GAP_FACTOR", "NEAR",
-           "REFERENCE_TICKS"]
+__all__ = ["SynchronousFit", "fit_crosstalk_synchronous", "SETTLE_s", "STAMP_TOLERANCE_s", "MIN_PERIODS",
+           "GYRO_GAP_FACTOR", "NEAR", "REFERENCE_TICKS"]
 
 # On samples closer than this to the tick that commanded their current are not used: a drive takes
 # tens to about 150 ms from command to current (common practice, no source).
 SETTLE_s = 0.2
+# Instants closer than this count as equal (stamps are whole ns; seconds since the pass start in
+# floating point carry rounding of ~1e-15 s per second)
+STAMP_TOLERANCE_s = 1e-6
 # A coil's crosstalk column needs a non-zero current in at least this many control periods (common
 # practice, no source).
 MIN_PERIODS = 5
@@ -177,7 +181,7 @@ def _on_samples(t, usable, period, ticks, refs, settle_s) -> np.ndarray:
     inside = (period >= 0) & (period < n_ticks - 1)
     k = np.clip(period, 0, max(n_ticks - 1, 0))
     since = t - ticks[k] if n_ticks else np.zeros(len(t))
-    return usable & inside & (since >= settle_s) & (refs[k, 0] >= 0 if n_ticks else False)
+    return usable & inside & (since >= settle_s - STAMP_TOLERANCE_s) & (refs[k, 0] >= 0 if n_ticks else False)
 
 
 def _periods_per_coil(i, on, period, min_periods):
