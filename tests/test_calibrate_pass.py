@@ -9,7 +9,13 @@ import numpy as np
 import pytest
 from test_calibrate_core import I_MAX_A, NOISE_nT, synthetic_pass
 
-from recon.calibrate import calibrate_arrays, combine_crosstalk, compare_crosstalk, format_crosstalk_table
+from recon.calibrate import (
+    calibrate_arrays,
+    combine_crosstalk,
+    compare_crosstalk,
+    format_crosstalk_table,
+    prior_sigma_nT_per_A,
+)
 from recon.core import InputError, controller_samples, effective_current, infer_first_tick
 
 T0 = np.datetime64("2026-07-14T09:12:00", "ns")
@@ -170,8 +176,14 @@ def test_quiet_pass_summary_and_table_say_undetermined():
                            gyro_time_utc=_t(p["gyro_t_s"]), w_gyro_body_rad_s=w_body)
     summary = cal.to_summary()
     text = json.dumps(summary, allow_nan=False)  # JSON-ready: undetermined values are null
-    assert summary["crosstalk_nT_per_A"] == [[None] * 3] * 3
+    # the estimates say nothing on K (null), so what is removed is the prior: zero, with the prior's sigma
+    assert summary["crosstalk_magnitude_nT_per_A"] == [[None] * 3] * 3
     assert summary["crosstalk_step_nT_per_A"] == [[None] * 3] * 3
+    assert summary["crosstalk_synchronous_nT_per_A"] is None  # no off-window mask given
+    assert summary["crosstalk_nT_per_A"] == [[0.0] * 3] * 3
+    assert summary["crosstalk_determined"]["directions"] == 0
+    prior = prior_sigma_nT_per_A()  # 1.6 A m^2/A at 0.2-0.5 m (recon.calibrate.prior)
+    np.testing.assert_allclose(summary["crosstalk_nT_per_A_sigma"], np.tile(prior, (3, 1)), rtol=1e-9)
     assert all(v is not None for v in summary["bias_nT"])
     assert "coil x current spans 0 % of its range" in summary["undetermined"]["crosstalk_x_coil_x"]
     assert summary["residual_rms_nT"]["after"] < summary["residual_rms_nT"]["before"]

@@ -95,10 +95,14 @@ def test_calibrated_body_field_against_truth(informative):
 
 def test_quiet_pass_reports_crosstalk_undetermined(quiet):
     sim, cal = quiet
-    assert np.all(np.isnan(cal.crosstalk_nT_per_A))
+    assert np.all(np.isnan(cal.crosstalk_magnitude_nT_per_A))
     assert np.all(np.isnan(cal.crosstalk_step_nT_per_A))
     assert "coil x current spans 0 % of its range" in cal.undetermined["crosstalk_x_coil_x"]
-    assert cal.to_summary()["crosstalk_nT_per_A"] == [[None] * 3] * 3
+    assert cal.to_summary()["crosstalk_magnitude_nT_per_A"] == [[None] * 3] * 3
+    # nothing determined: K is held at the prior, zero, and its sigma is the prior's
+    assert cal.crosstalk.n_determined == 0
+    np.testing.assert_array_equal(cal.crosstalk_nT_per_A, 0.0)
+    np.testing.assert_allclose(cal.crosstalk_nT_per_A_sigma, np.tile(cal.crosstalk.prior_sigma_nT_per_A, (3, 1)))
     assert "undetermined" in format_crosstalk_table(cal)
     assert "crosstalk_significant" not in {a.code for a in cal.anomalies}
     bias, _, _ = _truth(sim)

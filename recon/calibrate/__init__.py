@@ -1,5 +1,6 @@
 """Magnetometer calibration for one pass: time-tag offset, bias, soft iron and coil crosstalk (nT per A),
-with uncertainties."""
+with uncertainties; the crosstalk from three estimates and a geometric prior, with the directions the
+data do not determine held at the prior."""
 
 from .agreement import (
     CrosstalkAgreement,
@@ -11,6 +12,8 @@ from .calibration import (
     calibrate_arrays,
     calibrate_pass,
 )
+from .fusion import CrosstalkFusion, fuse_crosstalk
+from .prior import prior_sigma_nT_per_A
 from .summary import (
     format_crosstalk_table,
 )
@@ -24,6 +27,9 @@ __all__ = [
     "compare_crosstalk",
     "combine_crosstalk",
     "format_crosstalk_table",
+    "CrosstalkFusion",
+    "fuse_crosstalk",
+    "prior_sigma_nT_per_A",
     "TimeOffset",
     "mag_time_offset",
     "time_offset_from_replay",

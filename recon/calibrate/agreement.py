@@ -1,4 +1,5 @@
-"""Do two crosstalk estimates agree, what is their combination, and which crosstalk is removed?"""
+"""Do two crosstalk estimates agree, and what is their combination? (Any number of them, with the
+prior: :mod:`recon.calibrate.fusion`.)"""
 
 from __future__ import annotations
 
@@ -9,8 +10,7 @@ from scipy import stats
 
 from .model import crosstalk_name
 
-__all__ = ["CrosstalkAgreement", "compare_crosstalk", "combine_crosstalk", "CombinedCrosstalk",
-           "reconcile_crosstalk", "AGREEMENT_P"]
+__all__ = ["CrosstalkAgreement", "compare_crosstalk", "combine_crosstalk", "AGREEMENT_P"]
 
 # Two estimates agree when the chi-square of their difference has a p-value above this
 # (a 1 % test; common practice, no source).
@@ -126,43 +126,3 @@ def combine_crosstalk(k_a: np.ndarray, cov_a: np.ndarray, k_b: np.ndarray,
         out[have] = c_sub @ vec[have]
         cov[np.ix_(have, have)] = c_sub
     return out.reshape(3, 3), cov
-
-
-@dataclass(frozen=True)
-class CombinedCrosstalk:
-    """Result of :func:`reconcile_crosstalk`: the crosstalk removed from the calibrated field.
-
-    Attributes
-    ----------
-    crosstalk_nT_per_A, sigma_nT_per_A : (3, 3) arrays, nT per A; NaN where neither estimate says
-    covariance : (9, 9) array, (nT/A)^2, row-major
-    agreement : CrosstalkAgreement
-        The comparison of the two estimates it was formed from.
-    """
-
-    crosstalk_nT_per_A: np.ndarray
-    sigma_nT_per_A: np.ndarray
-    covariance: np.ndarray
-    agreement: CrosstalkAgreement
-
-
-def reconcile_crosstalk(k_fit: np.ndarray, cov_fit: np.ndarray, k_step: np.ndarray,
-                        cov_step: np.ndarray) -> CombinedCrosstalk:
-    """Compare the magnitude estimate (``k_fit``) and the step-response estimate (``k_step``); when
-    they agree (or cannot be compared), their combination (:func:`combine_crosstalk`); when they
-    disagree, the magnitude estimate, with the step estimate only where the magnitude says nothing.
-
-    Parameters
-    ----------
-    k_fit, k_step : (3, 3) arrays, nT per A (NaN where undetermined)
-    cov_fit, cov_step : (9, 9) arrays, (nT/A)^2, row-major
-    """
-    agreement = compare_crosstalk(k_fit, cov_fit, k_step, cov_step)
-    if agreement.agree is False:
-        k, c = combine_crosstalk(k_fit, cov_fit, np.full((3, 3), np.nan), np.full((9, 9), np.nan))
-        take_step = ~np.isfinite(k) & np.isfinite(k_step)
-        k[take_step] = k_step[take_step]
-        c[np.ix_(take_step.ravel(), take_step.ravel())] = cov_step[np.ix_(take_step.ravel(), take_step.ravel())]
-    else:
-        k, c = combine_crosstalk(k_fit, cov_fit, k_step, cov_step)
-    return CombinedCrosstalk(k, np.sqrt(np.abs(np.diag(c))).reshape(3, 3), c, agreement)

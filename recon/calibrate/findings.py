@@ -25,16 +25,22 @@ BIAS_FRACTION_LARGE = 0.05
 BIAS_FRACTION_WARNING = 0.10
 
 
-def crosstalk_estimates_disagree(agreement: CrosstalkAgreement, span) -> Anomaly:
-    """The anomaly for two crosstalk estimates that differ beyond their uncertainty (two unbiased
-    estimates of one quantity that differ: at least one model is wrong). ``span``: (start, stop) UTC."""
+def crosstalk_estimates_disagree(agreement: CrosstalkAgreement, scale_factor: float, left_out: str | None,
+                                 span) -> Anomaly:
+    """The anomaly for crosstalk estimates that differ beyond their uncertainty (unbiased estimates of
+    one quantity that differ: at least one model is wrong). ``scale_factor``: the factor applied to
+    their sigmas before they were combined; ``left_out``: the estimate left out as the odd one, if
+    any; ``span``: (start, stop) UTC."""
+    then = (f"the {left_out} estimate alone disagrees with the others and is left out" if left_out else
+            f"their sigmas are scaled by {scale_factor:.2g} before they are combined, so fewer directions of K "
+            f"count as determined")
     return Anomaly(
         "crosstalk_estimates_disagree", "warning",
-        f"the crosstalk from the field magnitude and from the current steps differ: chi-square "
-        f"{agreement.chi2:.1f} for {agreement.dof} elements (p = {agreement.p_value:.2g}); "
+        f"the crosstalk estimates differ: chi-square {agreement.chi2:.1f} for {agreement.dof} degrees of "
+        f"freedom (p = {agreement.p_value:.2g}; {agreement.test}); "
         f"beyond 3 sigma: {', '.join(agreement.elements_beyond_3_sigma) or 'none singly'}; "
         f"a wrong coil-log time base or latency, a wrong mag_sampling, or a poor reference field can "
-        f"cause it; the magnitude estimate is applied", span[0], span[1])
+        f"cause it; {then}", span[0], span[1])
 
 
 def crosstalk_significant(k, k_s, imax, noise, mag_sampling, span) -> list[Anomaly]:

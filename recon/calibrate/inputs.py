@@ -1,5 +1,14 @@
 """The arrays the calibration works on: from the caller's arrays (:class:`CalibrationInputs`) and,
-for a pass, from the mission and the cleaned logs (reference magnitude, coil currents, gyro rate)."""
+for a pass, from the mission and the cleaned logs (reference magnitude, coil currents, gyro rate).
+
+The current each magnetometer sample saw, when the control ticks are known: the command of the tick
+that starts the sample's period, which is the coil-log row written before the period ends (before the
+next off window opens, or before the next tick without windows). A log written at some phase inside
+the period, not at the tick, then still gives each sample its period's command; holding the last
+logged value (:func:`recon.core.effective_current`) would give the samples between the tick and the
+log row the previous command. A sample stamped with a tick's instant belongs to the period before it
+(a flight loop reads its sensors at the tick, then commands). Without ``first_tick`` the ticks are
+placed from the log's own changes (:func:`recon.core.infer_first_tick`), and the two rules agree."""
 
 from __future__ import annotations
 
@@ -7,10 +16,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import NS_PER_S, controller_samples, effective_current
+from ..core import (
+    HOLD_INTERVALS,
+    NS_PER_S,
+    control_ticks,
+    controller_samples,
+    effective_current,
+    held_values,
+    in_off_window,
+    infer_first_tick,
+)
 
 __all__ = ["DEFAULT_NOISE_nT", "CalibrationInputs", "prepare_inputs", "seconds_since", "reference_magnitude",
-           "CoilCurrents", "coil_currents", "gyro_rate_body"]
+           "CoilCurrents", "coil_currents", "period_current", "gyro_rate_body"]
 
 # Default magnetometer noise when the mission file gives none: the middle of 10-100 nT rms for COTS
 # magnetoresistive sensors (common practice, no source).
@@ -39,6 +57,10 @@ class CalibrationInputs:
     i_fit_A, i_apply_A : (N, 3) arrays, A, or None (no coils)
     max_current_A : (3,) array, A, or None (no coils)
     exclude : (N,) bool array
+    coils_off : (N,) bool array or None
+        Samples inside a coil-off window (windowed sampling); None otherwise.
+    ticks_s : (K,) array, s since ``t0_ns``, or None
+        The control ticks, when known.
     notes : tuple of str
         What was assumed, and why.
     """
@@ -54,6 +76,8 @@ class CalibrationInputs:
     i_apply_A: np.ndarray | None
     max_current_A: np.ndarray | None
     exclude: np.ndarray
+    coils_off: np.ndarray | None
+    ticks_s: np.ndarray | None
     notes: tuple[str, ...]
 
     @property
@@ -68,7 +92,7 @@ class CalibrationInputs:
 
 
 def prepare_inputs(time_utc, m_sensor_nT, h_nT, i_fit_A, sensor_to_body, max_current_A, noise_nT,
-                   i_apply_A, exclude) -> CalibrationInputs:
+                   i_apply_A, exclude, coils_off=None, tick_time_utc=None) -> CalibrationInputs:
     """The caller's arrays as :class:`CalibrationInputs`, with defaults for what is not given (and a
     note for each default assumed)."""
     t = np.asarray(time_utc, dtype="datetime64[ns]")
@@ -92,7 +116,9 @@ def prepare_inputs(time_utc, m_sensor_nT, h_nT, i_fit_A, sensor_to_body, max_cur
         h_nT=np.asarray(h_nT, dtype=float).reshape(n),
         sensor_to_body=np.eye(3) if sensor_to_body is None else np.asarray(sensor_to_body, dtype=float),
         noise_nT=noise, i_fit_A=i_fit, i_apply_A=i_apply, max_current_A=imax,
-        exclude=np.zeros(n, bool) if exclude is None else np.asarray(exclude, dtype=bool), notes=tuple(notes))
+        exclude=np.zeros(n, bool) if exclude is None else np.asarray(exclude, dtype=bool),
+        coils_off=None if coils_off is None else np.asarray(coils_off, dtype=bool).reshape(n),
+        ticks_s=None if tick_time_utc is None else seconds_since(tick_time_utc, t0), notes=tuple(notes))
 
 
 def reference_magnitude(reference, time_utc: np.ndarray) -> np.ndarray:
@@ -137,6 +163,10 @@ class CoilCurrents:
     mag_sampling : str
     controller_read : (N,) bool array
         Samples the onboard controller read for its commands.
+    coils_off : (N,) bool array or None
+        Samples inside a coil-off window ("windowed" only).
+    tick_time_utc : (K,) datetime64[ns] or None
+        The control ticks over the samples, when the controller's period is known.
     """
 
     i_fit_A: np.ndarray | None = None
@@ -144,11 +174,14 @@ class CoilCurrents:
     max_current_A: np.ndarray | None = None
     mag_sampling: str | None = None
     controller_read: np.ndarray | None = None
+    coils_off: np.ndarray | None = None
+    tick_time_utc: np.ndarray | None = None
 
 
 def coil_currents(mission, coils_log, time_utc: np.ndarray) -> CoilCurrents:
     """The currents each magnetometer sample at ``time_utc`` saw, from the cleaned coil log: the
-    effective current, or for ``mag_sampling = "coils_off"`` the held logged current (a test of the
+    command of the sample's control period when the ticks are known (:func:`period_current`), else
+    the effective current; for ``mag_sampling = "coils_off"`` the held logged current (a test of the
     duty cycle)."""
     if mission.coils is None or coils_log is None or not len(coils_log.time_utc):
         return CoilCurrents()
@@ -156,14 +189,79 @@ def coil_currents(mission, coils_log, time_utc: np.ndarray) -> CoilCurrents:
     ctl = mission.controller
     sampling = spec.mag_sampling
     tc, ic = coils_log.time_utc, np.asarray(coils_log.values, dtype=float)
-    timing = {"period_s": None if ctl is None else ctl.period_s,
-              "first_tick": None if ctl is None else ctl.first_tick, "off_window_s": spec.off_window_s}
-    if sampling == "coils_off":
-        i_fit = effective_current(time_utc, tc, ic, "coils_on")
+    period = None if ctl is None else ctl.period_s
+    first = None if ctl is None else ctl.first_tick
+    ticks = None
+    if period and len(time_utc):
+        first = infer_first_tick(tc, ic, period) if first is None else first
+        ticks = _ticks_over(time_utc, first, period)
+    timing = {"period_s": period, "first_tick": first, "off_window_s": spec.off_window_s}
+    if sampling == "coils_off" or ticks is None:
+        i_fit = effective_current(time_utc, tc, ic, "coils_on" if sampling == "coils_off" else sampling, **timing)
+        read = controller_samples(time_utc, tc, ic, sampling, **timing)
+        off = None
     else:
-        i_fit = effective_current(time_utc, tc, ic, sampling, **timing)
+        before = spec.off_window_s[0] if sampling == "windowed" else 0.0
+        i_fit, off = period_current(time_utc, tc, ic, ticks, before,
+                                    spec.off_window_s[1] if sampling == "windowed" else None)
+        read = off if sampling == "windowed" else _last_before(time_utc, ticks)
     return CoilCurrents(i_fit_A=i_fit, i_apply_A=i_fit, max_current_A=np.asarray(spec.max_current_A, dtype=float),
-                        mag_sampling=sampling, controller_read=controller_samples(time_utc, tc, ic, sampling, **timing))
+                        mag_sampling=sampling, controller_read=read, coils_off=off, tick_time_utc=ticks)
+
+
+def _ticks_over(time_utc, first_tick, period_s) -> np.ndarray:
+    """The ticks ``first_tick + k period_s`` (k >= 0) from one before the first sample to one after the
+    last."""
+    t0 = np.asarray(time_utc, dtype="datetime64[ns]")[0].astype(np.int64)
+    x = seconds_since(time_utc, t0)
+    f = float(seconds_since(np.array([first_tick], dtype="datetime64[ns]"), t0)[0])
+    ticks = control_ticks(max(x[0] - period_s, f), x[-1] + period_s, period_s, f)
+    return t0 + np.round(ticks * NS_PER_S).astype(np.int64).astype("timedelta64[ns]")
+
+
+def period_current(time_utc: np.ndarray, coil_time_utc: np.ndarray, i_coil_A: np.ndarray,
+                   tick_time_utc: np.ndarray, before_s: float,
+                   after_s: float | None) -> tuple[np.ndarray, np.ndarray | None]:
+    """The command of each sample's control period (see the module notes), and the coil-off mask.
+
+    Parameters
+    ----------
+    time_utc : (N,) datetime64[ns]; coil_time_utc : (C,) datetime64[ns]; i_coil_A : (C, 3) A
+    tick_time_utc : (K,) datetime64[ns], increasing, covering the samples
+    before_s, after_s : float, s
+        The off window around each tick (``after_s`` None: no windows, "coils_on"; ``before_s`` 0).
+
+    Returns
+    -------
+    (N, 3) array, A (zero inside the off windows, NaN where the log has no recent row);
+    (N,) bool array of the samples inside an off window, or None without windows
+    """
+    tm = np.asarray(time_utc, dtype="datetime64[ns]").astype(np.int64)
+    ticks = np.asarray(tick_time_utc, dtype="datetime64[ns]").astype(np.int64)
+    tc = np.asarray(coil_time_utc, dtype="datetime64[ns]").astype(np.int64)
+    # the period's end: the first tick at or after the sample (a sample at a tick ends the period before)
+    end = ticks[np.clip(np.searchsorted(ticks, tm, side="left"), 0, len(ticks) - 1)]
+    med = float(np.median(np.diff(tc))) / NS_PER_S if len(tc) > 1 else np.inf
+    period_s = float(np.median(np.diff(ticks))) / NS_PER_S if len(ticks) > 1 else 0.0
+    max_hold_ns = max(HOLD_INTERVALS * med, 2.0 * period_s) * NS_PER_S
+    query = end - int(round(before_s * NS_PER_S))
+    i = held_values(tc, np.asarray(i_coil_A, float), query, strictly_before=True, max_age=max_hold_ns)
+    if after_s is None:
+        return i, None
+    off = in_off_window(tm, ticks, int(round(before_s * NS_PER_S)), int(round(after_s * NS_PER_S)), edge=1)
+    i[off] = 0.0
+    return i, off
+
+
+def _last_before(time_utc, tick_time_utc) -> np.ndarray:
+    """The last sample at or before each tick (N,) bool: what a loop that reads its sensors at the tick
+    reads."""
+    tm = np.asarray(time_utc, dtype="datetime64[ns]").astype(np.int64)
+    ticks = np.asarray(tick_time_utc, dtype="datetime64[ns]").astype(np.int64)
+    j = np.searchsorted(tm, ticks, side="right") - 1
+    out = np.zeros(len(tm), bool)
+    out[j[(j >= 0) & (ticks >= tm[0]) & (ticks <= tm[-1])]] = True
+    return out
 
 
 def gyro_rate_body(gyro) -> np.ndarray | None:

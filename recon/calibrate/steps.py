@@ -2,35 +2,16 @@
 
 Between two consecutive magnetometer samples ``k`` and ``k+1`` (sensor axes, interval ``dt_k``) the
 satellite turns by the gyro's rate ``w`` and the true field's components turn with it. With
-``m_k = S b_k + b0 + K i_k + n_k`` (:mod:`recon.calibrate.model`) and ``R_k = exp(-[w x] dt_k)``
-(the change of the components of a fixed vector seen from a frame turning at ``w``;
-``Rotation.from_rotvec(-w dt)``), the rotation-compensated difference is
+``R_k = exp(-[w x] dt_k)`` (``Rotation.from_rotvec(-w dt)``) the rotation-compensated difference
 
-    d_k = m_{k+1} - R_k m_k
-        = K i_{k+1} - R_k K i_k                      (the step, ~ K (i_{k+1} - i_k))
-        + (I - R_k) b0                               (bias turned with the frame)
-        + (S - I) R_k b_k - R_k (S - I) b_k          (soft iron does not commute with the turn)
-        + A_{k+1} g_dot dt_k                         (the field's own change along the orbit)
-        - R_k [m_k x] beta dt_k                      (gyro bias beta: R_k is built from w + beta)
-        + n_{k+1} - R_k n_k,
+    d_k = m_{k+1} - R_k m_k = K i_{k+1} - R_k K i_k + (nuisances) + n_{k+1} - R_k n_k
 
-exactly linear in ``K`` and, to first order in the small quantities, in the nuisances ``b0``,
-``S - I`` (with the measured ``m_k`` standing in for ``b_k``), the gyro bias ``beta`` (sensor axes,
-constant over the pass) and ``g_dot``: the rate of the field
-in a frame fixed in inertial space (the sensor frame at the start of a block, carried by the
-integrated gyro ``A``), one constant vector per block of ``block_s`` seconds. Intervals across which
-a coil current steps carry the information on ``K``; the others pin the nuisances. The nuisances
-matter: under B-dot control the current follows ``w x b``, and so does the soft-iron term, which
-would otherwise bias ``K`` by several percent.
-
-Noise: ``d_k`` and ``d_{k+1}`` share ``n_{k+1}``, so the differences are correlated (moving average
-of order one). The estimate is ordinary least squares (all rows have the same variance ``2 sigma^2``
-for isotropic noise, so it is also the weighted solution), and its covariance is the exact sandwich
-``(X^T X)^-1 X^T Sigma_d X (X^T X)^-1`` with ``Sigma_d = sigma^2 D D^T``, ``D`` the difference
-operator, and ``sigma^2`` estimated without bias from the residual sum of squares
-(``E[RSS] = sigma^2 (tr(D D^T) - tr((X^T X)^-1 X^T D D^T X))``; Seber & Lee 2003, Linear Regression
-Analysis, sec. 3.3, generalised to a known correlation shape). Rows whose residual lies more than 5
-robust sigma from zero (a glitch) are dropped and the fit repeated once.
+is regressed on K, the magnetometer bias and soft iron, the gyro bias and the field's own rate along
+the orbit (one vector per block of ``block_s`` seconds) by :mod:`recon.calibrate.differences`, which
+holds the model, the noise correlation and the covariance. Intervals across which a coil current
+steps carry the information on ``K``; the others pin the nuisances. The nuisances matter: under
+B-dot control the current follows ``w x b``, and so does the soft-iron term, which would otherwise
+bias ``K`` by several percent.
 
 Closed loop: a controller computes the next command from the samples it reads at a tick (B-dot from
 their difference), so the noise of such a sample drives the current step that follows it. A pair
@@ -44,10 +25,7 @@ noise is independent of the command.
 
 References
 ----------
-Seber, G. A. F. and Lee, A. J. (2003). Linear Regression Analysis, 2nd ed. Wiley, sections 3.3, 3.10.
 Ljung, L. (1999). System Identification: Theory for the User, 2nd ed. Prentice Hall, chapter 13.
-Rousseeuw, P. J. and Croux, C. (1993). Alternatives to the median absolute deviation. JASA 88,
-1273-1283 (the 1.4826 MAD scale).
 """
 
 from __future__ import annotations
@@ -57,8 +35,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ..core import robust_scale
-from .model import AXES, SYM_INDEX, crosstalk_name
+from .differences import PairSet, fit_differences
+from .model import AXES, crosstalk_name
 
 __all__ = ["StepFit", "fit_crosstalk_steps", "MIN_STEP_FRACTION", "MIN_STEPS"]
 
@@ -69,9 +47,6 @@ MIN_STEP_FRACTION = 0.05
 MIN_STEPS = 5
 # A log interval longer than this multiple of the median interval is a gap: no pair spans it.
 GAP_FACTOR = 1.5
-# Pairs whose residual lies more than this many robust sigma from the median are dropped (common
-# practice, no source; the 1.4826 MAD scale: Rousseeuw & Croux 1993).
-OUTLIER_FENCE = 5.0
 
 
 @dataclass(frozen=True)
@@ -115,18 +90,6 @@ class _Pairs:
     i_A: np.ndarray
     first: np.ndarray
     dt_s: np.ndarray
-
-
-@dataclass(frozen=True)
-class _Design:
-    """The stacked regression of the differences: ``x`` (P, 3, p) for K (the columns ``cols_k``,
-    (sensor axis, coil)), bias, soft iron and gyro bias; ``y`` (P, 3) nT; ``trend`` (P, 3, 3), the
-    field-rate columns of each pair's segment."""
-
-    x: np.ndarray
-    y: np.ndarray
-    trend: np.ndarray
-    cols_k: list[tuple[int, int]]
 
 
 def _interp_rate(t_query, t_gyro, w_gyro):
@@ -179,23 +142,9 @@ def fit_crosstalk_steps(t_s: np.ndarray, m_sensor_nT: np.ndarray, i_coil_A: np.n
         nan33 = np.full((3, 3), np.nan)
         return StepFit(nan33, nan33.copy(), np.full((9, 9), np.nan), undetermined, n_steps, np.nan,
                        len(pairs.first), 0)
-    r_mat, a_next, seg = _turns(pairs, tg, wg, block_s)
-    design = _design(pairs, r_mat, a_next, coils)
-    theta, rss, xt, use = _robust_fit(design, seg)
-    cov_all, sigma2 = _sandwich_covariance(xt, r_mat, pairs.first, use, len(pairs.t_s), rss, seg)
-
-    cols_k = design.cols_k
-    n_k = len(cols_k)
-    k_est = np.full((3, 3), np.nan)
-    cov = np.full((9, 9), np.nan)
-    flat = [3 * j + c for j, c in cols_k]
-    for col, (j, c) in enumerate(cols_k):
-        k_est[j, c] = theta[col]
-    cov[np.ix_(flat, flat)] = cov_all[:n_k, :n_k]
-    sig = np.full((3, 3), np.nan)
-    sig.ravel()[flat] = np.sqrt(np.diag(cov_all)[:n_k])
-    return StepFit(k_est, sig, cov, undetermined, n_steps, float(np.sqrt(sigma2)), len(pairs.first),
-                   int((~use).sum()))
+    fit = fit_differences(_turned_pairs(pairs, tg, wg, block_s), coils)
+    return StepFit(fit.crosstalk_nT_per_A, fit.sigma_nT_per_A, fit.covariance, undetermined, n_steps, fit.noise_nT,
+                   fit.n_pairs, fit.n_rejected)
 
 
 def _pairs(t, m, i, tg, skip) -> _Pairs:
@@ -240,10 +189,11 @@ def _steps_per_coil(pairs: _Pairs, imax, min_step_fraction, min_steps):
     return n_steps, coils, undetermined
 
 
-def _turns(pairs: _Pairs, tg, wg, block_s):
-    """Each pair's turn ``R_k`` (P, 3, 3); the attitude of the sensor frame relative to a frame fixed
-    in inertial space after it, ``A_{k+1} = R_k A_k`` (P, 3, 3), restarted at gaps and at block
-    starts; and the segment (P,) each pair belongs to."""
+def _turned_pairs(pairs: _Pairs, tg, wg, block_s) -> PairSet:
+    """The pairs with each one's turn ``R_k`` (the gyro rate at the pair's middle held over it); the
+    attitude of the sensor frame relative to a frame fixed in inertial space after it,
+    ``A_{k+1} = R_k A_k``, restarted at gaps and at block starts (its field-rate columns
+    ``A_{k+1} dt_k``); and the segment each pair belongs to."""
     t, k0 = pairs.t_s, pairs.first
     w = _interp_rate(0.5 * (t[k0] + t[k0 + 1]), tg, wg)
     rot = Rotation.from_rotvec(-w * pairs.dt_s[:, None])
@@ -257,116 +207,5 @@ def _turns(pairs: _Pairs, tg, wg, block_s):
             acc = np.eye(3)
         acc = r_mat[p] @ acc
         a_next[p] = acc
-    return r_mat, a_next, seg
-
-
-def _design(pairs: _Pairs, r_mat, a_next, coils) -> _Design:
-    """The regression of ``d_k = m_{k+1} - R_k m_k`` on K (the coils with steps), the bias, the soft
-    iron and the gyro bias; the field rates enter as the ``trend`` columns (see the module notes)."""
-    k0, m, i, dt = pairs.first, pairs.m_nT, pairs.i_A, pairs.dt_s
-    # columns: K (one per (sensor axis, coil) of a coil with steps), bias (3), soft iron (6, in the
-    # order of SYM_INDEX), gyro bias (3); the field rates are projected out
-    cols_k = [(j, c) for j in range(3) for c in range(3) if coils[c]]
-    bias_col = len(cols_k)
-    soft_col = bias_col + 3
-    gyro_col = soft_col + 6
-    n_par = gyro_col + 3
-    n_p = len(k0)
-    x = np.zeros((n_p, 3, n_par))
-    eye = np.eye(3)
-    for col, (j, c) in enumerate(cols_k):
-        x[:, :, col] = i[k0 + 1, c][:, None] * eye[j] - i[k0, c][:, None] * r_mat[:, :, j]
-    x[:, :, bias_col:bias_col + 3] = eye - r_mat
-    mk = m[k0]
-    rm = np.einsum("pab,pb->pa", r_mat, mk)
-    for n, (a, b) in enumerate(SYM_INDEX):
-        xi = np.zeros((3, 3))
-        xi[a, b] = xi[b, a] = 1.0
-        x[:, :, soft_col + n] = rm @ xi.T - np.einsum("pab,pb->pa", r_mat, mk @ xi.T)
-    # gyro bias: -R_k [m_k x] dt_k, column e of [m x] is m x e_e
-    for e in range(3):
-        x[:, :, gyro_col + e] = -np.einsum("pab,pb->pa", r_mat, np.cross(mk, eye[e])) * dt[:, None]
-    trend = a_next * dt[:, None, None]  # (P, 3, 3): the field-rate columns of each pair's segment
-    y = m[k0 + 1] - rm
-    return _Design(x, y, trend, cols_k)
-
-
-def _robust_fit(design: _Design, seg):
-    """Least squares, then again without the pairs beyond the outlier fence (at most twice).
-    Returns (theta, RSS, the design with the field-rate columns projected out, the pairs used)."""
-    x, y, trend = design.x, design.y, design.trend
-    n_seg = int(seg[-1]) + 1
-    use = np.ones(len(x), bool)
-    for _ in range(2):
-        theta, rss, xt, yt = _ols_segments(x, y, trend, seg, n_seg, use)
-        r_norm = np.linalg.norm(yt - xt @ theta, axis=1)
-        scale = robust_scale(r_norm[use])
-        new_use = r_norm <= np.median(r_norm[use]) + OUTLIER_FENCE * max(scale, 1e-9)
-        if np.array_equal(new_use, use):
-            break
-        use = new_use
-    theta, rss, xt, _ = _ols_segments(x, y, trend, seg, n_seg, use)
-    return theta, rss, xt, use
-
-
-def _sandwich_covariance(xt, r_mat, k0, use, n_samples, rss, seg):
-    """Covariance of theta (p, p) and the noise variance sigma^2 (nT^2) from the sandwich with the
-    MA(1) noise of the differences: Z = D^T X (X with the field-rate columns projected out, which
-    leaves the estimate and its covariance unchanged: Frisch-Waugh-Lovell)."""
-    n_par = xt.shape[2]
-    xu, ru, ku = xt[use], r_mat[use], k0[use]
-    z = np.zeros((n_samples, 3, n_par))
-    np.add.at(z, ku + 1, xu)
-    np.add.at(z, ku, -np.einsum("pba,pbi->pai", ru, xu))
-    xf, zf = xu.reshape(-1, n_par), z.reshape(-1, n_par)
-    xx = xf.T @ xf
-    zz = zf.T @ zf
-    xx_inv = np.linalg.pinv(xx, hermitian=True)
-    # E[RSS] = sigma^2 (tr(D D^T) - tr(H D D^T)); the field-rate columns add between 0 and 6 per
-    # segment to tr(H D D^T) (3 is taken): an error below one part in the number of pairs
-    n_used_seg = len(np.unique(seg[use]))
-    dof = 6.0 * len(ku) - float(np.trace(xx_inv @ zz)) - 3.0 * n_used_seg
-    sigma2 = rss / max(dof, 1.0)
-    return sigma2 * xx_inv @ zz @ xx_inv, sigma2
-
-
-def _ols_segments(x, y, trend, seg, n_seg, use):
-    """Least squares of ``y`` on ``x`` plus one field-rate vector per segment (columns ``trend``).
-
-    The segment columns are projected out segment by segment (Frisch-Waugh-Lovell: the coefficients
-    of ``x`` from the residualised problem equal those of the full one), so the design never holds a
-    column per segment. Returns (theta, RSS, residualised x, residualised y), the latter for all
-    pairs, with the projections computed from the pairs in ``use``.
-    """
-    n_par = x.shape[2]
-    tu, xu, yu, su = trend[use], x[use], y[use], seg[use]
-    g = np.zeros((n_seg, 3, 3))
-    np.add.at(g, su, np.einsum("pai,paj->pij", tu, tu))
-    tx = np.zeros((n_seg, 3, n_par))
-    np.add.at(tx, su, np.einsum("pai,paj->pij", tu, xu))
-    ty = np.zeros((n_seg, 3))
-    np.add.at(ty, su, np.einsum("pai,pa->pi", tu, yu))
-    g_inv = np.linalg.pinv(g, hermitian=True)
-    cx = g_inv @ tx  # (S, 3, n_par)
-    cy = np.einsum("sij,sj->si", g_inv, ty)
-    xt = x - np.einsum("pab,pbi->pai", trend, cx[seg])
-    yt = y - np.einsum("pab,pb->pa", trend, cy[seg])
-    theta, rss = _ols(xt[use], yt[use])
-    return theta, rss, xt, yt
-
-
-def _ols(x3: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, float]:
-    """Least squares over stacked (P, 3, p) design and (P, 3) data; returns (theta, RSS).
-
-    Solved through the normal equations of the column-normalised design (p is under twenty and the
-    normalised design well conditioned, so squaring its condition number costs no accuracy that
-    matters), with a pseudo-inverse for any column the data leave empty."""
-    a = x3.reshape(-1, x3.shape[-1])
-    b = y.reshape(-1)
-    scale = np.linalg.norm(a, axis=0)
-    scale[scale == 0] = 1.0
-    an = a / scale
-    theta = np.linalg.pinv(an.T @ an, rcond=1e-13, hermitian=True) @ (an.T @ b)
-    theta = theta / scale
-    r = b - a @ theta
-    return theta, float(r @ r)
+    return PairSet.of_pairs(pairs.m_nT, pairs.i_A, k0, k0 + 1, pairs.dt_s, r_mat, a_next * pairs.dt_s[:, None, None],
+                            seg, w)
