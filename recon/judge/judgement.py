@@ -45,6 +45,7 @@ import numpy as np
 from ..config import CoilSpec, ControllerSpec
 from ..core import applied_current, control_ticks, held_values, tick_phase
 from . import replay as rep
+from .alignment import align_commands, commands_at_ticks
 from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
 from .effect import assess_effect
 from .feedback import assess_crosstalk_feedback
@@ -166,13 +167,15 @@ def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _
 @dataclass(frozen=True)
 class _Replay:
     """The law replayed at each tick: the magnetometer samples it used (K, 3) nT body axes, the
-    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law) and
-    the logged commands' chatter fraction (3,)."""
+    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law), the
+    logged commands' chatter fraction (3,), and the logged command of each tick under the alignment
+    of the log with the ticks (K, 3) A (NaN where no row holds it)."""
 
     b_tick_body_nT: np.ndarray
     i_replay_A: np.ndarray
     comparison: CommandComparison | None
     chatter: np.ndarray
+    i_tick_A: np.ndarray
 
 
 def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, time_gyro_utc,
@@ -186,18 +189,25 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
-        if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
-            w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
-                                 tol=1e-9)
-        else:
-            w_tick = np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
+        w_tick = _onboard_rate(data, ticks, time_gyro_utc, w_gyro_body_rad_s)
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
         i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
     cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
-    logged_tick = (cmp_.logged_A if cmp_ is not None
-                   else held_values(data.t_coil_s, data.i_coil_A, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
-    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax))
+    if cmp_ is not None and cmp_.alignment is not None:
+        logged_tick = cmp_.logged_A
+    else:   # no law to align on: a row holds the command of the latest tick at or before its stamp
+        al = align_commands(ticks, None, data.t_coil_s, data.i_coil_A, imax, T)
+        logged_tick = commands_at_ticks(al, ticks, data.t_coil_s, data.i_coil_A, T)
+    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax), logged_tick)
+
+
+def _onboard_rate(data: PassArrays, ticks: np.ndarray, time_gyro_utc, w_gyro_body_rad_s) -> np.ndarray:
+    """The rate the onboard computer used at each tick: the raw gyro held at the tick, or the
+    reconstructed rate without a gyro log, rad/s body (K, 3)."""
+    if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
+        tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
+        return held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks, tol=1e-9)
+    return np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
 
 
 @dataclass(frozen=True)
@@ -219,6 +229,7 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
     """Step 2: each coil's dipole per amp and the actuation latency from the motion."""
     ticks, T, gate = setting.ticks_s, setting.ctx.period_s, setting.gate
     t, w, b_body, J = data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2
+    i_cmd = replayed.i_tick_A   # each command acts from its own tick (plus the latency), not from its log stamp
     n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
     fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
     lat_info, rate_bias = None, None
@@ -227,23 +238,24 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
         # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
         scans = {kn: scan_actuation_latency(
-            t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
+            t, w, b_body, J, ticks, i_cmd, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
             r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, gate=gate, max_hold_s=setting.max_hold_s,
-            rate_bias_knot_s=kn) for kn in (None, RATE_BIAS_KNOT_S)}
+            rate_bias_knot_s=kn, inertia_shape=True) for kn in (None, RATE_BIAS_KNOT_S)}
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
         lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
-        fit = identify_dipole(t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, r_body_km=data.r_body_km,
+        fit = identify_dipole(t, w, b_body, J, ticks, i_cmd, ticks, r_body_km=data.r_body_km,
                               w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=L_use, gate=gate,
-                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot)
+                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot,
+                              inertia_shape=True)
         rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
         if rate_bias.used:
             rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
                                 sigma_rad_s=fit.rate_bias_sigma_rad_s)
-    i_applied = applied_current(t, data.t_coil_s, data.i_coil_A, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+    i_applied = applied_current(t, ticks, i_cmd, latency_s=fit.latency_s if fit else 0.0, gate=gate,
                                 max_hold_s=setting.max_hold_s)
     axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
@@ -299,7 +311,7 @@ def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, r
     ctx, ticks, T = setting.ctx, setting.ticks_s, setting.ctx.period_s
     L_act = ident.fit.latency_s if ident.fit is not None else 0.0
     seen = (np.zeros((len(ticks), 3)) if ctx.mag_sampling == "coils_off" else
-            applied_current(ticks - 1e-6, data.t_coil_s, data.i_coil_A, latency_s=L_act, gate=setting.gate,
+            applied_current(ticks - 1e-6, ticks, replayed.i_tick_A, latency_s=L_act, gate=setting.gate,
                             max_hold_s=setting.max_hold_s))
     return assess_crosstalk_feedback(data.K_nT_per_A, data.mag_sensor_to_body, ctx.C_nominal, controller.gain, T,
                                      ticks_s=ticks, b_tick_body_nT=replayed.b_tick_body_nT, i_seen_at_tick_A=seen,
@@ -315,8 +327,9 @@ def _judgement(data: PassArrays, setting: _Setting, replayed: _Replay, ident: _I
                      effect=effect, feedback=loop, chatter=replayed.chatter, n_segments=ident.n_segments,
                      n_ticks=len(ticks), rate_bias=ident.rate_bias)
     lag = cmp_.lag_s if cmp_ is not None else None
+    # the commands are timed from their own ticks, so the motion's latency is already tick to torque
     act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
-    total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
+    total = act
     return ControllerJudgement(
         law=ctx.law, axes=ident.axes, verdict=verdict(ctx, ident.axes, found.anomalies, cmp_, lat_info),
         reasons=found.reasons, anomalies=found.anomalies,

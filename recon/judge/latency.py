@@ -45,7 +45,7 @@ class LatencyScan:
 def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s, i_coil_A, t_eval_s,
                            period_s: float, *, max_latency_periods: int = 5, r_body_km=None,
                            w_cov_rad2_s2=None, gate=None, max_hold_s: float = 2.5,
-                           rate_bias_knot_s: float | None = None
+                           rate_bias_knot_s: float | None = None, inertia_shape: bool = False
                            ) -> LatencyScan:
     """Find the actuation latency that best explains the motion (profile least squares).
 
@@ -74,7 +74,7 @@ def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s
     def fit(L: float) -> DipoleFit | None:
         return identify_dipole(t_s, w_body_rad_s, b_body_nT, J, t_coil_s, i_coil_A, instants, latency_s=L,
                                gate=gate, max_hold_s=max_hold_s, reject_outliers=False, jackknife_blocks=0,
-                               rate_bias_knot_s=rate_bias_knot_s, motion=mot)
+                               rate_bias_knot_s=rate_bias_knot_s, inertia_shape=inertia_shape, motion=mot)
 
     trials = {round(float(L), 9): fit(round(float(L), 9)) for L in period_s * np.arange(-1, max_latency_periods + 1)}
     # the profile can be shallow and bumpy between whole periods: search the two periods around the

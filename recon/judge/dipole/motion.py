@@ -19,7 +19,33 @@ from scipy.interpolate import CubicSpline
 
 from ...core import MU_EARTH_m3_s2
 
-__all__ = ["MotionSplines", "motion_splines"]
+__all__ = ["MotionSplines", "motion_splines", "inertia_shape_basis", "symmetric_basis"]
+
+
+def symmetric_basis() -> np.ndarray:
+    """The six symmetric 3 x 3 matrices (6, 3, 3) orthonormal in the Frobenius product."""
+    out = []
+    for i in range(3):
+        for j in range(i, 3):
+            e = np.zeros((3, 3))
+            e[i, j] = e[j, i] = 1.0 if i == j else np.sqrt(0.5)
+            out.append(e)
+    return np.array(out)
+
+
+def inertia_shape_basis(inertia: np.ndarray) -> np.ndarray:
+    """Five symmetric matrices (5, 3, 3), orthonormal in the Frobenius product and orthogonal to J.
+
+    A change of the inertia along J itself only rescales Euler's equation (J, the coil dipoles, the
+    residual dipole and the disturbance all scale together), so from the motion with unknown dipoles
+    only the inertia's *shape* can be estimated: its changes in the five directions perpendicular to J.
+    """
+    J = np.asarray(inertia, float)
+    S = symmetric_basis().reshape(6, 9).T              # (9, 6), orthonormal columns
+    u = J.ravel() / np.linalg.norm(J)
+    P = S - np.outer(u, u @ S)                         # projected off J
+    U, sv, _ = np.linalg.svd(P, full_matrices=False)
+    return U[:, :5].T.reshape(5, 3, 3)
 
 
 @dataclass(frozen=True)
@@ -36,6 +62,9 @@ class MotionSplines:
     F_tw : antiderivative of t w, rad s
     t_s : (N,) the history's times, s
     P : (N, 3, 3) rate covariance, (rad/s)^2, or None
+    shape_basis : (5, 3, 3) the inertia-shape directions (see :func:`inertia_shape_basis`)
+    F_shape : antiderivative of ``w x E_k w - tau_gg(E_k)`` for each shape direction E_k, (5, 3)
+        columns flattened to 15, N m s per kg m^2
     """
 
     w: CubicSpline
@@ -46,6 +75,8 @@ class MotionSplines:
     F_tw: CubicSpline
     t_s: np.ndarray
     P: np.ndarray | None
+    shape_basis: np.ndarray | None = None
+    F_shape: CubicSpline | None = None
 
 
 def motion_splines(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.ndarray, inertia: np.ndarray,
@@ -63,12 +94,17 @@ def motion_splines(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.ndar
     w = np.asarray(w_body_rad_s, float)
     b_T = np.asarray(b_body_nT, float) * 1e-9
     gyro = np.cross(w, w @ inertia.T)
+    basis = inertia_shape_basis(inertia)
+    shape = np.stack([np.cross(w, w @ E.T) for E in basis], axis=1)          # (N, 5, 3)
     F_gg = None
     if r_body_km is not None:
         r = np.asarray(r_body_km, float) * 1e3
         rn = np.linalg.norm(r, axis=1, keepdims=True)
-        tau_gg = 3.0 * MU_EARTH_m3_s2 / rn ** 5 * np.cross(r, r @ inertia.T)
+        gg = 3.0 * MU_EARTH_m3_s2 / rn ** 5
+        tau_gg = gg * np.cross(r, r @ inertia.T)
         F_gg = CubicSpline(t, tau_gg).antiderivative()
+        shape -= np.stack([gg * np.cross(r, r @ E.T) for E in basis], axis=1)
     w_spline = CubicSpline(t, w)
     return MotionSplines(w_spline, CubicSpline(t, b_T).antiderivative(), CubicSpline(t, gyro).antiderivative(),
-                         F_gg, w_spline.antiderivative(), CubicSpline(t, t[:, None] * w).antiderivative(), t, w_cov)
+                         F_gg, w_spline.antiderivative(), CubicSpline(t, t[:, None] * w).antiderivative(), t, w_cov,
+                         basis, CubicSpline(t, shape.reshape(len(t), 15)).antiderivative())
