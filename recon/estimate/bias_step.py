@@ -104,7 +104,7 @@ def bias_step_from_health(health: GyroHealth) -> BiasStep | None:
 def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray, q_body_from_gcrf: np.ndarray | None,
                    t_gyro: np.ndarray, w_gyro: np.ndarray, bias_walk_rad_s_sqrt_s: float, *,
                    mag_noise_nT: float | None = None, gyro_arw_rad_sqrt_s: float | None = None,
-                   full_scale_rad_s: float | None = None) -> BiasStep | None:
+                   full_scale_rad_s: float | None = None, field_steps_s: np.ndarray | None = None) -> BiasStep | None:
     """Look for one step in the gyro bias (see :func:`.gyro_health.assess_gyro`).
 
     Parameters
@@ -114,11 +114,13 @@ def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarra
     t_gyro : (G,) s; w_gyro : (G, 3) rad/s body
     bias_walk_rad_s_sqrt_s : float, rate random walk of the bias
     mag_noise_nT, gyro_arw_rad_sqrt_s : noise levels (None: from the data); full_scale_rad_s : gyro range
+    field_steps_s : the control ticks when the magnetometer samples with the coils on, or None
 
     Returns
     -------
     BiasStep or None
     """
     health = assess_gyro(t_gyro, w_gyro, t_mag, b_body_nT, b_ref_nT, mag_noise_nT=mag_noise_nT,
-                         gyro_arw_rad_sqrt_s=gyro_arw_rad_sqrt_s, full_scale_rad_s=full_scale_rad_s)
+                         gyro_arw_rad_sqrt_s=gyro_arw_rad_sqrt_s, full_scale_rad_s=full_scale_rad_s,
+                         field_steps_s=field_steps_s)
     return bias_step_from_health(health)

@@ -173,7 +173,7 @@ def _power(fm: FieldMotion, one: LengthFit) -> float:
 def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndarray, b_body_nT: np.ndarray,
                 b_ref_nT: np.ndarray | None = None, *, mag_noise_nT: float | None = None,
                 gyro_arw_rad_sqrt_s: float | None = None, bias0_sigma_rad_s: float = 0.5 / DEG_PER_RAD,
-                full_scale_rad_s: float | None = None) -> GyroHealth:
+                full_scale_rad_s: float | None = None, field_steps_s: np.ndarray | None = None) -> GyroHealth:
     """The gyro's health over one pass (see the module docstring).
 
     Parameters
@@ -184,6 +184,8 @@ def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndar
     mag_noise_nT, gyro_arw_rad_sqrt_s : noise levels (None: from the data's second differences)
     bias0_sigma_rad_s : 1-sigma of the turn-on bias
     full_scale_rad_s : the gyro's range, or None
+    field_steps_s : (S,) s, instants where the sensed field can jump (the control ticks when the
+        magnetometer samples with the coils on), or None
 
     Returns
     -------
@@ -201,7 +203,7 @@ def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndar
     if gyro_arw_rad_sqrt_s is None:
         gyro_arw_rad_sqrt_s = white_noise_from_differences(wg[~clipped]) * np.sqrt(float(np.median(np.diff(tg))))
     kw = dict(mag_noise_nT=mag_noise_nT, gyro_arw_rad_sqrt_s=gyro_arw_rad_sqrt_s, gyro_bad=clipped,
-              rate_model_error=RATE_MODEL_ERROR)
+              rate_model_error=RATE_MODEL_ERROR, field_steps_s=field_steps_s)
     fm = field_motion(t_mag_s, b, b_ref_nT, tg, wg, **kw)
     if len(fm.t_s) < MIN_SAMPLES:
         return GyroHealth("untestable", f"gyro not stuck; only {len(fm.t_s)} slopes of the field with an unclipped "
@@ -218,7 +220,8 @@ def _decide(fm: FieldMotion, dense: FieldMotion, bias0_sigma: float) -> GyroHeal
     prior = float(one.beta @ np.linalg.solve(cov_b + bias0_sigma ** 2 * np.eye(3), one.beta))
     p_prior = float(stats.chi2.sf(prior, 3))
     base = dict(bias_rad_s=one.beta, bias_sigma_rad_s=np.sqrt(np.diag(cov_b)),
-                scale_misalignment=one.scale_misalignment, samples=one.n, chi2=one.chi2, dof=one.dof, p_value=one.p_value, power=power)
+                scale_misalignment=one.scale_misalignment, samples=one.n, chi2=one.chi2, dof=one.dof,
+                p_value=one.p_value, power=power)
     figures = (f"chi-square {one.chi2:.0f} for {one.dof} degrees of freedom (p = {one.p_value:.2g}) over {one.n} "
                f"slopes of the field, power {power:.3f} against a gyro reading a constant")
     if one.p_value >= ALPHA and p_prior >= ALPHA:

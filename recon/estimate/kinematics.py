@@ -34,7 +34,8 @@ from scipy.special import i0e, i1e
 from ..core import local_slope, window_mean
 
 __all__ = ["FieldMotion", "field_motion", "length_moments", "perpendicular_residual",
-           "FIELD_TURN_NT_S_AT_1S", "ORBIT_FIELD_TURN_RAD_S", "SLOPE_HALF_WIDTHS_S", "SLOPE_MAX_TURN_RAD"]
+           "FIELD_TURN_NT_S_AT_1S", "ORBIT_FIELD_TURN_RAD_S", "SLOPE_HALF_WIDTHS_S", "SLOPE_MAX_TURN_RAD",
+           "FIELD_STEP_MARGIN_S"]
 
 # The field the reference model leaves out changes the field's own turn: its part correlated over
 # minutes (a Gauss-Markov process) has no derivative, and a least-squares slope over +-h of it scatters
@@ -49,9 +50,14 @@ ORBIT_FIELD_TURN_RAD_S = 0.0022
 # Half widths of the slopes, s, and the most the body may turn within one: the slope of a line through
 # a field turning at w is off by about (w h)^2 / 10 of itself (third-order term of the least-squares
 # line), 1 % at 0.3 rad, below the gyro's scale errors; longer slopes beat the magnetometer noise down
-# as h^-3/2 (36 nT/s at 1 s, 3.4 nT/s at 5 s for 100 nT at 10 Hz).
-SLOPE_HALF_WIDTHS_S = (1.0, 2.0, 5.0)
+# as h^-3/2 (36 nT/s at 1 s, 3.4 nT/s at 5 s for 100 nT at 10 Hz); 0.3 s fits between the steps of a
+# field seen with the coils on and a 1 s control period.
+SLOPE_HALF_WIDTHS_S = (0.3, 1.0, 2.0, 5.0)
 SLOPE_MAX_TURN_RAD = 0.3
+# A slope keeps this far after a step of the sensed field (a control tick: the coil current changes a
+# short actuation latency after it: up to 0.15 s in a healthy drive, and the stamps may be off by a few
+# hundredths of a second) (common practice, no source).
+FIELD_STEP_MARGIN_S = 0.25
 
 
 @dataclass(frozen=True)
@@ -80,9 +86,10 @@ class FieldMotion:
         return FieldMotion(self.t_s[sel], self.b_body_nT[sel], self.bdot_perp_nT_s[sel], self.w_gyro_rad_s[sel],
                            self.rho_nT_s[sel], self.sigma0_nT_s[sel], self.half_width_s[sel])
 
-    def sigma(self, field_turn_nT_s: float) -> np.ndarray:
-        """1-sigma per axis with the unmodelled field's turn at ``field_turn_nT_s`` over 1 s slopes, nT/s."""
-        return np.sqrt(self.sigma0_nT_s ** 2 + field_turn_nT_s ** 2 / self.half_width_s)
+    def sigma(self, field_turn_nT_s: float, scale: float = 1.0) -> np.ndarray:
+        """1-sigma per axis with the unmodelled field's turn at ``field_turn_nT_s`` over 1 s slopes, the
+        whole scaled by ``scale``, nT/s."""
+        return scale * np.sqrt(self.sigma0_nT_s ** 2 + field_turn_nT_s ** 2 / self.half_width_s)
 
 
 def _across(v: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -94,14 +101,18 @@ def _across(v: np.ndarray, b: np.ndarray) -> np.ndarray:
 def field_motion(t_mag_s: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarray | None, t_gyro_s: np.ndarray,
                  w_gyro_rad_s: np.ndarray, *, mag_noise_nT: float, gyro_arw_rad_sqrt_s: float,
                  gyro_bad: np.ndarray | None = None, rate_model_error: float = 0.0,
-                 every_sample: bool = False, half_widths_s: tuple = SLOPE_HALF_WIDTHS_S) -> FieldMotion:
+                 every_sample: bool = False, half_widths_s: tuple = SLOPE_HALF_WIDTHS_S,
+                 field_steps_s: np.ndarray | None = None) -> FieldMotion:
     """The field's motion at independent slopes, with its noise.
 
     Each slope is a least-squares line through the samples within ``+-h`` (Savitzky-Golay, first
     order), h the longest of ``SLOPE_HALF_WIDTHS_S`` over which the body turns at most
     ``SLOPE_MAX_TURN_RAD`` (the rotation bends the field, and a line's slope is then off by about
     ``(w h)^2 / 10`` of it); the slopes are spaced ``2 h`` apart so that no two share a sample.
-    ``half_widths_s`` replaces the candidate half widths (a single short one to locate an event).
+    ``half_widths_s`` replaces the candidate half widths (a single short one to locate an event). A
+    slope never spans one of ``field_steps_s`` (instants where the field the magnetometer sees can
+    jump: a control tick, when the coils are on while it samples) or the ``FIELD_STEP_MARGIN_S`` after
+    it; the longest half width that spans none is taken.
 
     Parameters
     ----------
@@ -117,6 +128,7 @@ def field_motion(t_mag_s: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarra
         window's constant bias does not absorb)
     every_sample : a slope at every sample (neighbours then share data: for locating an event, not
         for tests)
+    field_steps_s : (S,) s, instants where the sensed field can jump, or None
 
     Returns
     -------
@@ -129,12 +141,22 @@ def field_motion(t_mag_s: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarra
     ref = None if b_ref_nT is None else np.asarray(b_ref_nT, float)[ok]
     tg = np.asarray(t_gyro_s, float)
     wg = np.asarray(w_gyro_rad_s, float)
-    rate = np.linalg.norm(window_mean(tg, wg, t, half_widths_s[0]), axis=1)
-    level = np.zeros(len(t), int)
-    for k, h in enumerate(half_widths_s):
-        level[rate * h <= SLOPE_MAX_TURN_RAD] = k
-    h_of = np.asarray(half_widths_s, float)[level]
-    picks = np.arange(len(t)) if every_sample else _independent(t, h_of)
+    rate = np.linalg.norm(window_mean(tg, wg, t, min(half_widths_s)), axis=1)
+    steps = np.sort(np.asarray(field_steps_s, float)) if field_steps_s is not None else np.zeros(0)
+    h_of = np.full(len(t), np.nan)
+    for h in sorted(half_widths_s):
+        ok_h = rate * h <= SLOPE_MAX_TURN_RAD
+        if len(steps):
+            ok_h &= (np.searchsorted(steps, t - h - FIELD_STEP_MARGIN_S, side="left")
+                     == np.searchsorted(steps, t + h, side="right"))
+        h_of[ok_h] = h
+    if not len(steps):
+        h_of[~np.isfinite(h_of)] = min(half_widths_s)
+    usable = np.nonzero(np.isfinite(h_of))[0]
+    if len(usable) < 3:
+        z = np.zeros((0, 3))
+        return FieldMotion(np.zeros(0), z, z, z, np.zeros(0), np.zeros(0), np.zeros(0))
+    picks = usable if every_sample else usable[_independent(t[usable], h_of[usable])]
     hp = h_of[picks]
     bdot = np.full((len(picks), 3), np.nan)
     w = np.full((len(picks), 3), np.nan)

@@ -31,14 +31,20 @@ from scipy.optimize import brentq, least_squares
 from ..core import cross_matrices
 from .kinematics import FIELD_TURN_NT_S_AT_1S, SLOPE_HALF_WIDTHS_S, FieldMotion, length_moments
 
-__all__ = ["LengthFit", "StepEvidence", "fit_lengths", "find_step", "SCALE_PRIOR", "ALIGNMENT_PRIOR_RAD",
-           "STEP_GRID_S", "MIN_SIDE_S"]
+__all__ = ["LengthFit", "StepEvidence", "fit_lengths", "find_step", "noise_of_level", "SCALE_PRIOR",
+           "ALIGNMENT_PRIOR_RAD", "NOISE_SCALE_MAX", "WORST_LEVEL", "STEP_GRID_S", "MIN_SIDE_S"]
 
 # 1-sigma priors of the gyro's scale and non-orthogonality (MEMS: a few percent) and of the rotation
 # between the gyro's and the magnetometer's axes (a degree) (common practice, no source).
 SCALE_PRIOR = 0.05
 ALIGNMENT_PRIOR_RAD = 0.02
 _PRIOR = np.r_[np.full(6, SCALE_PRIOR), np.full(3, ALIGNMENT_PRIOR_RAD)]
+# The noise of a slope (magnetometer noise from second differences, gyro noise, the slope's own model)
+# may be off by this factor as a whole: short slopes over coil steps measured 10 % more scatter than
+# their noise model, a corrupted calibration can halve the second-difference estimate (common
+# practice, no source).
+NOISE_SCALE_MAX = 1.5
+WORST_LEVEL = 2.0
 # Step times tried, s apart, and the least stretch of data on each side, s.
 STEP_GRID_S = 60.0
 MIN_SIDE_S = 120.0
@@ -56,7 +62,7 @@ class LengthFit:
     scale_misalignment : (3, 3) E
     cov : (p, p) covariance of the unknowns (beta, beta_after, then the nine elements of E)
     chi2 : float; dof : int; p_value : float; n : int, samples
-    field_turn_nT_s : the unmodelled field's turn the noise was standardised with (over 1 s slopes), nT/s
+    noise_level : the noise level the lengths were standardised with (:func:`noise_of_level`)
     """
 
     beta: np.ndarray
@@ -68,7 +74,7 @@ class LengthFit:
     dof: int
     p_value: float
     n: int
-    field_turn_nT_s: float
+    noise_level: float
 
 
 @dataclass(frozen=True)
@@ -121,29 +127,36 @@ def _unpack(theta: np.ndarray, two: bool) -> tuple[np.ndarray, np.ndarray | None
 
 
 def fit_lengths(fm: FieldMotion, *, split_s: float | None = None, w_gyro_rad_s: np.ndarray | None = None,
-                field_turn_nT_s: float | None = None) -> LengthFit:
+                noise_level: float | None = None) -> LengthFit:
     """Least squares of the gyro model on the standardised lengths (see the module docstring).
 
     Parameters
     ----------
     fm : the field's motion; split_s : step time for a two-bias fit, or None
     w_gyro_rad_s : (n, 3) gyro readings to use instead of ``fm``'s (the power computation)
-    field_turn_nT_s : the unmodelled field's turn over 1 s slopes, nT/s; None: estimated from the data
-        (the level at which the chi-square equals its degrees of freedom), at most
-        ``FIELD_TURN_NT_S_AT_1S`` (the worst storm), so that only a misfit beyond any storm tests high
+    noise_level : the noise level (:func:`noise_of_level`); None: estimated from the data (the level
+        at which the chi-square equals its degrees of freedom), at most ``WORST_LEVEL`` (the worst
+        storm and the noise model off by ``NOISE_SCALE_MAX``), so only a misfit beyond both tests high
 
     Each bias starts from the least-squares fit of e = 0 on its own samples.
     """
     model = _LengthModel(fm, split_s, w_gyro_rad_s)
-    f = FIELD_TURN_NT_S_AT_1S if field_turn_nT_s is None else field_turn_nT_s
-    theta = model.solve(f)
-    if field_turn_nT_s is None:
-        chi2_at = lambda level: model.chi2(theta, level)  # noqa: E731
-        if chi2_at(FIELD_TURN_NT_S_AT_1S) < model.dof:
-            f = float(brentq(lambda level: chi2_at(level) - model.dof, 0.0, FIELD_TURN_NT_S_AT_1S, xtol=0.01)) \
+    level = WORST_LEVEL if noise_level is None else noise_level
+    theta = model.solve(level)
+    if noise_level is None:
+        chi2_at = lambda lam: model.chi2(theta, lam)  # noqa: E731
+        if chi2_at(WORST_LEVEL) < model.dof:
+            level = float(brentq(lambda lam: chi2_at(lam) - model.dof, 0.0, WORST_LEVEL, xtol=1e-3)) \
                 if chi2_at(0.0) > model.dof else 0.0
-            theta = model.solve(f)
-    return model.result(theta, f)
+            theta = model.solve(level)
+    return model.result(theta, level)
+
+
+def noise_of_level(level: float) -> tuple[float, float]:
+    """(field turn over 1 s slopes, nT/s; scale of the whole noise) of a noise level in [0, 2]: from 0
+    to 1 the unmodelled field's turn grows to ``FIELD_TURN_NT_S_AT_1S``; from 1 to 2 the whole noise
+    grows by up to ``NOISE_SCALE_MAX``."""
+    return (FIELD_TURN_NT_S_AT_1S * min(level, 1.0), 1.0 + (NOISE_SCALE_MAX - 1.0) * max(level - 1.0, 0.0))
 
 
 class _LengthModel:
@@ -170,7 +183,7 @@ class _LengthModel:
         including the turn's unknown direction (rho^2 / 2 per axis across the field)."""
         b1, b2, e = _unpack(theta, self.two)
         nb, after, vec = self.nb, self.after, self.vector
-        sigma = self.fm.sigma(level)
+        sigma = self.fm.sigma(*noise_of_level(level))
         beta = np.where(after[:, None], b2 if self.two else b1, b1)
         v = beta + np.einsum("nij,j->ni", self.R, e)
         res = self.base + np.einsum("nij,nj->ni", self.bx, v)
@@ -233,17 +246,17 @@ def find_step(fm: FieldMotion, one: LengthFit, alpha: float, dense: FieldMotion 
     grid = np.arange(fm.t_s[0] + MIN_SIDE_S, fm.t_s[-1] - MIN_SIDE_S + 1e-9, STEP_GRID_S)
     if not len(grid):
         return None
-    worst = FIELD_TURN_NT_S_AT_1S
-    ref = fit_lengths(fm, field_turn_nT_s=worst).chi2
-    gains = np.array([ref - fit_lengths(fm, split_s=float(t), field_turn_nT_s=worst).chi2 for t in grid])
+    worst = WORST_LEVEL
+    ref = fit_lengths(fm, noise_level=worst).chi2
+    gains = np.array([ref - fit_lengths(fm, split_s=float(t), noise_level=worst).chi2 for t in grid])
     k = int(np.argmax(gains))
     lo, hi = grid[max(k - 1, 0)], grid[min(k + 1, len(grid) - 1)]
-    coarse = fit_lengths(fm, split_s=float(grid[k]), field_turn_nT_s=worst)
+    coarse = fit_lengths(fm, split_s=float(grid[k]), noise_level=worst)
     t, t_lo, t_hi = (_refine_time(dense, coarse, lo, hi) if dense is not None else (float(grid[k]), lo, hi))
     clear = fm.take((fm.t_s + _HALF_MAX < t_lo) | (fm.t_s - _HALF_MAX > t_hi))
     two = fit_lengths(clear, split_s=t)
     # the two models compared at the noise level the two-bias model leaves (its own estimate)
-    gain = fit_lengths(clear, field_turn_nT_s=two.field_turn_nT_s).chi2 - two.chi2
+    gain = fit_lengths(clear, noise_level=two.noise_level).chi2 - two.chi2
     if gain < stats.chi2.isf(alpha / len(grid), 3) or two.p_value < alpha:
         return None
     return StepEvidence(t, t_lo, t_hi, two.beta, two.beta_after, two.cov[0:3, 0:3], two.cov[3:6, 3:6], float(gain),
@@ -263,7 +276,7 @@ def _refine_time(fm: FieldMotion, fit: LengthFit, lo: float, hi: float) -> tuple
     for beta in (fit.beta, fit.beta_after):
         model = _LengthModel(part, None, None)
         theta = np.r_[beta, _scale_vector(fit.scale_misalignment)]
-        r = model.residuals(theta, fit.field_turn_nT_s)[0][:-9]
+        r = model.residuals(theta, fit.noise_level)[0][:-9]
         sq = np.zeros(model.n)
         sq[~model.vector] = r[:int(np.sum(~model.vector))] ** 2
         sq[model.vector] = np.sum(r[int(np.sum(~model.vector)):].reshape(-1, 3) ** 2, axis=1)

@@ -43,7 +43,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import applied_current, control_ticks, held_values, tick_phase
+from ..core import applied_current, control_ticks, held_values, tick_phase, window_mean
 from . import replay as rep
 from .alignment import align_commands, commands_at_ticks
 from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
@@ -78,7 +78,8 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                b_body_nT: np.ndarray | None = None, r_gcrf_km: np.ndarray | None = None,
                w_cov_rad2_s2: np.ndarray | None = None, time_gyro_utc: np.ndarray | None = None,
                w_gyro_body_rad_s: np.ndarray | None = None,
-               K_nT_per_A: np.ndarray | None = None) -> ControllerJudgement:
+               K_nT_per_A: np.ndarray | None = None, gyro_health: str | None = None, rate_source: str | None = None,
+               rate_sigma_rad_s: np.ndarray | None = None) -> ControllerJudgement:
     """Judge the magnetic controller of one pass.
 
     Parameters
@@ -110,6 +111,16 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     K_nT_per_A : (3, 3) nT per A, sensor axes (row: sensor axis, column: coil), optional
         Estimated coil crosstalk, for the coil-field loop gain; NaN entries (undetermined) count as
         zero.
+    gyro_health : "ok" | "dead" | "bias_step" | "untestable", optional
+        The estimator's verdict on the gyro. A dead gyro changes what can be judged: the cross-product
+        law read it, and a rate history reconstructed without it rests on the nominal coils.
+    rate_source : "gyro" | "dynamics", optional
+        How the rate history was reconstructed; "dynamics" (Euler's equations with the nominal coil
+        dipoles) cannot test the coils independently, so the verdict cannot be "as_intended".
+    rate_sigma_rad_s : (N, 3) rad/s, optional
+        The rate history's stated 1-sigma per axis (without ``w_cov_rad2_s2``): what a motion model
+        that fits leaves as residual, for the latency profile's fit test. It is not used as a weight:
+        a gyro-based rate is about equally noisy all along the pass.
 
     Returns
     -------
@@ -126,7 +137,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                              i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
                              q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
                              r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
-    setting = _setting(controller, coils, data)
+    setting = _setting(controller, coils, data, rate_sigma_rad_s, gyro_health, rate_source)
     replayed = _replay(controller, data, setting, time_gyro_utc, w_gyro_body_rad_s)
     ident = _identification(data, setting, replayed)
     effect = _effect(controller, data, setting, replayed, ident)
@@ -137,17 +148,24 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
 @dataclass(frozen=True)
 class _Setting:
     """The pass's setting (for the findings) and its control ticks, s since the data's epoch; ``gate``
-    is (ticks, before, after) of the coil-off windows of windowed sampling, else None."""
+    is (ticks, before, after) of the coil-off windows of windowed sampling, else None; ``expected_unit``
+    the chi-square unit of a motion model that fits (None: no stated rate noise)."""
 
     ctx: PassContext
     ticks_s: np.ndarray
     gate: tuple[np.ndarray, float, float] | None
     off_window_s: tuple[float, float] | None
     max_hold_s: float
+    expected_unit: float | None = None
 
 
-def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _Setting:
-    """The control ticks where the rate history and the coil log overlap, and the pass's setting."""
+def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays, rate_sigma_rad_s,
+             gyro_health: str | None, rate_source: str | None) -> _Setting:
+    """The control ticks where the rate history and the coil log overlap, and the pass's setting.
+
+    A motion model that fits leaves the rate noise: with the rate covariance the fit is whitened and
+    its chi-square unit is 1; with the stated 1-sigma only, it is ``J^2 sigma^2`` averaged over the
+    instants and axes (the residual of one component is ``(J dw)_c``)."""
     t, t_coil, epoch = data.t_s, data.t_coil_s, data.epoch
     T = float(controller.period_s)
     window = coils.off_window_s if coils.mag_sampling == "windowed" else None
@@ -160,22 +178,30 @@ def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _
     gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
     ctx = PassContext(controller.law, T, np.asarray(coils.dipole_per_amp, float),
-                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling)
-    return _Setting(ctx, ticks, gate, window, 2.5 * T)
+                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling, gyro_health, rate_source)
+    expected = None
+    if data.w_cov_rad2_s2 is not None:
+        expected = 1.0
+    elif rate_sigma_rad_s is not None:
+        sig = checked_array("rate_sigma_rad_s", rate_sigma_rad_s, (3,), len(t))
+        expected = float(np.nanmean(sig ** 2 @ (data.inertia_kg_m2 ** 2).T))
+    return _Setting(ctx, ticks, gate, window, 2.5 * T, expected)
 
 
 @dataclass(frozen=True)
 class _Replay:
     """The law replayed at each tick: the magnetometer samples it used (K, 3) nT body axes, the
     replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law), the
-    logged commands' chatter fraction (3,), and the logged command of each tick under the alignment
-    of the log with the ticks (K, 3) A (NaN where no row holds it)."""
+    logged commands' chatter fraction (3,), the logged command of each tick under the alignment of
+    the log with the ticks (K, 3) A (NaN where no row holds it), and the rate the onboard computer read
+    at the history's instants (N, 3) rad/s (its raw gyro; None without a gyro log)."""
 
     b_tick_body_nT: np.ndarray
     i_replay_A: np.ndarray
     comparison: CommandComparison | None
     chatter: np.ndarray
     i_tick_A: np.ndarray
+    w_seen_rad_s: np.ndarray | None
 
 
 def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, time_gyro_utc,
@@ -186,10 +212,11 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
     b_tick = rep.tick_samples_nT(data.t_mag_s, data.b_mag_body_nT, ticks, sampling=ctx.mag_sampling,
                                  off_window_s=setting.off_window_s)
     i_rep = np.full((len(ticks), 3), np.nan)
+    gyro = _raw_gyro(data, time_gyro_utc, w_gyro_body_rad_s)
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
-        w_tick = _onboard_rate(data, ticks, time_gyro_utc, w_gyro_body_rad_s)
+        w_tick = _onboard_rate(data, ticks, gyro)
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
         i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
     cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
@@ -198,15 +225,23 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
     else:   # no law to align on: a row holds the command of the latest tick at or before its stamp
         al = align_commands(ticks, None, data.t_coil_s, data.i_coil_A, imax, T)
         logged_tick = commands_at_ticks(al, ticks, data.t_coil_s, data.i_coil_A, T)
-    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax), logged_tick)
+    seen = None if gyro is None else window_mean(gyro[0], gyro[1], data.t_s, 0.5 * setting.ctx.period_s)
+    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax), logged_tick, seen)
 
 
-def _onboard_rate(data: PassArrays, ticks: np.ndarray, time_gyro_utc, w_gyro_body_rad_s) -> np.ndarray:
+def _raw_gyro(data: PassArrays, time_gyro_utc, w_gyro_body_rad_s) -> tuple[np.ndarray, np.ndarray] | None:
+    """The raw gyro log as (s since the epoch, rad/s body), or None."""
+    if time_gyro_utc is None or w_gyro_body_rad_s is None:
+        return None
+    tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
+    return tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg))
+
+
+def _onboard_rate(data: PassArrays, ticks: np.ndarray, gyro: tuple[np.ndarray, np.ndarray] | None) -> np.ndarray:
     """The rate the onboard computer used at each tick: the raw gyro held at the tick, or the
     reconstructed rate without a gyro log, rad/s body (K, 3)."""
-    if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-        tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
-        return held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks, tol=1e-9)
+    if gyro is not None:
+        return held_values(gyro[0], gyro[1], ticks, tol=1e-9)
     return np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
 
 
@@ -244,7 +279,7 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
-        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
+        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T, expected_unit=setting.expected_unit)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
         fit = identify_dipole(t, w, b_body, J, ticks, i_cmd, ticks, r_body_km=data.r_body_km,
@@ -260,7 +295,8 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
     axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
     if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
         # no coil identified: the motion says nothing about timing, in either direction
-        lat_info = replace(lat_info, determined=False, acausal=False)
+        lat_info = replace(lat_info, determined=False, acausal=False,
+                           reason="no coil was identified from the motion, so it says nothing about timing")
     return _Identification(fit, lat_trials, lat_wrss, lat_info, rate_bias, n_seg, i_applied, axes)
 
 
@@ -300,7 +336,9 @@ def _effect(controller: ControllerSpec, data: PassArrays, setting: _Setting, rep
     target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
     return assess_effect(controller.law, controller.gain, data.t_s, data.w_body_rad_s, data.b_body_nT,
                          data.inertia_kg_m2, ident.i_applied_A, i_rep_applied, C_used, C_nom,
-                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT)
+                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT,
+                         w_seen_rad_s=replayed.w_seen_rad_s,
+                         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2, r_body_km=data.r_body_km)
 
 
 def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
