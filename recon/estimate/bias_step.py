@@ -122,5 +122,5 @@ def find_bias_step(t_mag: np.ndarray, b_body_nT: np.ndarray, b_ref_nT: np.ndarra
     """
     health = assess_gyro(t_gyro, w_gyro, t_mag, b_body_nT, b_ref_nT, mag_noise_nT=mag_noise_nT,
                          gyro_arw_rad_sqrt_s=gyro_arw_rad_sqrt_s, full_scale_rad_s=full_scale_rad_s,
-                         field_steps_s=field_steps_s)
+                         field_steps_s=field_steps_s, bias_walk_rad_s_sqrt_s=bias_walk_rad_s_sqrt_s)
     return bias_step_from_health(health)

@@ -66,7 +66,8 @@ class GyroCheck:
 def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body_nT: np.ndarray,
                arw_rad_sqrt_s: float | None, *, b_ref_nT: np.ndarray | None = None, mag_noise_nT: float | None = None,
                bias0_sigma_rad_s: float = 0.5 * RAD_PER_DEG, full_scale_rad_s: float | None = None,
-               field_steps_s: np.ndarray | None = None) -> GyroCheck:
+               field_steps_s: np.ndarray | None = None,
+               bias_walk_rad_s_sqrt_s: float | None = None) -> GyroCheck:
     """Is the gyro alive? See :func:`.gyro_health.assess_gyro` for the tests.
 
     Parameters
@@ -80,9 +81,12 @@ def check_gyro(t_gyro: np.ndarray, w_gyro: np.ndarray, t_mag: np.ndarray, b_body
     full_scale_rad_s : the gyro's range (samples at it are clipped, not stuck), or None
     field_steps_s : (S,) s, the control ticks when the magnetometer samples with the coils on (its field
         steps there), or None
+    bias_walk_rad_s_sqrt_s : the bias's rate random walk, or None (a MEMS default)
     """
     health = assess_gyro(t_gyro, w_gyro, t_mag, b_body_nT, b_ref_nT, mag_noise_nT=mag_noise_nT,
                          gyro_arw_rad_sqrt_s=arw_rad_sqrt_s, bias0_sigma_rad_s=bias0_sigma_rad_s,
-                         full_scale_rad_s=full_scale_rad_s, field_steps_s=field_steps_s)
+                         full_scale_rad_s=full_scale_rad_s, field_steps_s=field_steps_s,
+                         **({} if bias_walk_rad_s_sqrt_s is None
+                            else {"bias_walk_rad_s_sqrt_s": bias_walk_rad_s_sqrt_s}))
     return GyroCheck(health.health != "dead", health.reason, health.dead_start_s, health.dead_stop_s, health.axis,
                      None, health)

@@ -52,6 +52,9 @@ ALPHA = 1e-3
 # Power the test must have against a gyro that reads a constant before a pass can be called "ok"
 # (or "dead"): below it the field's motion cannot tell, and the answer is "untestable".
 POWER_MIN = 0.99
+# The bias's rate random walk when none is stated, rad/s/sqrt(s) (a MEMS gyro: 2e-4 deg/s/sqrt(s), common
+# practice, no source).
+BIAS_WALK_RAD_S_SQRT_S = 2e-4 / DEG_PER_RAD
 # Independent slopes needed for the kinematic test (about five minutes of data).
 MIN_SAMPLES = 30
 # Stuck output: a run of identical values this long and this share of the log (a live gyro's noise
@@ -173,7 +176,8 @@ def _power(fm: FieldMotion, one: LengthFit) -> float:
 def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndarray, b_body_nT: np.ndarray,
                 b_ref_nT: np.ndarray | None = None, *, mag_noise_nT: float | None = None,
                 gyro_arw_rad_sqrt_s: float | None = None, bias0_sigma_rad_s: float = 0.5 / DEG_PER_RAD,
-                full_scale_rad_s: float | None = None, field_steps_s: np.ndarray | None = None) -> GyroHealth:
+                full_scale_rad_s: float | None = None, field_steps_s: np.ndarray | None = None,
+                bias_walk_rad_s_sqrt_s: float = BIAS_WALK_RAD_S_SQRT_S) -> GyroHealth:
     """The gyro's health over one pass (see the module docstring).
 
     Parameters
@@ -186,6 +190,7 @@ def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndar
     full_scale_rad_s : the gyro's range, or None
     field_steps_s : (S,) s, instants where the sensed field can jump (the control ticks when the
         magnetometer samples with the coils on), or None
+    bias_walk_rad_s_sqrt_s : the bias's rate random walk (a step must stand out of it)
 
     Returns
     -------
@@ -209,10 +214,10 @@ def assess_gyro(t_gyro_s: np.ndarray, w_gyro_rad_s: np.ndarray, t_mag_s: np.ndar
         return GyroHealth("untestable", f"gyro not stuck; only {len(fm.t_s)} slopes of the field with an unclipped "
                                         f"gyro ({MIN_SAMPLES} needed) to test it against.", samples=len(fm.t_s))
     dense = field_motion(t_mag_s, b, b_ref_nT, tg, wg, every_sample=True, half_widths_s=(1.0,), **kw)
-    return _decide(fm, dense, bias0_sigma_rad_s)
+    return _decide(fm, dense, bias0_sigma_rad_s, bias_walk_rad_s_sqrt_s)
 
 
-def _decide(fm: FieldMotion, dense: FieldMotion, bias0_sigma: float) -> GyroHealth:
+def _decide(fm: FieldMotion, dense: FieldMotion, bias0_sigma: float, bias_walk: float) -> GyroHealth:
     """One bias, one step, or none; with the power to tell."""
     one = fit_lengths(fm)
     power = _power(fm, one)
@@ -224,17 +229,19 @@ def _decide(fm: FieldMotion, dense: FieldMotion, bias0_sigma: float) -> GyroHeal
                 p_value=one.p_value, power=power)
     figures = (f"chi-square {one.chi2:.0f} for {one.dof} degrees of freedom (p = {one.p_value:.2g}) over {one.n} "
                f"slopes of the field, power {power:.3f} against a gyro reading a constant")
+    # the step is sought whatever the one-bias fit says: that fit's noise level, estimated from its own
+    # residual, can swallow a step that two biases would leave as plain noise
+    step = find_step(fm, one, ALPHA, dense, bias_walk) if p_prior >= ALPHA else None
+    if step is not None:
+        return GyroHealth("bias_step", f"gyro bias stepped by {_fmt_dps(step.after_rad_s - step.before_rad_s)} deg/s "
+                                       f"at {step.t_s:.1f} s: two biases fit (p = {step.p_value:.2g}, chi-square gain "
+                                       f"{step.delta_chi2:.0f} over one bias): {figures}.", step=step, **base)
     if one.p_value >= ALPHA and p_prior >= ALPHA:
         if power < POWER_MIN:
             return GyroHealth("untestable", "gyro consistent with the field's motion, but the body turns too slowly "
                                             f"for the field to tell a dead gyro: {figures}.", **base)
         return GyroHealth("ok", f"gyro consistent with the field's motion with one bias "
                                 f"({_fmt_dps(one.beta)} deg/s): {figures}.", **base)
-    step = find_step(fm, one, ALPHA, dense) if p_prior >= ALPHA else None
-    if step is not None:
-        return GyroHealth("bias_step", f"gyro bias stepped by {_fmt_dps(step.after_rad_s - step.before_rad_s)} deg/s "
-                                       f"at {step.t_s:.1f} s: two biases fit (p = {step.p_value:.2g}, chi-square gain "
-                                       f"{step.delta_chi2:.0f}), one does not: {figures}.", step=step, **base)
     if power < POWER_MIN:
         return GyroHealth("untestable", "gyro does not fit one bias, but the body turns too slowly for the field to "
                                         f"tell a dead gyro: {figures}.", **base)

@@ -28,7 +28,7 @@ import numpy as np
 from scipy import stats
 from scipy.optimize import brentq, least_squares
 
-from ..core import cross_matrices
+from ..core import RAD_PER_DEG, cross_matrices
 from .kinematics import FIELD_TURN_NT_S_AT_1S, SLOPE_HALF_WIDTHS_S, FieldMotion, length_moments
 
 __all__ = ["LengthFit", "StepEvidence", "fit_lengths", "find_step", "noise_of_level", "SCALE_PRIOR",
@@ -45,9 +45,17 @@ _PRIOR = np.r_[np.full(6, SCALE_PRIOR), np.full(3, ALIGNMENT_PRIOR_RAD)]
 # practice, no source).
 NOISE_SCALE_MAX = 1.5
 WORST_LEVEL = 2.0
-# Step times tried, s apart, and the least stretch of data on each side, s.
+# Step times tried, s apart, and the least stretch of data on each side, s: five minutes hold about 30
+# independent slopes (10 s apart at the longest), enough that a side's bias is not fitted to a handful
+# of lengths with one of their several minima (common practice, no source).
 STEP_GRID_S = 60.0
-MIN_SIDE_S = 120.0
+MIN_SIDE_S = 300.0
+FINE_GRID_S = 5.0
+# A step must change the bias on some axis by at least this, rad/s (0.05 deg/s turns the attitude by
+# 3 deg a minute; smaller changes are the filter's bias walk to follow), and by this factor times the
+# bias random walk's spread over the pass (common practice, no source).
+MIN_STEP_RAD_S = 0.05 * RAD_PER_DEG
+STEP_WALK_FACTOR = 5.0
 _HALF_MAX = max(SLOPE_HALF_WIDTHS_S)
 
 
@@ -127,7 +135,7 @@ def _unpack(theta: np.ndarray, two: bool) -> tuple[np.ndarray, np.ndarray | None
 
 
 def fit_lengths(fm: FieldMotion, *, split_s: float | None = None, w_gyro_rad_s: np.ndarray | None = None,
-                noise_level: float | None = None) -> LengthFit:
+                noise_level: float | None = None, starts: tuple = ()) -> LengthFit:
     """Least squares of the gyro model on the standardised lengths (see the module docstring).
 
     Parameters
@@ -138,17 +146,21 @@ def fit_lengths(fm: FieldMotion, *, split_s: float | None = None, w_gyro_rad_s: 
         at which the chi-square equals its degrees of freedom), at most ``WORST_LEVEL`` (the worst
         storm and the noise model off by ``NOISE_SCALE_MAX``), so only a misfit beyond both tests high
 
-    Each bias starts from the least-squares fit of e = 0 on its own samples.
+    starts : further starting biases, (3,) each (or (6,) for a two-bias fit); the least squares on
+        lengths can have several minima where the field hardly turns in body axes, and the lowest is
+        kept
+
+    Each bias starts from the least-squares fit of e = 0 on its own samples, and from ``starts``.
     """
     model = _LengthModel(fm, split_s, w_gyro_rad_s)
     level = WORST_LEVEL if noise_level is None else noise_level
-    theta = model.solve(level)
+    theta = model.solve(level, starts)
     if noise_level is None:
         chi2_at = lambda lam: model.chi2(theta, lam)  # noqa: E731
         if chi2_at(WORST_LEVEL) < model.dof:
             level = float(brentq(lambda lam: chi2_at(lam) - model.dof, 0.0, WORST_LEVEL, xtol=1e-3)) \
                 if chi2_at(0.0) > model.dof else 0.0
-            theta = model.solve(level)
+            theta = model.solve(level, (*starts, theta[:model.nb]))
     return model.result(theta, level)
 
 
@@ -209,14 +221,23 @@ class _LengthModel:
         r = self.residuals(theta, level)[0]
         return float(r @ r)
 
-    def solve(self, level: float) -> np.ndarray:
-        start = np.zeros(self.nb + 9)
-        start[0:3] = _linear_start(self.fm.take(~self.after), self.w[~self.after])
+    def solve(self, level: float, starts: tuple = ()) -> np.ndarray:
+        """The unknowns at the lowest minimum reached from the linear start and ``starts``."""
+        first = np.zeros(self.nb)
+        first[0:3] = _linear_start(self.fm.take(~self.after), self.w[~self.after])
         if self.two:
-            start[3:6] = _linear_start(self.fm.take(self.after), self.w[self.after])
-        sol = least_squares(lambda th: self.residuals(th, level)[0], start, jac=lambda th: self.residuals(th, level)[1],
-                            method="lm", xtol=1e-12, ftol=1e-12, max_nfev=200)
-        return sol.x
+            first[3:6] = _linear_start(self.fm.take(self.after), self.w[self.after])
+        best = None
+        for b0 in (first, *starts):
+            b0 = np.asarray(b0, float)
+            start = np.r_[np.tile(b0, self.nb // len(b0)), np.zeros(9)]
+            sol = least_squares(lambda th: self.residuals(th, level)[0], start,
+                                jac=lambda th: self.residuals(th, level)[1], method="lm", xtol=1e-12, ftol=1e-12,
+                                max_nfev=200)
+            c = self.chi2(sol.x, level)
+            if best is None or c < best[0]:
+                best = (c, sol.x)
+        return best[1]
 
     def result(self, theta: np.ndarray, level: float) -> LengthFit:
         r, J = self.residuals(theta, level)
@@ -234,33 +255,56 @@ def _linear_start(fm: FieldMotion, w: np.ndarray) -> np.ndarray:
     return beta
 
 
-def find_step(fm: FieldMotion, one: LengthFit, alpha: float, dense: FieldMotion | None = None) -> StepEvidence | None:
+def find_step(fm: FieldMotion, one: LengthFit, alpha: float, dense: FieldMotion | None = None,
+              bias_walk_rad_s_sqrt_s: float = 0.0) -> StepEvidence | None:
     """The step time where two biases fit and one does not (None: no such time).
 
     Split times every ``STEP_GRID_S`` with ``MIN_SIDE_S`` of data on each side are tried; the best is
     refined between its neighbours on the grid with ``dense`` (slopes at every sample, when given),
     and both models are fitted again without the slopes that reach into the step's interval (they
     belong to neither bias). The chi-square gain must pass chi-square(3) at ``alpha / splits`` and the
-    two-bias fit must pass at ``alpha``.
+    two-bias fit must pass at ``alpha``; and the change must be a step, not the bias's random walk: on
+    some axis at least ``MIN_STEP_RAD_S``, ``STEP_WALK_FACTOR`` times the walk's spread over the pass and
+    3 sigma of its own uncertainty.
     """
     grid = np.arange(fm.t_s[0] + MIN_SIDE_S, fm.t_s[-1] - MIN_SIDE_S + 1e-9, STEP_GRID_S)
     if not len(grid):
         return None
     worst = WORST_LEVEL
-    ref = fit_lengths(fm, noise_level=worst).chi2
-    gains = np.array([ref - fit_lengths(fm, split_s=float(t), noise_level=worst).chi2 for t in grid])
+    ref = fit_lengths(fm, noise_level=worst, starts=(one.beta,)).chi2
+    gains = np.array([ref - fit_lengths(fm, split_s=float(t), noise_level=worst, starts=(one.beta,)).chi2
+                      for t in grid])
     k = int(np.argmax(gains))
     lo, hi = grid[max(k - 1, 0)], grid[min(k + 1, len(grid) - 1)]
-    coarse = fit_lengths(fm, split_s=float(grid[k]), noise_level=worst)
-    t, t_lo, t_hi = (_refine_time(dense, coarse, lo, hi) if dense is not None else (float(grid[k]), lo, hi))
+    t_fine, fine = _refine_split(fm, one, float(lo), float(hi))
+    t, t_lo, t_hi = (_refine_time(dense, fine, t_fine - FINE_GRID_S, t_fine + FINE_GRID_S) if dense is not None
+                     else (t_fine, t_fine - FINE_GRID_S, t_fine + FINE_GRID_S))
     clear = fm.take((fm.t_s + _HALF_MAX < t_lo) | (fm.t_s - _HALF_MAX > t_hi))
-    two = fit_lengths(clear, split_s=t)
-    # the two models compared at the noise level the two-bias model leaves (its own estimate)
-    gain = fit_lengths(clear, noise_level=two.noise_level).chi2 - two.chi2
+    two = fit_lengths(clear, split_s=t, starts=(one.beta,))
+    # the two models compared at the noise level the two-bias model leaves (its own estimate), the one
+    # bias also started from either side's (the lowest of the minima)
+    gain = fit_lengths(clear, noise_level=two.noise_level, starts=(one.beta, two.beta, two.beta_after)).chi2 - two.chi2
     if gain < stats.chi2.isf(alpha / len(grid), 3) or two.p_value < alpha:
+        return None
+    delta = two.beta_after - two.beta
+    sigma = np.sqrt(np.clip(np.diag(two.cov[0:3, 0:3]) + np.diag(two.cov[3:6, 3:6]), 0.0, None))
+    walk = STEP_WALK_FACTOR * bias_walk_rad_s_sqrt_s * np.sqrt(float(fm.t_s[-1] - fm.t_s[0]))
+    if not np.any((np.abs(delta) >= max(MIN_STEP_RAD_S, walk)) & (np.abs(delta) >= 3.0 * sigma)):
         return None
     return StepEvidence(t, t_lo, t_hi, two.beta, two.beta_after, two.cov[0:3, 0:3], two.cov[3:6, 3:6], float(gain),
                         two.p_value)
+
+
+def _refine_split(fm: FieldMotion, one: LengthFit, lo: float, hi: float) -> tuple[float, LengthFit]:
+    """The split time in [lo, hi] on a ``FINE_GRID_S`` grid with the lowest two-bias chi-square, each
+    tried without the slopes that span it, and that fit."""
+    best = None
+    for t in np.arange(lo, hi + 1e-9, FINE_GRID_S):
+        clear = fm.take(np.abs(fm.t_s - t) > fm.half_width_s)
+        f = fit_lengths(clear, split_s=float(t), noise_level=WORST_LEVEL, starts=(one.beta,))
+        if best is None or f.chi2 - f.dof < best[0]:
+            best = (f.chi2 - f.dof, float(t), f)
+    return best[1], best[2]
 
 
 def _refine_time(fm: FieldMotion, fit: LengthFit, lo: float, hi: float) -> tuple[float, float, float]:

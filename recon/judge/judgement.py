@@ -148,14 +148,16 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
 @dataclass(frozen=True)
 class _Setting:
     """The pass's setting (for the findings) and its control ticks, s since the data's epoch; ``gate``
-    is (ticks, before, after) of the coil-off windows of windowed sampling, else None; ``expected_unit``
-    the chi-square unit of a motion model that fits (None: no stated rate noise)."""
+    is (ticks, before, after) of the coil-off windows of windowed sampling, else None; ``scan_cov`` the
+    rate covariance (N, 3, 3) that weights the latency scan; ``expected_unit`` the chi-square unit of
+    a motion model that fits there (None: no stated rate noise)."""
 
     ctx: PassContext
     ticks_s: np.ndarray
     gate: tuple[np.ndarray, float, float] | None
     off_window_s: tuple[float, float] | None
     max_hold_s: float
+    scan_cov: np.ndarray | None = None
     expected_unit: float | None = None
 
 
@@ -163,9 +165,12 @@ def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays, rate
              gyro_health: str | None, rate_source: str | None) -> _Setting:
     """The control ticks where the rate history and the coil log overlap, and the pass's setting.
 
-    A motion model that fits leaves the rate noise: with the rate covariance the fit is whitened and
-    its chi-square unit is 1; with the stated 1-sigma only, it is ``J^2 sigma^2`` averaged over the
-    instants and axes (the residual of one component is ``(J dw)_c``)."""
+    The latency scan is weighted by the rate covariance: the one given, or else an isotropic one (a
+    gyro's noise is alike on its axes), ``sigma^2 I`` from the stated 1-sigma averaged over the pass (1
+    without one; the weights' scale then does not matter). Weighted so, the torque equation of a body
+    with a small moment counts as much as the others, and a motion model that fits has a chi-square
+    unit of 1. The dipoles themselves are fitted with the given covariance only: an unweighted fit
+    keeps the slow model errors (attitude, field) from leaning on one axis."""
     t, t_coil, epoch = data.t_s, data.t_coil_s, data.epoch
     T = float(controller.period_s)
     window = coils.off_window_s if coils.mag_sampling == "windowed" else None
@@ -179,13 +184,15 @@ def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays, rate
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
     ctx = PassContext(controller.law, T, np.asarray(coils.dipole_per_amp, float),
                       np.asarray(coils.max_current_A, float), span, coils.mag_sampling, gyro_health, rate_source)
-    expected = None
-    if data.w_cov_rad2_s2 is not None:
-        expected = 1.0
-    elif rate_sigma_rad_s is not None:
-        sig = checked_array("rate_sigma_rad_s", rate_sigma_rad_s, (3,), len(t))
-        expected = float(np.nanmean(sig ** 2 @ (data.inertia_kg_m2 ** 2).T))
-    return _Setting(ctx, ticks, gate, window, 2.5 * T, expected)
+    cov, expected = data.w_cov_rad2_s2, 1.0
+    if cov is None:
+        var = 1.0
+        if rate_sigma_rad_s is not None:
+            var = float(np.nanmean(checked_array("rate_sigma_rad_s", rate_sigma_rad_s, (3,), len(t)) ** 2))
+        else:
+            expected = None
+        cov = np.broadcast_to(var * np.eye(3), (len(t), 3, 3))
+    return _Setting(ctx, ticks, gate, window, 2.5 * T, cov, expected)
 
 
 @dataclass(frozen=True)
@@ -274,7 +281,7 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
         scans = {kn: scan_actuation_latency(
             t, w, b_body, J, ticks, i_cmd, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
-            r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, gate=gate, max_hold_s=setting.max_hold_s,
+            r_body_km=data.r_body_km, w_cov_rad2_s2=setting.scan_cov, gate=gate, max_hold_s=setting.max_hold_s,
             rate_bias_knot_s=kn, inertia_shape=True) for kn in (None, RATE_BIAS_KNOT_S)}
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
