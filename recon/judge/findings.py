@@ -38,6 +38,7 @@ from .thresholds import (
     NO_RESPONSE_RATIO,
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
+    TREND_SIGMAS,
 )
 from .types import (
     AXES,
@@ -47,6 +48,7 @@ from .types import (
     LatencyProfile,
     PassContext,
     RateBiasEvidence,
+    Trend,
     finite_or_none,
 )
 
@@ -262,17 +264,25 @@ def _effect_findings(ctx: PassContext, effect: EffectAssessment) -> Findings:
     if tr is None:
         return Findings(reasons=(f"the {what} trend could not be fitted (too few rate samples)",))
     tau_exp = tre.time_constant_s if tre is not None else float("nan")
-    if trend_label(tr) == "increasing":
+    # the shortfall against what the replayed law predicts, in sigmas of the two slopes together: only a
+    # significant one is a finding (a rise the law itself predicts is not a fault)
+    z_short = _shortfall_sigmas(tr, tre)
+    if trend_label(tr) == "increasing" and z_short > TREND_SIGMAS:
+        if tre is None:
+            against = "judged against no change (no expected trend could be replayed)"
+        else:
+            against = (f"where the configured law along this trajectory predicts ln slope {tre.slope_per_s:+.2e} "
+                       f"+- {tre.sigma_per_s:.1e} per s")
         return Findings((_an(ctx, code_up, "critical",
                              f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} "
                              f"per s, {np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) "
-                             f"where the configured law should have reduced it (expected time constant "
-                             f"{tau_exp:.0f} s); mean magnetic power {effect.magnetic_power_mean_W:+.2e} W (positive "
-                             "pumps energy in)", value=tr.slope_per_s),))
+                             f"{against}: {z_short:.1f} sigma above it, limit {TREND_SIGMAS:.0f}; mean magnetic "
+                             f"power {effect.magnetic_power_mean_W:+.2e} W (positive pumps energy in)",
+                             value=tr.slope_per_s),))
     if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
         return Findings()
     ratio = effect.efficiency if effect.efficiency is not None else float("nan")
-    if not (np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR):
+    if not (np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR and z_short > TREND_SIGMAS):
         return Findings()
     obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
     extra = ""
@@ -284,7 +294,25 @@ def _effect_findings(ctx: PassContext, effect: EffectAssessment) -> Findings:
     return Findings((_an(ctx, code_slow, "warning",
                          f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
                          f"this trajectory (achieved {max(ratio, 0):.2f} of the expected decay rate, limit "
-                         f"1/{DETUMBLE_SLOW_FACTOR:.0f}){extra}", value=ratio),))
+                         f"1/{DETUMBLE_SLOW_FACTOR:.0f}; shortfall {z_short:.1f} sigma){extra}", value=ratio),))
+
+
+def _shortfall_sigmas(observed: Trend, expected: Trend | None) -> float:
+    """How far the observed slope of ln x lies above the expected one, in sigmas of the two together.
+
+    ``z = (s_obs - s_exp) / hypot(sigma_obs, sigma_exp)``; without an expectation the observed slope is
+    set against zero (``z = s_obs / sigma_obs``). Positive: x fell more slowly (or rose faster) than the
+    replayed law predicts. A difference with no stated scatter at all is infinitely significant (its
+    sign kept); no difference is 0.
+    """
+    s_exp, sig_exp = (expected.slope_per_s, expected.sigma_per_s) if expected is not None else (0.0, 0.0)
+    diff = float(observed.slope_per_s - s_exp)
+    sig = float(np.hypot(observed.sigma_per_s, sig_exp))
+    if not np.isfinite(diff) or np.isnan(sig):
+        return 0.0
+    if sig > 0:
+        return diff / sig
+    return float(np.sign(diff) * np.inf) if diff != 0 else 0.0
 
 
 def _feedback_findings(ctx: PassContext, effect: EffectAssessment, loop: CrosstalkFeedback | None,

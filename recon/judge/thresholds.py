@@ -102,6 +102,12 @@ EXPECTED_MIN_CHANGE = 0.5
 # A trend is called when its slope is both significant and large: |slope| > 3 sigma (about 1 %
 # false-alarm rate for Student's t with 8 degrees of freedom) and a change of ln x over the pass
 # of at least 0.1 (10 % in energy, 5 % in rate) (common practice, no source).
+# The same 3 sigma bounds the shortfall that raises an effect finding (rate_increasing, detumble_slow
+# and their cross-product kin): z = (s_obs - s_exp) / hypot(sigma_obs, sigma_exp), the observed slope
+# of ln x against the one the replayed law predicts along the same trajectory. One-sided, its null is
+# about Student's t with 8 degrees of freedom (10 block means, two parameters), P(t_8 > 3) = 0.0085
+# (scipy.stats.t.sf(3, 8)), so under 1 % per pass and per law; a rise the law itself predicts gives
+# z near 0 and is not a finding.
 TREND_SIGMAS = 3.0
 TREND_MIN_CHANGE = 0.1
 
