@@ -374,11 +374,10 @@ def _judgement(data: PassArrays, setting: _Setting, replayed: _Replay, ident: _I
     lag = cmp_.lag_s if cmp_ is not None else None
     # the commands are timed from their own ticks, so the motion's latency is already tick to torque
     act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
-    total = act
     return ControllerJudgement(
         law=ctx.law, axes=ident.axes, verdict=verdict(ctx, ident.axes, found.anomalies, cmp_, lat_info),
         reasons=found.reasons, anomalies=found.anomalies,
-        latency_s=total, command_lag_s=lag, actuation_latency_s=act,
+        latency_s=act, command_lag_s=lag, actuation_latency_s=act,
         actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
         rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
         energy_time_constant_expected_s=effect.energy_time_constant_expected_s,
