@@ -191,10 +191,11 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
         Also estimate a slowly varying bias of the rate history (piecewise linear, knots at most
         this far apart, see :func:`rate_bias_knots_s`); None: the rate history is taken as unbiased.
     inertia_shape : bool
-        Also estimate the inertia's shape: its change in the five directions perpendicular to the
-        given inertia (:func:`.motion.inertia_shape_basis`; its scale cannot be told from the
-        dipoles'). The true inertia differs from the design values by a few percent, and at a few
-        deg/s the error of ``w x J w`` is as large as the coil torque.
+        Also estimate the inertia's shape: its change in five directions that with the given
+        inertia span the symmetric matrices, chosen so that the rate's noise cannot pull them
+        (:func:`.motion.inertia_shape_basis`; its scale cannot be told from the dipoles'). The true
+        inertia differs from the design values by a few percent, and at a few deg/s the error of
+        ``w x J w`` is as large as the coil torque.
     motion : MotionSplines, optional
         The splines of this motion history when already built (a latency scan shares one set over
         all its trials); built here otherwise.
