@@ -43,14 +43,14 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import applied_current, control_ticks, held_values, tick_phase, window_mean
+from ..core import applied_current, control_ticks, tick_phase, window_mean
 from . import replay as rep
 from .alignment import align_commands, commands_at_ticks
 from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
 from .effect import assess_effect
 from .feedback import assess_crosstalk_feedback
 from .findings import findings, verdict
-from .inputs import PassArrays, check_pass_inputs, checked_array, checked_seconds
+from .inputs import PassArrays, check_pass_inputs, checked_array, raw_gyro
 from .latency import latency_profile, scan_actuation_latency
 from .replay import CommandComparison
 from .thresholds import MAX_LATENCY_PERIODS, MIN_SEGMENTS, RATE_BIAS_KNOT_S, SEGMENT_POINTS
@@ -219,11 +219,11 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
     b_tick = rep.tick_samples_nT(data.t_mag_s, data.b_mag_body_nT, ticks, sampling=ctx.mag_sampling,
                                  off_window_s=setting.off_window_s)
     i_rep = np.full((len(ticks), 3), np.nan)
-    gyro = _raw_gyro(data, time_gyro_utc, w_gyro_body_rad_s)
+    gyro = raw_gyro(data.epoch, time_gyro_utc, w_gyro_body_rad_s)
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
-        w_tick = _onboard_rate(data, ticks, gyro)
+        w_tick = rep.onboard_rate(ticks, gyro, data.t_s, data.w_body_rad_s)
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
         i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
     cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
@@ -234,22 +234,6 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
         logged_tick = commands_at_ticks(al, ticks, data.t_coil_s, data.i_coil_A, T)
     seen = None if gyro is None else window_mean(gyro[0], gyro[1], data.t_s, 0.5 * setting.ctx.period_s)
     return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax), logged_tick, seen)
-
-
-def _raw_gyro(data: PassArrays, time_gyro_utc, w_gyro_body_rad_s) -> tuple[np.ndarray, np.ndarray] | None:
-    """The raw gyro log as (s since the epoch, rad/s body), or None."""
-    if time_gyro_utc is None or w_gyro_body_rad_s is None:
-        return None
-    tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
-    return tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg))
-
-
-def _onboard_rate(data: PassArrays, ticks: np.ndarray, gyro: tuple[np.ndarray, np.ndarray] | None) -> np.ndarray:
-    """The rate the onboard computer used at each tick: the raw gyro held at the tick, or the
-    reconstructed rate without a gyro log, rad/s body (K, 3)."""
-    if gyro is not None:
-        return held_values(gyro[0], gyro[1], ticks, tol=1e-9)
-    return np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
 
 
 @dataclass(frozen=True)
@@ -289,22 +273,35 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
         lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T, expected_unit=setting.expected_unit)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
-        fit = identify_dipole(t, w, b_body, J, ticks, i_cmd, ticks, r_body_km=data.r_body_km,
-                              w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=L_use, gate=gate,
-                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot,
-                              inertia_shape=True)
+        fit, i_applied, axes = _coils(data, setting, replayed, L_use, knot)
+        if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
+            # no coil identified: the motion says nothing about timing, in either direction, so its
+            # latency is not used either (the coil-field loop and the effect assume the design's zero)
+            lat_info = replace(lat_info, determined=False, acausal=False,
+                               reason="no coil was identified from the motion, so it says nothing about timing")
+            if L_use != 0.0:
+                fit, i_applied, axes = _coils(data, setting, replayed, 0.0, knot)
         rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
         if rate_bias.used:
             rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
                                 sigma_rad_s=fit.rate_bias_sigma_rad_s)
-    i_applied = applied_current(t, ticks, i_cmd, latency_s=fit.latency_s if fit else 0.0, gate=gate,
-                                max_hold_s=setting.max_hold_s)
-    axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
-    if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
-        # no coil identified: the motion says nothing about timing, in either direction
-        lat_info = replace(lat_info, determined=False, acausal=False,
-                           reason="no coil was identified from the motion, so it says nothing about timing")
+    else:
+        i_applied = applied_current(t, ticks, i_cmd, gate=gate, max_hold_s=setting.max_hold_s)
+        axes = _axes(setting.ctx, None, replayed.comparison, replayed.chatter, i_applied)
     return _Identification(fit, lat_trials, lat_wrss, lat_info, rate_bias, n_seg, i_applied, axes)
+
+
+def _coils(data: PassArrays, setting: _Setting, replayed: _Replay, latency_s: float, knot: float | None):
+    """The dipole fit with the commands acting ``latency_s`` after their ticks, the applied current
+    (N, 3) A it implies, and each coil's judgement."""
+    ticks, gate, i_cmd = setting.ticks_s, setting.gate, replayed.i_tick_A
+    fit = identify_dipole(data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2, ticks, i_cmd, ticks,
+                          r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=latency_s, gate=gate,
+                          max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot,
+                          inertia_shape=True)
+    i_applied = applied_current(data.t_s, ticks, i_cmd, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+                                max_hold_s=setting.max_hold_s)
+    return fit, i_applied, _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
 
 
 def _axes(ctx: PassContext, fit: DipoleFit | None, cmp_: CommandComparison | None, chatter: np.ndarray,

@@ -24,12 +24,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import bdot_dipole, cross_product_dipole, currents_from_dipole
+from ..core import bdot_dipole, cross_product_dipole, currents_from_dipole, held_values
 from .alignment import CommandAlignment, align_commands, commands_at_ticks
 from .thresholds import INFORMATIVE_LEVEL, NEAR_LIMIT_LEVEL, SATURATION_LEVEL
 
 __all__ = [
-    "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
+    "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A", "onboard_rate",
     "CommandComparison", "compare_commands", "chatter_fraction",
 ]
 
@@ -133,6 +133,16 @@ def replay_cross_product_A(b_tick_body_nT: np.ndarray, w_tick_body_rad_s: np.nda
     ok = np.all(np.isfinite(b), axis=1) & np.all(np.isfinite(h_err), axis=1) & (np.sum(b * b, axis=1) > 0)
     out[ok] = currents_from_dipole(cross_product_dipole(h_err[ok], b[ok], gain_per_s), C_nominal, max_current_A)
     return out
+
+
+def onboard_rate(ticks_s: np.ndarray, gyro: tuple[np.ndarray, np.ndarray] | None, t_s: np.ndarray,
+                 w_body_rad_s: np.ndarray) -> np.ndarray:
+    """The rate the onboard computer used at each tick, rad/s body axes (K, 3): the raw gyro
+    ``(times s, rates (Ng, 3))`` held at the tick, or without a gyro log the reconstructed rate
+    ``w_body_rad_s`` at times ``t_s`` interpolated to it."""
+    if gyro is not None:
+        return held_values(gyro[0], gyro[1], ticks_s, tol=1e-9)
+    return np.column_stack([np.interp(ticks_s, t_s, w_body_rad_s[:, a]) for a in range(3)])
 
 
 @dataclass(frozen=True)
