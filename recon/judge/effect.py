@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..core import MU_EARTH_km3_s2
+from ..core import MU_EARTH_km3_s2, MU_EARTH_m3_s2
 from .thresholds import TREND_MIN_CHANGE, TREND_SIGMAS
 from .types import EffectAssessment, Trend
 
@@ -161,8 +161,15 @@ def near_optimal_gain_Nms(mean_motion: float, xi_m_rad: float, inertia_kg_m2: np
 def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.ndarray,
                   inertia_kg_m2: np.ndarray, i_applied_A: np.ndarray, i_replay_applied_A: np.ndarray,
                   C_used: np.ndarray, C_nominal: np.ndarray, *, target_momentum_Nms: np.ndarray | None = None,
-                  r_gcrf_km: np.ndarray | None = None, b_gcrf_nT: np.ndarray | None = None) -> EffectAssessment:
+                  r_gcrf_km: np.ndarray | None = None, b_gcrf_nT: np.ndarray | None = None,
+                  w_seen_rad_s: np.ndarray | None = None, residual_dipole_Am2: np.ndarray | None = None,
+                  r_body_km: np.ndarray | None = None) -> EffectAssessment:
     """Trends and torque power of one pass, observed and as the configured law should have produced.
+
+    The expected trends use the full torque model: the replayed command through the nominal dipoles,
+    the identified residual dipole and the gravity gradient. The cross-product law regulates the
+    momentum error the onboard computer computes from its gyro, bias included; that error (from
+    ``w_seen_rad_s``) is the one judged, observed and expected.
 
     Parameters
     ----------
@@ -175,6 +182,9 @@ def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarr
     C_nominal : (3, 3) the design's dipole per amp
     target_momentum_Nms : (3,) body axes, cross-product only
     r_gcrf_km, b_gcrf_nT : (N, 3), optional: mean motion, rate floor and near-optimal gain
+    w_seen_rad_s : (N, 3) the rate the onboard computer read (its raw gyro), or None (the history)
+    residual_dipole_Am2 : (3,) identified residual dipole, or None; r_body_km : (N, 3) position in body
+        axes (gravity gradient), or None
 
     Returns
     -------
@@ -193,11 +203,16 @@ def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarr
     power_axis = np.array([np.mean(magnetic_power_W(w, np.outer(ia[:, j], np.asarray(C_used)[:, j]), b))
                            for j in range(3)])
     ir = np.nan_to_num(np.asarray(i_replay_applied_A, float))
+    tau_other = _other_torques(b, J, residual_dipole_Am2, r_body_km)
     bdot = law == "bdot"
     cross = law == "cross_product"
-    tre = expected_log_trend(t, magnetic_power_W(w, ir @ np.asarray(C_nominal).T, b) / np.maximum(E, 1e-300)) \
-        if bdot else None
-    trh, trhe = _momentum_error_trends(t, w, b, J, ir, C_nominal, target_momentum_Nms) if cross else (None, None)
+    tre = None
+    if bdot:
+        tau_exp = np.cross(ir @ np.asarray(C_nominal).T, b * 1e-9) + tau_other
+        tre = expected_log_trend(t, np.einsum("ni,ni->n", w, tau_exp) / np.maximum(E, 1e-300))
+    w_seen = w if w_seen_rad_s is None else np.asarray(w_seen_rad_s, float)
+    trh, trhe = (_momentum_error_trends(t, w, w_seen, b, J, ir, C_nominal, target_momentum_Nms, tau_other)
+                 if cross else (None, None))
     floor, xi, k_ag = _orbit_figures(t, J, r_gcrf_km, b_gcrf_nT)
     return EffectAssessment(
         rate_trend=trend_label(tr), energy_fit=tr, energy_time_constant_s=_time_constant(tr),
@@ -212,6 +227,19 @@ def assess_effect(law: str, gain: float, t_s: np.ndarray, w_body_rad_s: np.ndarr
         rate_floor_rad_s=floor, geomagnetic_inclination_rad=xi, near_optimal_gain_Nms=k_ag)
 
 
+def _other_torques(b: np.ndarray, J: np.ndarray, residual_dipole_Am2: np.ndarray | None,
+                   r_body_km: np.ndarray | None) -> np.ndarray:
+    """The residual dipole's torque and the gravity gradient, N m, body axes (N, 3) (zero where unknown)."""
+    tau = np.zeros_like(b)
+    if residual_dipole_Am2 is not None and np.all(np.isfinite(residual_dipole_Am2)):
+        tau += np.cross(np.asarray(residual_dipole_Am2, float), b * 1e-9)
+    if r_body_km is not None:
+        r = np.asarray(r_body_km, float) * 1e3
+        rn = np.linalg.norm(r, axis=1, keepdims=True)
+        tau += 3.0 * MU_EARTH_m3_s2 / rn ** 5 * np.cross(r, r @ J.T)
+    return tau
+
+
 def _time_constant(trend: Trend | None) -> float | None:
     return trend.time_constant_s if trend is not None else None
 
@@ -223,17 +251,20 @@ def _efficiency(observed: Trend | None, expected: Trend | None) -> float | None:
     return None
 
 
-def _momentum_error_trends(t: np.ndarray, w: np.ndarray, b: np.ndarray, J: np.ndarray, i_replay: np.ndarray,
-                           C_nominal: np.ndarray, target_momentum_Nms: np.ndarray | None
-                           ) -> tuple[Trend | None, Trend | None]:
-    """Trends of ln |h - h_target| observed and as the replayed cross-product law should have driven it
-    (its torque's projection on the momentum error, with the gyroscopic term)."""
+def _momentum_error_trends(t: np.ndarray, w: np.ndarray, w_seen: np.ndarray, b: np.ndarray, J: np.ndarray,
+                           i_replay: np.ndarray, C_nominal: np.ndarray, target_momentum_Nms: np.ndarray | None,
+                           tau_other: np.ndarray) -> tuple[Trend | None, Trend | None]:
+    """Trends of the momentum error the law regulates, ln |J w_seen - h_target|, observed and as the
+    replayed cross-product law with the other torques should have driven it.
+
+    The error the onboard computer sees moves with the true rate (its gyro bias is constant), so
+    ``d h_seen / dt = J dw/dt = tau - w x J w`` with tau the replayed coils' torque plus the residual
+    dipole's and the gravity gradient's."""
     h_t = np.zeros(3) if target_momentum_Nms is None else np.asarray(target_momentum_Nms, float)
-    h = w @ J.T
-    he = h - h_t
+    he = w_seen @ J.T - h_t
     hn = np.linalg.norm(he, axis=1)
     trh = block_log_trend(t, hn)
-    tau_exp = np.cross(i_replay @ np.asarray(C_nominal).T, b * 1e-9) - np.cross(w, h)
+    tau_exp = np.cross(i_replay @ np.asarray(C_nominal).T, b * 1e-9) + tau_other - np.cross(w, w @ J.T)
     rate = np.einsum("ni,ni->n", he, tau_exp) / np.maximum(hn, 1e-300) ** 2
     return trh, expected_log_trend(t, rate)
 

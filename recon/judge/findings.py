@@ -35,8 +35,10 @@ from .thresholds import (
     LATENCY_LIMIT_PERIODS,
     LOOP_GAIN_LIMIT,
     MIN_SEGMENTS,
+    NO_RESPONSE_RATIO,
     SATURATION_FRACTION_LIMIT,
     SEGMENT_POINTS,
+    TREND_SIGMAS,
 )
 from .types import (
     AXES,
@@ -46,6 +48,7 @@ from .types import (
     LatencyProfile,
     PassContext,
     RateBiasEvidence,
+    Trend,
     finite_or_none,
 )
 
@@ -85,7 +88,7 @@ def findings(ctx: PassContext, *, axes: tuple[AxisJudgement, ...], identified: b
     if ctx.law == "none":
         law = Findings(reasons=('no control law is configured (controller.law = "none"): there is no intended '
                                 "behaviour to check the coils against",))
-    return (law + _coil_findings(ctx, axes, identified, n_segments, n_ticks)
+    return (law + _estimator_findings(ctx) + _coil_findings(ctx, axes, identified, n_segments, n_ticks)
             + _command_findings(ctx, axes, comparison) + _latency_findings(ctx, latency)
             + _effect_findings(ctx, effect) + _feedback_findings(ctx, effect, feedback, chatter)
             + _rate_bias_findings(ctx, rate_bias))
@@ -94,18 +97,35 @@ def findings(ctx: PassContext, *, axes: tuple[AxisJudgement, ...], identified: b
 def verdict(ctx: PassContext, axes: tuple[AxisJudgement, ...], anomalies: tuple[Anomaly, ...],
             comparison: CommandComparison | None, latency: LatencyProfile | None) -> str:
     """"not_as_intended" on any critical or warning finding other than saturation (an operating
-    regime, not a fault); otherwise "as_intended" only when every coil's polarity and every axis's
-    commands were checked and the motion's timing is causal; "undetermined" (with the reasons) when
-    anything could not be."""
+    regime, not a fault), or when the cross-product law read a gyro the estimator found dead or with a
+    bias step (the law then regulated a wrong rate); otherwise "as_intended" only when every coil's
+    polarity and every axis's commands were checked, the motion's timing is causal and the rate
+    history did not come from the dynamics model (which assumes the nominal coils); "undetermined"
+    (with the reasons) when anything could not be."""
     if any(a.severity in ("critical", "warning") and a.code != "controller_saturated" for a in anomalies):
         return "not_as_intended"
-    if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes):
+    if ctx.law == "cross_product" and ctx.gyro_health in ("dead", "bias_step"):
+        return "not_as_intended"
+    if ctx.law == "none" or any(ax.polarity == "undetermined" for ax in axes) or ctx.rate_source == "dynamics":
         return "undetermined"
     if latency is not None and latency.acausal:
         return "undetermined"
     if not all(_command_verified(comparison, a) for a in range(3)):
         return "undetermined"
     return "as_intended"
+
+
+def _estimator_findings(ctx: PassContext) -> Findings:
+    """What the estimator's verdict on the gyro changes in the judgement (its own anomaly reports the
+    gyro): the reasons the verdict cannot rest on the usual evidence."""
+    reasons = []
+    if ctx.law == "cross_product" and ctx.gyro_health in ("dead", "bias_step"):
+        reasons.append(f"the cross-product law reads the gyro, which the estimator found "
+                       f"{'dead' if ctx.gyro_health == 'dead' else 'with a bias step'}: the law regulated a wrong rate")
+    if ctx.rate_source == "dynamics":
+        reasons.append("the rate history was reconstructed without the gyro, from Euler's equations with the nominal "
+                       "coil dipoles: the motion cannot confirm the coils independently")
+    return Findings(reasons=tuple(reasons))
 
 
 def _an(ctx: PassContext, code: str, severity: str, evidence: str, axis: str | None = None,
@@ -148,7 +168,8 @@ def _coil_axis_findings(ctx: PassContext, a: int, ax: AxisJudgement) -> Findings
             why = (f"; the logged commands follow the law (command gain ratio {ax.command_gain_ratio:.2f}), "
                    "so the reversal is in the coil or its wiring")
         out.append(_an(ctx, "coil_polarity_inverted", "critical",
-                       f"{head}: polarity inverted ({ax.polarity_confidence:.0f} sigma from zero){why}", ax.axis, est))
+                       f"{head}: polarity inverted ({ax.polarity_confidence:.0f} sigma from zero; log-likelihood ratio "
+                       f"of inverted to nominal {-2.0 * r / rs ** 2:.0f}){why}", ax.axis, est))
     elif ax.polarity == "no_response":
         out.append(_an(ctx, "coil_no_response", "critical",
                        f"{head}: no response ({ax.polarity_confidence:.0f} sigma below nominal) while "
@@ -158,7 +179,9 @@ def _coil_axis_findings(ctx: PassContext, a: int, ax: AxisJudgement) -> Findings
             reasons.append(f"{head}: the coil carried no current during the pass")
         else:
             reasons.append(f"{head}: cannot be told from nominal or from zero at 3 sigma "
-                           f"(current {rms}, {100 * ax.rms_current_A / ctx.max_current_A[a]:.0f} % of the limit)")
+                           f"(current {rms}, {100 * ax.rms_current_A / ctx.max_current_A[a]:.0f} % of the limit; "
+                           f"Fisher information on the dipole ratio {1.0 / rs ** 2:.0f}: nominal and inverted lie "
+                           f"{2.0 / rs:.1f} sigma apart, no response and half gain {NO_RESPONSE_RATIO / rs:.1f})")
     if ax.polarity in ("nominal", "inverted"):
         lo, hi = abs(r) - COIL_GAIN_SIGMAS * rs, abs(r) + COIL_GAIN_SIGMAS * rs
         if lo > 1 + COIL_GAIN_TOLERANCE or hi < 1 - COIL_GAIN_TOLERANCE:
@@ -203,7 +226,8 @@ def _command_findings(ctx: PassContext, axes, cmp_: CommandComparison | None) ->
 
 
 def _latency_findings(ctx: PassContext, lat_info: LatencyProfile | None) -> Findings:
-    """Torque before its command (time tags in error), or a latency of a control period or more."""
+    """Torque before its command (time tags in error), a latency the motion puts beyond half a control
+    period at 3 sigma, or the reason the latency is undetermined."""
     if lat_info is None:
         return Findings()
     T = ctx.period_s
@@ -215,11 +239,15 @@ def _latency_findings(ctx: PassContext, lat_info: LatencyProfile | None) -> Find
                 "coil log or of the rate history are in error, and the actuation latency is not judged")
         return Findings((_an(ctx, "actuation_before_command", "info", text, value=La),), (text,))
     L, (lo, hi), d0 = lat_info.latency_s, lat_info.interval_s, lat_info.delta_chi2_zero
-    if lat_info.determined and abs(L) >= LATENCY_LIMIT_PERIODS * T - 1e-9 and d0 >= LATENCY_DELTA_CHI2:
+    if not lat_info.determined:
+        return Findings(reasons=(f"actuation latency undetermined: {lat_info.reason}",))
+    if lo > LATENCY_LIMIT_PERIODS * T + 1e-9:
         return Findings((_an(ctx, "command_latency", "warning",
-                             f"coil currents act {L:.1f} s (3-sigma range {lo:.1f} to {hi:.1f} s) after their logged "
-                             f"command time, {L / T:.1f} control periods; the motion rejects immediate action "
-                             f"(profile chi-square +{d0:.0f} at zero delay)", value=L),))
+                             f"coil currents act {L:.2f} s after their control tick (3-sigma range {lo:.2f} to "
+                             f"{hi:.2f} s), {L / T:.1f} control periods; the motion rejects every latency up to "
+                             f"{LATENCY_LIMIT_PERIODS:.1f} period at 3 sigma (profile chi-square +{d0:.0f} at zero "
+                             f"delay; the profile rises {lat_info.rise_before:.0f} below and {lat_info.rise_after:.0f} "
+                             "above its minimum)", value=L),))
     return Findings()
 
 
@@ -236,17 +264,25 @@ def _effect_findings(ctx: PassContext, effect: EffectAssessment) -> Findings:
     if tr is None:
         return Findings(reasons=(f"the {what} trend could not be fitted (too few rate samples)",))
     tau_exp = tre.time_constant_s if tre is not None else float("nan")
-    if trend_label(tr) == "increasing":
+    # the shortfall against what the replayed law predicts, in sigmas of the two slopes together: only a
+    # significant one is a finding (a rise the law itself predicts is not a fault)
+    z_short = _shortfall_sigmas(tr, tre)
+    if trend_label(tr) == "increasing" and z_short > TREND_SIGMAS:
+        if tre is None:
+            against = "judged against no change (no expected trend could be replayed)"
+        else:
+            against = (f"where the configured law along this trajectory predicts ln slope {tre.slope_per_s:+.2e} "
+                       f"+- {tre.sigma_per_s:.1e} per s")
         return Findings((_an(ctx, code_up, "critical",
                              f"{what} rose over the pass (ln slope {tr.slope_per_s:+.2e} +- {tr.sigma_per_s:.1e} "
                              f"per s, {np.expm1(tr.slope_per_s * tr.duration_s):+.0%} over {tr.duration_s:.0f} s) "
-                             f"where the configured law should have reduced it (expected time constant "
-                             f"{tau_exp:.0f} s); mean magnetic power {effect.magnetic_power_mean_W:+.2e} W (positive "
-                             "pumps energy in)", value=tr.slope_per_s),))
+                             f"{against}: {z_short:.1f} sigma above it, limit {TREND_SIGMAS:.0f}; mean magnetic "
+                             f"power {effect.magnetic_power_mean_W:+.2e} W (positive pumps energy in)",
+                             value=tr.slope_per_s),))
     if tre is None or tre.slope_per_s >= 0 or abs(tre.slope_per_s) * tre.duration_s < EXPECTED_MIN_CHANGE:
         return Findings()
     ratio = effect.efficiency if effect.efficiency is not None else float("nan")
-    if not (np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR):
+    if not (np.isfinite(ratio) and ratio < 1.0 / DETUMBLE_SLOW_FACTOR and z_short > TREND_SIGMAS):
         return Findings()
     obs = f"{tr.time_constant_s:.0f} s" if tr.slope_per_s < 0 else "no measurable decay"
     extra = ""
@@ -258,7 +294,25 @@ def _effect_findings(ctx: PassContext, effect: EffectAssessment) -> Findings:
     return Findings((_an(ctx, code_slow, "warning",
                          f"{what} time constant {obs} against {tau_exp:.0f} s expected from the configured law along "
                          f"this trajectory (achieved {max(ratio, 0):.2f} of the expected decay rate, limit "
-                         f"1/{DETUMBLE_SLOW_FACTOR:.0f}){extra}", value=ratio),))
+                         f"1/{DETUMBLE_SLOW_FACTOR:.0f}; shortfall {z_short:.1f} sigma){extra}", value=ratio),))
+
+
+def _shortfall_sigmas(observed: Trend, expected: Trend | None) -> float:
+    """How far the observed slope of ln x lies above the expected one, in sigmas of the two together.
+
+    ``z = (s_obs - s_exp) / hypot(sigma_obs, sigma_exp)``; without an expectation the observed slope is
+    set against zero (``z = s_obs / sigma_obs``). Positive: x fell more slowly (or rose faster) than the
+    replayed law predicts. A difference with no stated scatter at all is infinitely significant (its
+    sign kept); no difference is 0.
+    """
+    s_exp, sig_exp = (expected.slope_per_s, expected.sigma_per_s) if expected is not None else (0.0, 0.0)
+    diff = float(observed.slope_per_s - s_exp)
+    sig = float(np.hypot(observed.sigma_per_s, sig_exp))
+    if not np.isfinite(diff) or np.isnan(sig):
+        return 0.0
+    if sig > 0:
+        return diff / sig
+    return float(np.sign(diff) * np.inf) if diff != 0 else 0.0
 
 
 def _feedback_findings(ctx: PassContext, effect: EffectAssessment, loop: CrosstalkFeedback | None,

@@ -12,7 +12,7 @@ import numpy as np
 
 from ..core import InputError, body_from_gcrf, seconds_since
 
-__all__ = ["PassArrays", "checked_array", "checked_seconds", "check_pass_inputs"]
+__all__ = ["PassArrays", "checked_array", "checked_seconds", "check_pass_inputs", "raw_gyro"]
 
 
 def checked_array(name: str, a: Any, tail: tuple[int, ...], n: int | None = None,
@@ -119,3 +119,11 @@ def check_pass_inputs(*, inertia_kg_m2, mag_sensor_to_body, time_mag_utc, b_mag_
                          key="time_utc")
     return PassArrays(epoch, J, M, t, w, t_mag, b_mag_body, t_coil, i_coil, b_body, r_gcrf, r_body,
                       None if b_gcrf_nT is None else np.asarray(b_gcrf_nT, float), P, K)
+
+
+def raw_gyro(epoch: np.datetime64, time_gyro_utc, w_gyro_body_rad_s) -> tuple[np.ndarray, np.ndarray] | None:
+    """The raw gyro log as (s since ``epoch``, rad/s body axes (Ng, 3)), or None without one."""
+    if time_gyro_utc is None or w_gyro_body_rad_s is None:
+        return None
+    tg = checked_seconds("time_gyro_utc", time_gyro_utc, epoch)
+    return tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg))

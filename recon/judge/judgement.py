@@ -43,13 +43,14 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..config import CoilSpec, ControllerSpec
-from ..core import applied_current, control_ticks, held_values, tick_phase
+from ..core import applied_current, control_ticks, tick_phase, window_mean
 from . import replay as rep
+from .alignment import align_commands, commands_at_ticks
 from .dipole import DipoleFit, classify_coil, dipole_sigma_with_floor, identify_dipole, rate_bias_evidence
 from .effect import assess_effect
 from .feedback import assess_crosstalk_feedback
 from .findings import findings, verdict
-from .inputs import PassArrays, check_pass_inputs, checked_array, checked_seconds
+from .inputs import PassArrays, check_pass_inputs, checked_array, raw_gyro
 from .latency import latency_profile, scan_actuation_latency
 from .replay import CommandComparison
 from .thresholds import MAX_LATENCY_PERIODS, MIN_SEGMENTS, RATE_BIAS_KNOT_S, SEGMENT_POINTS
@@ -77,7 +78,8 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                b_body_nT: np.ndarray | None = None, r_gcrf_km: np.ndarray | None = None,
                w_cov_rad2_s2: np.ndarray | None = None, time_gyro_utc: np.ndarray | None = None,
                w_gyro_body_rad_s: np.ndarray | None = None,
-               K_nT_per_A: np.ndarray | None = None) -> ControllerJudgement:
+               K_nT_per_A: np.ndarray | None = None, gyro_health: str | None = None, rate_source: str | None = None,
+               rate_sigma_rad_s: np.ndarray | None = None) -> ControllerJudgement:
     """Judge the magnetic controller of one pass.
 
     Parameters
@@ -109,6 +111,16 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
     K_nT_per_A : (3, 3) nT per A, sensor axes (row: sensor axis, column: coil), optional
         Estimated coil crosstalk, for the coil-field loop gain; NaN entries (undetermined) count as
         zero.
+    gyro_health : "ok" | "dead" | "bias_step" | "untestable", optional
+        The estimator's verdict on the gyro. A dead gyro changes what can be judged: the cross-product
+        law read it, and a rate history reconstructed without it rests on the nominal coils.
+    rate_source : "gyro" | "dynamics", optional
+        How the rate history was reconstructed; "dynamics" (Euler's equations with the nominal coil
+        dipoles) cannot test the coils independently, so the verdict cannot be "as_intended".
+    rate_sigma_rad_s : (N, 3) rad/s, optional
+        The rate history's stated 1-sigma per axis (without ``w_cov_rad2_s2``): what a motion model
+        that fits leaves as residual, for the latency profile's fit test. It is not used as a weight:
+        a gyro-based rate is about equally noisy all along the pass.
 
     Returns
     -------
@@ -125,7 +137,7 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
                              i_coil_A=i_coil_A, time_utc=time_utc, w_body_rad_s=w_body_rad_s,
                              q_body_from_gcrf=q_body_from_gcrf, b_gcrf_nT=b_gcrf_nT, b_body_nT=b_body_nT,
                              r_gcrf_km=r_gcrf_km, w_cov_rad2_s2=w_cov_rad2_s2, K_nT_per_A=K_nT_per_A)
-    setting = _setting(controller, coils, data)
+    setting = _setting(controller, coils, data, rate_sigma_rad_s, gyro_health, rate_source)
     replayed = _replay(controller, data, setting, time_gyro_utc, w_gyro_body_rad_s)
     ident = _identification(data, setting, replayed)
     effect = _effect(controller, data, setting, replayed, ident)
@@ -136,17 +148,29 @@ def judge_pass(*, controller: ControllerSpec, coils: CoilSpec, inertia_kg_m2: np
 @dataclass(frozen=True)
 class _Setting:
     """The pass's setting (for the findings) and its control ticks, s since the data's epoch; ``gate``
-    is (ticks, before, after) of the coil-off windows of windowed sampling, else None."""
+    is (ticks, before, after) of the coil-off windows of windowed sampling, else None; ``scan_cov`` the
+    rate covariance (N, 3, 3) that weights the latency scan; ``expected_unit`` the chi-square unit of
+    a motion model that fits there (None: no stated rate noise)."""
 
     ctx: PassContext
     ticks_s: np.ndarray
     gate: tuple[np.ndarray, float, float] | None
     off_window_s: tuple[float, float] | None
     max_hold_s: float
+    scan_cov: np.ndarray | None = None
+    expected_unit: float | None = None
 
 
-def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _Setting:
-    """The control ticks where the rate history and the coil log overlap, and the pass's setting."""
+def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays, rate_sigma_rad_s,
+             gyro_health: str | None, rate_source: str | None) -> _Setting:
+    """The control ticks where the rate history and the coil log overlap, and the pass's setting.
+
+    The latency scan is weighted by the rate covariance: the one given, or else an isotropic one (a
+    gyro's noise is alike on its axes), ``sigma^2 I`` from the stated 1-sigma averaged over the pass (1
+    without one; the weights' scale then does not matter). Weighted so, the torque equation of a body
+    with a small moment counts as much as the others, and a motion model that fits has a chi-square
+    unit of 1. The dipoles themselves are fitted with the given covariance only: an unweighted fit
+    keeps the slow model errors (attitude, field) from leaning on one axis."""
     t, t_coil, epoch = data.t_s, data.t_coil_s, data.epoch
     T = float(controller.period_s)
     window = coils.off_window_s if coils.mag_sampling == "windowed" else None
@@ -159,20 +183,32 @@ def _setting(controller: ControllerSpec, coils: CoilSpec, data: PassArrays) -> _
     gate = (control_ticks(lo - T, hi + T, T, first), *window) if window is not None else None
     span = (epoch + np.timedelta64(int(lo * 1e9), "ns"), epoch + np.timedelta64(int(hi * 1e9), "ns"))
     ctx = PassContext(controller.law, T, np.asarray(coils.dipole_per_amp, float),
-                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling)
-    return _Setting(ctx, ticks, gate, window, 2.5 * T)
+                      np.asarray(coils.max_current_A, float), span, coils.mag_sampling, gyro_health, rate_source)
+    cov, expected = data.w_cov_rad2_s2, 1.0
+    if cov is None:
+        var = 1.0
+        if rate_sigma_rad_s is not None:
+            var = float(np.nanmean(checked_array("rate_sigma_rad_s", rate_sigma_rad_s, (3,), len(t)) ** 2))
+        else:
+            expected = None
+        cov = np.broadcast_to(var * np.eye(3), (len(t), 3, 3))
+    return _Setting(ctx, ticks, gate, window, 2.5 * T, cov, expected)
 
 
 @dataclass(frozen=True)
 class _Replay:
     """The law replayed at each tick: the magnetometer samples it used (K, 3) nT body axes, the
-    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law) and
-    the logged commands' chatter fraction (3,)."""
+    replayed commands (K, 3) A (NaN where unknown), their comparison with the log (None: no law), the
+    logged commands' chatter fraction (3,), the logged command of each tick under the alignment of
+    the log with the ticks (K, 3) A (NaN where no row holds it), and the rate the onboard computer read
+    at the history's instants (N, 3) rad/s (its raw gyro; None without a gyro log)."""
 
     b_tick_body_nT: np.ndarray
     i_replay_A: np.ndarray
     comparison: CommandComparison | None
     chatter: np.ndarray
+    i_tick_A: np.ndarray
+    w_seen_rad_s: np.ndarray | None
 
 
 def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, time_gyro_utc,
@@ -183,21 +219,21 @@ def _replay(controller: ControllerSpec, data: PassArrays, setting: _Setting, tim
     b_tick = rep.tick_samples_nT(data.t_mag_s, data.b_mag_body_nT, ticks, sampling=ctx.mag_sampling,
                                  off_window_s=setting.off_window_s)
     i_rep = np.full((len(ticks), 3), np.nan)
+    gyro = raw_gyro(data.epoch, time_gyro_utc, w_gyro_body_rad_s)
     if law == "bdot":
         i_rep = rep.replay_bdot_A(ticks, b_tick, controller.gain, C_nom, imax)
     elif law == "cross_product":
-        if time_gyro_utc is not None and w_gyro_body_rad_s is not None:
-            tg = checked_seconds("time_gyro_utc", time_gyro_utc, data.epoch)
-            w_tick = held_values(tg, checked_array("w_gyro_body_rad_s", w_gyro_body_rad_s, (3,), len(tg)), ticks,
-                                 tol=1e-9)
-        else:
-            w_tick = np.column_stack([np.interp(ticks, data.t_s, data.w_body_rad_s[:, a]) for a in range(3)])
+        w_tick = rep.onboard_rate(ticks, gyro, data.t_s, data.w_body_rad_s)
         target = np.zeros(3) if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
         i_rep = rep.replay_cross_product_A(b_tick, w_tick, data.inertia_kg_m2, target, controller.gain, C_nom, imax)
     cmp_ = rep.compare_commands(ticks, i_rep, data.t_coil_s, data.i_coil_A, imax, T) if law != "none" else None
-    logged_tick = (cmp_.logged_A if cmp_ is not None
-                   else held_values(data.t_coil_s, data.i_coil_A, ticks + 0.5 * T, tol=1e-9, max_age=2 * T))
-    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax))
+    if cmp_ is not None and cmp_.alignment is not None:
+        logged_tick = cmp_.logged_A
+    else:   # no law to align on: a row holds the command of the latest tick at or before its stamp
+        al = align_commands(ticks, None, data.t_coil_s, data.i_coil_A, imax, T)
+        logged_tick = commands_at_ticks(al, ticks, data.t_coil_s, data.i_coil_A, T)
+    seen = None if gyro is None else window_mean(gyro[0], gyro[1], data.t_s, 0.5 * setting.ctx.period_s)
+    return _Replay(b_tick, i_rep, cmp_, rep.chatter_fraction(logged_tick, imax), logged_tick, seen)
 
 
 @dataclass(frozen=True)
@@ -219,6 +255,7 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
     """Step 2: each coil's dipole per amp and the actuation latency from the motion."""
     ticks, T, gate = setting.ticks_s, setting.ctx.period_s, setting.gate
     t, w, b_body, J = data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2
+    i_cmd = replayed.i_tick_A   # each command acts from its own tick (plus the latency), not from its log stamp
     n_seg = int(len(ticks) // (SEGMENT_POINTS - 1))
     fit, lat_trials, lat_wrss = None, np.zeros(0), np.zeros(0)
     lat_info, rate_bias = None, None
@@ -227,29 +264,44 @@ def _identification(data: PassArrays, setting: _Setting, replayed: _Replay) -> _
         # the gyroscopic term it mimics a torque, which a latency can partly imitate. Both models are
         # scanned, and the bias one is kept only where Schwarz's criterion asks for it.
         scans = {kn: scan_actuation_latency(
-            t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
-            r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, gate=gate, max_hold_s=setting.max_hold_s,
-            rate_bias_knot_s=kn) for kn in (None, RATE_BIAS_KNOT_S)}
+            t, w, b_body, J, ticks, i_cmd, ticks, T, max_latency_periods=MAX_LATENCY_PERIODS,
+            r_body_km=data.r_body_km, w_cov_rad2_s2=setting.scan_cov, gate=gate, max_hold_s=setting.max_hold_s,
+            rate_bias_knot_s=kn, inertia_shape=True) for kn in (None, RATE_BIAS_KNOT_S)}
         used, gain, penalty = rate_bias_evidence(scans[None].best, scans[RATE_BIAS_KNOT_S].best)
         knot = RATE_BIAS_KNOT_S if used else None
         scan_fit, lat_trials, lat_wrss = scans[knot].best, scans[knot].latencies_s, scans[knot].wrss
-        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T)
+        lat_info = latency_profile(scan_fit, lat_trials, lat_wrss, T, expected_unit=setting.expected_unit)
         # an undetermined latency (a flat profile) is not used: the design's zero delay is assumed
         L_use = lat_info.latency_s if lat_info is not None and lat_info.determined else 0.0
-        fit = identify_dipole(t, w, b_body, J, data.t_coil_s, data.i_coil_A, ticks, r_body_km=data.r_body_km,
-                              w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=L_use, gate=gate,
-                              max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot)
+        fit, i_applied, axes = _coils(data, setting, replayed, L_use, knot)
+        if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
+            # no coil identified: the motion says nothing about timing, in either direction, so its
+            # latency is not used either (the coil-field loop and the effect assume the design's zero)
+            lat_info = replace(lat_info, determined=False, acausal=False,
+                               reason="no coil was identified from the motion, so it says nothing about timing")
+            if L_use != 0.0:
+                fit, i_applied, axes = _coils(data, setting, replayed, 0.0, knot)
         rate_bias = RateBiasEvidence(used and fit is not None and fit.rate_bias_rad_s is not None, gain, penalty)
         if rate_bias.used:
             rate_bias = replace(rate_bias, knots_s=fit.rate_bias_knots_s, rad_s=fit.rate_bias_rad_s,
                                 sigma_rad_s=fit.rate_bias_sigma_rad_s)
-    i_applied = applied_current(t, data.t_coil_s, data.i_coil_A, latency_s=fit.latency_s if fit else 0.0, gate=gate,
-                                max_hold_s=setting.max_hold_s)
-    axes = _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
-    if lat_info is not None and all(ax.polarity == "undetermined" for ax in axes):
-        # no coil identified: the motion says nothing about timing, in either direction
-        lat_info = replace(lat_info, determined=False, acausal=False)
+    else:
+        i_applied = applied_current(t, ticks, i_cmd, gate=gate, max_hold_s=setting.max_hold_s)
+        axes = _axes(setting.ctx, None, replayed.comparison, replayed.chatter, i_applied)
     return _Identification(fit, lat_trials, lat_wrss, lat_info, rate_bias, n_seg, i_applied, axes)
+
+
+def _coils(data: PassArrays, setting: _Setting, replayed: _Replay, latency_s: float, knot: float | None):
+    """The dipole fit with the commands acting ``latency_s`` after their ticks, the applied current
+    (N, 3) A it implies, and each coil's judgement."""
+    ticks, gate, i_cmd = setting.ticks_s, setting.gate, replayed.i_tick_A
+    fit = identify_dipole(data.t_s, data.w_body_rad_s, data.b_body_nT, data.inertia_kg_m2, ticks, i_cmd, ticks,
+                          r_body_km=data.r_body_km, w_cov_rad2_s2=data.w_cov_rad2_s2, latency_s=latency_s, gate=gate,
+                          max_hold_s=setting.max_hold_s, segment_points=SEGMENT_POINTS, rate_bias_knot_s=knot,
+                          inertia_shape=True)
+    i_applied = applied_current(data.t_s, ticks, i_cmd, latency_s=fit.latency_s if fit else 0.0, gate=gate,
+                                max_hold_s=setting.max_hold_s)
+    return fit, i_applied, _axes(setting.ctx, fit, replayed.comparison, replayed.chatter, i_applied)
 
 
 def _axes(ctx: PassContext, fit: DipoleFit | None, cmp_: CommandComparison | None, chatter: np.ndarray,
@@ -288,7 +340,9 @@ def _effect(controller: ControllerSpec, data: PassArrays, setting: _Setting, rep
     target = None if controller.target_momentum_Nms is None else np.asarray(controller.target_momentum_Nms)
     return assess_effect(controller.law, controller.gain, data.t_s, data.w_body_rad_s, data.b_body_nT,
                          data.inertia_kg_m2, ident.i_applied_A, i_rep_applied, C_used, C_nom,
-                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT)
+                         target_momentum_Nms=target, r_gcrf_km=data.r_gcrf_km, b_gcrf_nT=data.b_gcrf_nT,
+                         w_seen_rad_s=replayed.w_seen_rad_s,
+                         residual_dipole_Am2=None if fit is None else fit.residual_dipole_Am2, r_body_km=data.r_body_km)
 
 
 def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, replayed: _Replay,
@@ -299,7 +353,7 @@ def _feedback(controller: ControllerSpec, data: PassArrays, setting: _Setting, r
     ctx, ticks, T = setting.ctx, setting.ticks_s, setting.ctx.period_s
     L_act = ident.fit.latency_s if ident.fit is not None else 0.0
     seen = (np.zeros((len(ticks), 3)) if ctx.mag_sampling == "coils_off" else
-            applied_current(ticks - 1e-6, data.t_coil_s, data.i_coil_A, latency_s=L_act, gate=setting.gate,
+            applied_current(ticks - 1e-6, ticks, replayed.i_tick_A, latency_s=L_act, gate=setting.gate,
                             max_hold_s=setting.max_hold_s))
     return assess_crosstalk_feedback(data.K_nT_per_A, data.mag_sensor_to_body, ctx.C_nominal, controller.gain, T,
                                      ticks_s=ticks, b_tick_body_nT=replayed.b_tick_body_nT, i_seen_at_tick_A=seen,
@@ -315,12 +369,12 @@ def _judgement(data: PassArrays, setting: _Setting, replayed: _Replay, ident: _I
                      effect=effect, feedback=loop, chatter=replayed.chatter, n_segments=ident.n_segments,
                      n_ticks=len(ticks), rate_bias=ident.rate_bias)
     lag = cmp_.lag_s if cmp_ is not None else None
+    # the commands are timed from their own ticks, so the motion's latency is already tick to torque
     act = lat_info.latency_s if lat_info is not None and lat_info.determined else None
-    total = None if (lag is None and act is None) else (lag or 0.0) + (act or 0.0)
     return ControllerJudgement(
         law=ctx.law, axes=ident.axes, verdict=verdict(ctx, ident.axes, found.anomalies, cmp_, lat_info),
         reasons=found.reasons, anomalies=found.anomalies,
-        latency_s=total, command_lag_s=lag, actuation_latency_s=act,
+        latency_s=act, command_lag_s=lag, actuation_latency_s=act,
         actuation_latency_interval_s=lat_info.interval_s if lat_info is not None else None,
         rate_trend=effect.rate_trend, energy_time_constant_s=effect.energy_time_constant_s,
         energy_time_constant_expected_s=effect.energy_time_constant_expected_s,

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .dipole import DipoleFit, chi2_unit, identify_dipole, motion_splines
-from .thresholds import LATENCY_DELTA_CHI2, LATENCY_DETERMINED_PERIODS
+from .thresholds import LATENCY_DELTA_CHI2, LATENCY_DETERMINED_PERIODS, LATENCY_FIT_RATIO
 from .types import LatencyProfile
 
 __all__ = ["LatencyScan", "scan_actuation_latency", "latency_profile"]
@@ -45,7 +45,7 @@ class LatencyScan:
 def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s, i_coil_A, t_eval_s,
                            period_s: float, *, max_latency_periods: int = 5, r_body_km=None,
                            w_cov_rad2_s2=None, gate=None, max_hold_s: float = 2.5,
-                           rate_bias_knot_s: float | None = None
+                           rate_bias_knot_s: float | None = None, inertia_shape: bool = False
                            ) -> LatencyScan:
     """Find the actuation latency that best explains the motion (profile least squares).
 
@@ -74,7 +74,7 @@ def scan_actuation_latency(t_s, w_body_rad_s, b_body_nT, inertia_kg_m2, t_coil_s
     def fit(L: float) -> DipoleFit | None:
         return identify_dipole(t_s, w_body_rad_s, b_body_nT, J, t_coil_s, i_coil_A, instants, latency_s=L,
                                gate=gate, max_hold_s=max_hold_s, reject_outliers=False, jackknife_blocks=0,
-                               rate_bias_knot_s=rate_bias_knot_s, motion=mot)
+                               rate_bias_knot_s=rate_bias_knot_s, inertia_shape=inertia_shape, motion=mot)
 
     trials = {round(float(L), 9): fit(round(float(L), 9)) for L in period_s * np.arange(-1, max_latency_periods + 1)}
     # the profile can be shallow and bumpy between whole periods: search the two periods around the
@@ -131,25 +131,35 @@ def _refined(trials: dict[float, DipoleFit | None], latencies_s: np.ndarray, lo:
     return new
 
 
-def latency_profile(scan_fit: DipoleFit | None, lat: np.ndarray, wrss: np.ndarray, period_s: float
-                    ) -> LatencyProfile | None:
+def latency_profile(scan_fit: DipoleFit | None, lat: np.ndarray, wrss: np.ndarray, period_s: float,
+                    expected_unit: float | None = None) -> LatencyProfile | None:
     """Best latency of zero or more, its 3-sigma range (profile chi-square within 9 of the best
-    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, and the check
-    of causality, all in units of the best fit's scaled residual variance.
+    causal trial; the 1-sigma one within 1), the chi-square excess of zero latency, the check of
+    causality, and whether the profile determines the latency at all; all in units of the best fit's
+    scaled residual variance.
 
     A current cannot act before its command, so the latency is bounded below by zero and its range
     is the bounded profile's. The negative trials test the time tags instead: when the best of them
     beats the best causal trial by ``LATENCY_DELTA_CHI2`` or more, the motion says, at 3 sigma, that
     the torque came before the logged command, and the latency is left undetermined ("acausal").
 
-    The profile's chi-square units come from the residual variance with the AR(1) inflation; slow
-    model errors (attitude error) make them optimistic, so decisions use the 3-sigma range.
+    The latency is determined only when all of these hold (otherwise the reason says which failed):
+
+    - an interior minimum: the best trial lies inside the scanned range, and the profile rises by
+      ``LATENCY_DELTA_CHI2`` or more on both sides of it (a profile that falls steadily to the end of
+      the range, or a flat one, says nothing about the latency);
+    - a model that fits: the best fit's chi-square unit (its residual variance with the AR(1)
+      inflation) is at most ``LATENCY_FIT_RATIO`` times the one the rate history's stated noise leads
+      to (``expected_unit``; the test is skipped without it): a motion model that leaves far more
+      than the noise can trade its error against the latency;
+    - a narrow range: the 3-sigma set spans at most ``LATENCY_DETERMINED_PERIODS`` periods.
 
     Parameters
     ----------
     scan_fit : the best causal fit of the scan (its ``ar1``, ``chi2_per_dof`` and ``latency_s``)
     lat : (L,) trial latencies, s, sorted; wrss : (L,) their weighted residual sums (NaN: failed)
     period_s : control period, s
+    expected_unit : the chi-square unit the stated rate noise leads to, or None
 
     Returns
     -------
@@ -169,11 +179,33 @@ def latency_profile(scan_fit: DipoleFit | None, lat: np.ndarray, wrss: np.ndarra
     neg = ~causal & np.isfinite(d)
     gain = float(max(-np.min(d[neg]), 0.0)) if neg.any() else 0.0
     acausal = gain >= LATENCY_DELTA_CHI2
+    best = float(scan_fit.latency_s)
+    fin = np.isfinite(d)
+    rise_before = float(np.max(d[fin & (lat < best - 1e-9)], initial=0.0))
+    rise_after = float(np.max(d[fin & (lat > best + 1e-9)], initial=0.0))
+    ratio = None if not expected_unit else float(unit / expected_unit)
+    reason = _undetermined_reason(acausal, best, float(lat.max()), rise_before, rise_after, ratio, hi - lo, period_s)
     return LatencyProfile(
-        latency_s=float(scan_fit.latency_s), interval_s=(lo, hi), delta_chi2_zero=float(d0),
+        latency_s=best, interval_s=(lo, hi), delta_chi2_zero=float(d0),
         interval_1sigma_s=(float(inside.min()), float(inside.max())),
         acausal=acausal, acausal_delta_chi2=gain,
         acausal_latency_s=float(lat[neg][np.argmin(d[neg])]) if neg.any() else None,
-        # determined: causal at 3 sigma and the 3-sigma set (profile chi-square within 9) spans
-        # at most two periods, i.e. the latency is known to within about one period
-        determined=bool(not acausal and wide.max() - wide.min() <= LATENCY_DETERMINED_PERIODS * period_s + 1e-9))
+        determined=reason is None, rise_before=rise_before, rise_after=rise_after, fit_ratio=ratio, reason=reason)
+
+
+def _undetermined_reason(acausal: bool, best: float, top: float, rise_before: float, rise_after: float,
+                         ratio: float | None, width: float, period_s: float) -> str | None:
+    """Why the profile does not determine the latency, or None when it does."""
+    if acausal:
+        return "the motion prefers the torque before its command (time tags in error)"
+    if best >= top - 1e-9:
+        return (f"the profile falls to the end of the range searched ({top:.1f} s) without a minimum inside it")
+    if min(rise_before, rise_after) < LATENCY_DELTA_CHI2:
+        return (f"the profile is flat: it rises by {rise_before:.1f} below and {rise_after:.1f} above its minimum at "
+                f"{best:.2f} s, {LATENCY_DELTA_CHI2:.0f} needed on both sides")
+    if ratio is not None and ratio > LATENCY_FIT_RATIO:
+        return (f"the motion model does not fit: its residual is {ratio:.1f} times what the rate history's stated "
+                f"noise allows (limit {LATENCY_FIT_RATIO:.0f})")
+    if width > LATENCY_DETERMINED_PERIODS * period_s + 1e-9:
+        return f"its 3-sigma range spans {width:.1f} s, more than {LATENCY_DETERMINED_PERIODS:.0f} control periods"
+    return None

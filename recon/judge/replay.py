@@ -25,10 +25,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import bdot_dipole, cross_product_dipole, currents_from_dipole, held_values
+from .alignment import CommandAlignment, align_commands, commands_at_ticks
 from .thresholds import INFORMATIVE_LEVEL, NEAR_LIMIT_LEVEL, SATURATION_LEVEL
 
 __all__ = [
-    "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A",
+    "tick_samples_nT", "replay_bdot_A", "replay_cross_product_A", "onboard_rate",
     "CommandComparison", "compare_commands", "chatter_fraction",
 ]
 
@@ -134,6 +135,16 @@ def replay_cross_product_A(b_tick_body_nT: np.ndarray, w_tick_body_rad_s: np.nda
     return out
 
 
+def onboard_rate(ticks_s: np.ndarray, gyro: tuple[np.ndarray, np.ndarray] | None, t_s: np.ndarray,
+                 w_body_rad_s: np.ndarray) -> np.ndarray:
+    """The rate the onboard computer used at each tick, rad/s body axes (K, 3): the raw gyro
+    ``(times s, rates (Ng, 3))`` held at the tick, or without a gyro log the reconstructed rate
+    ``w_body_rad_s`` at times ``t_s`` interpolated to it."""
+    if gyro is not None:
+        return held_values(gyro[0], gyro[1], ticks_s, tol=1e-9)
+    return np.column_stack([np.interp(ticks_s, t_s, w_body_rad_s[:, a]) for a in range(3)])
+
+
 @dataclass(frozen=True)
 class CommandComparison:
     """Logged commands against the replayed law.
@@ -141,12 +152,14 @@ class CommandComparison:
     Attributes
     ----------
     lag_s : float or None
-        Delay from the control tick to the logged command, s (None: no informative command).
+        Whole control periods from the law's tick to the log row that holds its command, in s
+        (``lag_periods`` times the period; None: no informative command to align on).
     gain_ratio : (3,) least-squares slope of logged on replayed currents, unsaturated ticks, per axis
-    correlation : (3,) Pearson correlation of logged and replayed commands at ``lag_s``, per axis
+    correlation : (3,) Pearson correlation of logged and replayed commands, per axis
     n_informative : (3,) ticks with an unsaturated command above ``INFORMATIVE_LEVEL`` of the limit
     saturation_fraction : (3,) fraction of ticks at the limit in the log, per axis
-    logged_A : (K, 3) the logged command belonging to each tick (NaN where none)
+    logged_A : (K, 3) the logged command belonging to each tick under the alignment (NaN where none)
+    alignment : CommandAlignment, the tick of each log row (the mapping the lag search found)
     """
 
     lag_s: float | None
@@ -155,19 +168,15 @@ class CommandComparison:
     n_informative: np.ndarray
     saturation_fraction: np.ndarray
     logged_A: np.ndarray
+    alignment: CommandAlignment | None = None
 
+    @property
+    def lag_periods(self) -> int | None:
+        return None if self.alignment is None else self.alignment.lag_periods
 
-def _score(pred: np.ndarray, logged: np.ndarray, scale: np.ndarray) -> float:
-    """Correlation of the stacked, per-axis-normalised commands (NaN-safe)."""
-    ok = np.all(np.isfinite(pred), axis=1) & np.all(np.isfinite(logged), axis=1)
-    if ok.sum() < 3:
-        return -np.inf
-    x = (pred[ok] / scale).ravel()
-    y = (logged[ok] / scale).ravel()
-    x = x - x.mean()
-    y = y - y.mean()
-    d = np.sqrt((x @ x) * (y @ y))
-    return float(x @ y / d) if d > 0 else -np.inf
+    @property
+    def lag_interval_s(self) -> tuple[float, float] | None:
+        return None if self.alignment is None else self.alignment.lag_interval_s
 
 
 def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.ndarray, i_coil_A: np.ndarray,
@@ -175,12 +184,10 @@ def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.n
                      lag_step_fraction: float = 0.05) -> CommandComparison:
     """Compare logged coil commands with the replay: lag, gain ratio, correlation, saturation.
 
-    The lag is found by maximising the correlation between the log and the replayed command sequence
-    delayed by L, held from ``tick + L`` to the next ``tick + L``: first over whole control periods
-    from -1 to ``max_lag_periods``, then in steps of ``lag_step_fraction`` of a period within half a
-    period of the best whole-period lag. Ties (a log sampled once per period cannot tell lags inside
-    one period apart) go to the smallest |L|. Per-axis figures use the logged value in the middle of
-    each hold interval.
+    The rows of the log are first mapped to the ticks whose commands they hold
+    (:func:`.alignment.align_commands`: the lag search, whose ties a log written once per period
+    cannot break); every per-axis figure then compares each tick's replayed command with the row
+    that holds it under that same mapping.
 
     Parameters
     ----------
@@ -203,35 +210,10 @@ def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.n
     nan3 = np.full(3, np.nan)
     if len(ticks) < 3 or len(t_log) < 3:
         return CommandComparison(None, nan3, nan3, np.zeros(3, int), nan3, np.full((len(ticks), 3), np.nan))
-    # the log's own sampling decides how finely a lag can be seen; gaps longer than two periods
-    # leave holes rather than stale values
-    max_age = 2.0 * period_s + float(np.median(np.diff(t_log)))
-
-    def predicted(lag: float) -> np.ndarray:
-        k = np.searchsorted(ticks, t_log - lag + 1e-9, side="right") - 1
-        p = rep[np.clip(k, 0, len(ticks) - 1)].copy()
-        p[(k < 0) | (t_log - lag - ticks[np.clip(k, 0, len(ticks) - 1)] > period_s * 1.5)] = np.nan
-        return p
-
-    finite = np.isfinite(rep).all(axis=1)
-    informative = finite & (np.max(np.abs(np.where(finite[:, None], rep, 0.0)) / imax, axis=1) > 1e-3)
-    if informative.sum() < 3:
-        lag = None
-    else:
-        coarse = period_s * np.arange(-1, max_lag_periods + 1)
-        sc = np.array([_score(predicted(L), i_log, imax) for L in coarse])
-        best = coarse[int(np.argmax(sc))]
-        fine = best + period_s * np.arange(-0.5, 0.5 + 1e-9, lag_step_fraction)
-        fine = fine[fine >= -period_s]
-        sf = np.array([_score(predicted(L), i_log, imax) for L in fine])
-        top = sf >= sf.max() - 1e-9
-        lag = round(float(fine[top][np.argmin(np.abs(fine[top]))]), 9)
-
-    # the logged command belonging to each tick: the log in the middle of its hold interval
-    L = 0.0 if lag is None else lag
-    t_q = ticks + L + 0.5 * period_s
-    logged = held_values(t_log, i_log, t_q, tol=1e-9, max_age=max_age)
-    logged[t_q > t_log[-1] + float(np.median(np.diff(t_log)))] = np.nan  # past the end of the log
+    al = align_commands(ticks, rep, t_log, i_log, imax, period_s, max_lag_periods=max_lag_periods,
+                        step_fraction=lag_step_fraction)
+    logged = commands_at_ticks(al, ticks, t_log, i_log, period_s)
+    lag = None if al.lag_periods is None else al.lag_periods * period_s
     both = np.isfinite(rep) & np.isfinite(logged)
     sat = (np.abs(logged) >= SATURATION_LEVEL * imax) | (np.abs(rep) >= SATURATION_LEVEL * imax)
     use = both & ~sat
@@ -248,7 +230,7 @@ def compare_commands(ticks_s: np.ndarray, i_replay_A: np.ndarray, t_coil_s: np.n
     logged_ok = np.isfinite(logged)
     satfrac = np.array([np.mean(np.abs(logged[logged_ok[:, a], a]) >= SATURATION_LEVEL * imax[a])
                         if logged_ok[:, a].any() else np.nan for a in range(3)])
-    return CommandComparison(lag, gain, corr, informative_ax.sum(axis=0), satfrac, logged)
+    return CommandComparison(lag, gain, corr, informative_ax.sum(axis=0), satfrac, logged, al)
 
 
 def chatter_fraction(i_tick_A: np.ndarray, max_current_A: np.ndarray) -> np.ndarray:

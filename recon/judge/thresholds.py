@@ -9,9 +9,9 @@ __all__ = [
     "SATURATION_LEVEL", "NEAR_LIMIT_LEVEL", "INFORMATIVE_LEVEL",
     "COMMAND_GAIN_TOLERANCE", "COMMAND_MIN_CORRELATION", "COMMAND_MIN_TICKS", "SATURATION_FRACTION_LIMIT",
     "CHATTER_FRACTION_LIMIT", "CHATTER_ROTATION_FACTOR", "LOOP_GAIN_LIMIT",
-    "COIL_GAIN_TOLERANCE", "COIL_GAIN_SIGMAS", "POLARITY_SIGMAS", "NO_RESPONSE_RATIO", "MODEL_FLOOR_FRACTION",
+    "COIL_GAIN_TOLERANCE", "COIL_GAIN_SIGMAS", "POLARITY_DELTA_CHI2", "NO_RESPONSE_RATIO", "MODEL_FLOOR_FRACTION",
     "OUTLIER_PROBABILITY", "RATE_BIAS_KNOT_S",
-    "LATENCY_LIMIT_PERIODS", "LATENCY_DELTA_CHI2", "LATENCY_DETERMINED_PERIODS",
+    "LATENCY_LIMIT_PERIODS", "LATENCY_DELTA_CHI2", "LATENCY_DETERMINED_PERIODS", "LATENCY_FIT_RATIO",
     "DETUMBLE_SLOW_FACTOR", "EXPECTED_MIN_CHANGE", "TREND_SIGMAS", "TREND_MIN_CHANGE",
     "SEGMENT_POINTS", "MIN_SEGMENTS", "MAX_LATENCY_PERIODS",
     "THRESHOLDS",
@@ -52,11 +52,11 @@ LOOP_GAIN_LIMIT = 1.0           # >= 1: the coil-field loop oscillates (see feed
 # 1 +- 0.2 ("off by more than 20 % at high confidence").
 COIL_GAIN_TOLERANCE = 0.2
 COIL_GAIN_SIGMAS = 3.0
-# Polarity: a coil's sign is called when the 3-sigma interval of C_jj / C_nominal_jj excludes zero;
-# "no response" when that interval contains zero and lies below half the nominal dipole (consistent
-# with no dipole, inconsistent at 3 sigma with even half the nominal one) (common practice, no
-# source).
-POLARITY_SIGMAS = 3.0
+# Polarity (see dipole.classify): a coil responds when r = C_jj / C_nominal_jj = 0 is rejected at a chi-square
+# of 9 (3 sigma), its sign then from the likelihood ratio of nominal (r = +1) against inverted (r = -1);
+# "no response" when half the nominal dipole is rejected by as much while zero is not. A nominal coil
+# is called inverted only when r falls 3 sigma below zero (measured rates in the contributor guide).
+POLARITY_DELTA_CHI2 = 9.0
 NO_RESPONSE_RATIO = 0.5
 # Systematic floor on each estimated dipole, as a fraction of the nominal diagonal: an attitude
 # error of ~3 deg turns the modelled torque by sin(3 deg) = 0.05 of itself, and the reference field
@@ -74,15 +74,23 @@ OUTLIER_PROBABILITY = 1e-4
 RATE_BIAS_KNOT_S = 300.0
 
 # ---------------------------------------------------------------------------------------- latency
-# Latency from tick to torque flagged from one control period (the law assumes its command acts
-# within the period it was computed for) when the motion rejects zero delay at 3 sigma
-# (profile chi-square difference >= 9).
-LATENCY_LIMIT_PERIODS = 1.0
+# Latency from tick to torque flagged when the motion rejects every latency up to half a control
+# period at 3 sigma (profile chi-square 9 or more above its minimum there): the law computes each
+# command for the period it starts, and a torque half a period late acts on a state half a period
+# old. A healthy drive acts within tens of milliseconds; the estimator's rate leaves the measured
+# latency up to a few tenths of a second off (the measured null distribution is in the contributor
+# guide) (common practice, no source).
+LATENCY_LIMIT_PERIODS = 0.5
 LATENCY_DELTA_CHI2 = 9.0
 # The latency counts as determined when its 3-sigma set (profile chi-square within 9 of the best)
 # spans at most two control periods, i.e. it is known to within about one period (common practice,
 # no source).
 LATENCY_DETERMINED_PERIODS = 2.0
+# The motion model fits when its chi-square unit (residual variance with the AR(1) inflation) is at
+# most this many times the one the rate history's stated noise leads to. Measured on simulated healthy
+# and delayed passes (flight-like, the estimator's rate): 0.9-1.3 with the inertia's shape estimated;
+# a missing torque or a wrong inertia gives tens (common practice for the margin, no source).
+LATENCY_FIT_RATIO = 4.0
 
 # ----------------------------------------------------------------------------------------- effect
 # Effect: detumble_slow when the observed energy time constant exceeds this factor times the one the
@@ -94,6 +102,12 @@ EXPECTED_MIN_CHANGE = 0.5
 # A trend is called when its slope is both significant and large: |slope| > 3 sigma (about 1 %
 # false-alarm rate for Student's t with 8 degrees of freedom) and a change of ln x over the pass
 # of at least 0.1 (10 % in energy, 5 % in rate) (common practice, no source).
+# The same 3 sigma bounds the shortfall that raises an effect finding (rate_increasing, detumble_slow
+# and their cross-product kin): z = (s_obs - s_exp) / hypot(sigma_obs, sigma_exp), the observed slope
+# of ln x against the one the replayed law predicts along the same trajectory. One-sided, its null is
+# about Student's t with 8 degrees of freedom (10 block means, two parameters), P(t_8 > 3) = 0.0085
+# (scipy.stats.t.sf(3, 8)), so under 1 % per pass and per law; a rise the law itself predicts gives
+# z near 0 and is not a finding.
 TREND_SIGMAS = 3.0
 TREND_MIN_CHANGE = 0.1
 
@@ -119,6 +133,7 @@ THRESHOLDS: dict[str, float] = {
     "EXPECTED_MIN_CHANGE": EXPECTED_MIN_CHANGE, "TREND_SIGMAS": TREND_SIGMAS,
     "TREND_MIN_CHANGE": TREND_MIN_CHANGE, "SEGMENT_POINTS": SEGMENT_POINTS, "MIN_SEGMENTS": MIN_SEGMENTS,
     "MAX_LATENCY_PERIODS": MAX_LATENCY_PERIODS, "RATE_BIAS_KNOT_S": RATE_BIAS_KNOT_S,
-    "POLARITY_SIGMAS": POLARITY_SIGMAS, "NO_RESPONSE_RATIO": NO_RESPONSE_RATIO,
-    "LATENCY_DETERMINED_PERIODS": LATENCY_DETERMINED_PERIODS,
+    "POLARITY_DELTA_CHI2": POLARITY_DELTA_CHI2,
+    "NO_RESPONSE_RATIO": NO_RESPONSE_RATIO,
+    "LATENCY_DETERMINED_PERIODS": LATENCY_DETERMINED_PERIODS, "LATENCY_FIT_RATIO": LATENCY_FIT_RATIO,
 }

@@ -174,7 +174,12 @@ class LatencyProfile:
     acausal : the motion prefers the torque before its command, at 3 sigma
     acausal_delta_chi2 : chi-square gained by the best negative trial over the best causal one (>= 0)
     acausal_latency_s : that negative trial latency, s, or None (no negative trial)
-    determined : causal at 3 sigma and known to within about one control period
+    determined : an interior minimum of a fitting model, causal at 3 sigma, known to within about one
+        control period (see :func:`.latency.latency_profile`)
+    rise_before, rise_after : profile chi-square rise below and above the best trial
+    fit_ratio : the best fit's chi-square unit over the one the stated rate noise leads to (None: no
+        stated noise)
+    reason : why the latency is not determined (None when it is)
     """
 
     latency_s: float
@@ -185,6 +190,10 @@ class LatencyProfile:
     acausal_delta_chi2: float
     acausal_latency_s: float | None
     determined: bool
+    rise_before: float = float("nan")
+    rise_after: float = float("nan")
+    fit_ratio: float | None = None
+    reason: str | None = None
 
 
 @dataclass(frozen=True)
@@ -306,6 +315,8 @@ class PassContext:
     C_nominal : (3, 3) the design's dipole per amp, A m^2 per A; max_current_A : (3,) A
     span : (start, end) datetime64[ns] UTC of the judged stretch (the anomalies' time range)
     mag_sampling : "coils_off" | "coils_on" | "windowed"
+    gyro_health : the estimator's verdict on the gyro ("ok" | "dead" | "bias_step" | "untestable"), or None
+    rate_source : how the rate history was reconstructed ("gyro" | "dynamics"), or None
     """
 
     law: str
@@ -314,6 +325,8 @@ class PassContext:
     max_current_A: np.ndarray
     span: tuple[np.datetime64, np.datetime64]
     mag_sampling: str
+    gyro_health: str | None = None
+    rate_source: str | None = None
 
 
 @dataclass(frozen=True)

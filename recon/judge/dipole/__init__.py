@@ -20,11 +20,11 @@ Control. Springer, sec. 3.3.5 (Euler's equations), 3.3.6 (gravity-gradient torqu
 
 from .classify import classify_coil, dipole_sigma_with_floor
 from .design import rate_bias_knots_s
-from .motion import MotionSplines, motion_splines
+from .motion import MotionSplines, inertia_shape_basis, motion_splines
 from .solve import DipoleFit, chi2_unit, identify_dipole, rate_bias_evidence
 
 __all__ = [
     "DipoleFit", "identify_dipole", "rate_bias_evidence", "chi2_unit", "rate_bias_knots_s",
-    "MotionSplines", "motion_splines",
+    "MotionSplines", "motion_splines", "inertia_shape_basis",
     "classify_coil", "dipole_sigma_with_floor",
 ]

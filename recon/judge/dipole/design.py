@@ -175,12 +175,31 @@ def _segments(valid_interval: np.ndarray, segment_points: int) -> np.ndarray:
     return label
 
 
+def _shape_regressors(mot: MotionSplines, t_eval: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Regressors of the inertia's shape ``J = J_0 + sum_k p_k E_k`` in the levels form.
+
+    The left-hand side ``J w(t_j) + int (w x J w - tau_gg(J)) dt`` is linear in J; the part from
+    ``p_k E_k`` moves to the right-hand side as ``-(E_k w(t_j) + int (w x E_k w - tau_gg(E_k)) dt)``.
+
+    Returns
+    -------
+    A_int : (n - 1, 3, 5) the integral part over each interval between evaluation instants
+    A_lev : (n, 3, 5) the level part at each instant
+    """
+    F = mot.F_shape(t_eval).reshape(len(t_eval), 5, 3)
+    A_int = -np.transpose(F[1:] - F[:-1], (0, 2, 1))
+    A_lev = -np.einsum("kij,nj->nik", mot.shape_basis, mot.w(t_eval))
+    return A_int, A_lev
+
+
 def design(mot: MotionSplines, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s, i_coil_A, latency_s, gate,
-            max_hold_s, residual_dipole, torque_bias, segment_points, knots=None):
+           max_hold_s, residual_dipole, torque_bias, segment_points, knots=None, inertia_shape=False):
     """Levels form of the integrated equation within each segment (start instant s)::
 
         J w(t_j) + int_s^t_j (w x J w - tau_gg) dt = J w(s) + A_j theta + e_j
 
+    The unknowns theta: vec(C), then m_r and d (when asked), then the five inertia-shape
+    coefficients (``inertia_shape``), then the rate bias's knot values (``knots``).
     Returns the :class:`Design` (y, A and the segment label of each instant)."""
     A_C, A_m, ok = _regressors(mot, t_eval, t_coil_s, i_coil_A, latency_s, gate, max_hold_s)
     blocks = [A_C]
@@ -188,13 +207,21 @@ def design(mot: MotionSplines, t_eval: np.ndarray, inertia: np.ndarray, t_coil_s
         blocks.append(A_m)
     if torque_bias:
         blocks.append(np.broadcast_to(np.eye(3) * np.diff(t_eval)[:, None, None], (len(t_eval) - 1, 3, 3)))
-    A_lev = None
+    levels = []
+    if inertia_shape:
+        A_s, A_s_lev = _shape_regressors(mot, t_eval)
+        blocks.append(A_s)
+        levels.append((sum(blk.shape[2] for blk in blocks[:-1]), A_s_lev))
     if knots is not None:
-        A_e, A_lev = _rate_bias_regressors(mot, t_eval, inertia, knots)
+        A_e, A_e_lev = _rate_bias_regressors(mot, t_eval, inertia, knots)
         blocks.append(A_e)
-        width_before = sum(blk.shape[2] for blk in blocks[:-1])
-        A_lev = np.concatenate([np.zeros((len(t_eval), 3, width_before)), A_lev], axis=2)
+        levels.append((sum(blk.shape[2] for blk in blocks[:-1]), A_e_lev))
     A_int = np.concatenate(blocks, axis=2)
+    A_lev = None
+    if levels:
+        A_lev = np.zeros((len(t_eval), 3, A_int.shape[2]))
+        for col, lev in levels:
+            A_lev[:, :, col:col + lev.shape[2]] = lev
     g_int = _interval_left_side(mot, t_eval)
     ok &= np.all(np.isfinite(g_int), axis=1) & np.all(np.isfinite(A_int), axis=(1, 2))
     A_int = np.where(ok[:, None, None], A_int, 0.0)

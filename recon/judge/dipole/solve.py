@@ -20,7 +20,7 @@ Schwarz, G. (1978). Estimating the dimension of a model. Ann. Statist. 6(2), 461
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.stats import chi2
@@ -54,6 +54,8 @@ class DipoleFit:
     rate_bias_knots_s : (K,) knots of the rate history's piecewise-linear bias, s, or None
     rate_bias_rad_s : (K, 3) that bias at the knots (history minus motion), rad/s, body frame, or None
     rate_bias_sigma_rad_s : (K, 3) its least-squares 1-sigma, rad/s, or None
+    inertia_shape, inertia_shape_sigma : (5,) coefficients of the inertia-shape directions and their
+        1-sigma, kg m^2, or None; inertia_kg_m2 : (3, 3) the given inertia changed by them, or None
     """
 
     C: np.ndarray
@@ -70,6 +72,9 @@ class DipoleFit:
     rate_bias_knots_s: np.ndarray | None = None
     rate_bias_rad_s: np.ndarray | None = None
     rate_bias_sigma_rad_s: np.ndarray | None = None
+    inertia_shape: np.ndarray | None = None
+    inertia_shape_sigma: np.ndarray | None = None
+    inertia_kg_m2: np.ndarray | None = None
 
 
 def _solve(y: np.ndarray, A: np.ndarray, label: np.ndarray, Winv: np.ndarray | None, keep: np.ndarray):
@@ -139,7 +144,7 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
                     gate: tuple[np.ndarray, float, float] | None = None, max_hold_s: float = 2.5,
                     residual_dipole: bool = True, torque_bias: bool = True, segment_points: int = 31,
                     reject_outliers: bool = True, jackknife_blocks: int = 10,
-                    rate_bias_knot_s: float | None = None,
+                    rate_bias_knot_s: float | None = None, inertia_shape: bool = False,
                     motion: MotionSplines | None = None) -> DipoleFit | None:
     """Least-squares estimate of the coils' dipole-per-amp matrix C from the motion.
 
@@ -185,6 +190,12 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
     rate_bias_knot_s : float or None
         Also estimate a slowly varying bias of the rate history (piecewise linear, knots at most
         this far apart, see :func:`rate_bias_knots_s`); None: the rate history is taken as unbiased.
+    inertia_shape : bool
+        Also estimate the inertia's shape: its change in five directions that with the given
+        inertia span the symmetric matrices, chosen so that the rate's noise cannot pull them
+        (:func:`.motion.inertia_shape_basis`; its scale cannot be told from the dipoles'). The true
+        inertia differs from the design values by a few percent, and at a few deg/s the error of
+        ``w x J w`` is as large as the coil torque.
     motion : MotionSplines, optional
         The splines of this motion history when already built (a latency scan shares one set over
         all its trials); built here otherwise.
@@ -207,7 +218,7 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
         return None
     knots = rate_bias_knots_s(te[0], te[-1], rate_bias_knot_s)
     des = design(mot, te, J, t_coil_s, i_coil_A, latency_s, gate, max_hold_s, residual_dipole, torque_bias,
-                 segment_points, knots)
+                 segment_points, knots, inertia_shape)
     Winv = whiteners(mot, te, J)
     keep = des.label >= 0
     if keep.sum() < 3:
@@ -227,7 +238,10 @@ def identify_dipole(t_s: np.ndarray, w_body_rad_s: np.ndarray, b_body_nT: np.nda
     var_jk = _jackknife_variance(des.y, des.A, sol.label, Winv, sol.keep, sol.n_segments, jackknife_blocks)
     if var_jk is not None:
         var = np.maximum(var, var_jk)
-    return _dipole_fit(sol, cov, var, rho, n_drop, latency_s, knots, residual_dipole, torque_bias)
+    fit = _dipole_fit(sol, cov, var, rho, n_drop, latency_s, knots, residual_dipole, torque_bias, inertia_shape)
+    if inertia_shape:
+        fit = replace(fit, inertia_kg_m2=J + np.einsum("k,kij->ij", fit.inertia_shape, mot.shape_basis))
+    return fit
 
 
 @dataclass(frozen=True)
@@ -301,9 +315,9 @@ def _covariance(sol: _Solution) -> tuple[np.ndarray, float]:
 
 
 def _dipole_fit(sol: _Solution, cov: np.ndarray, var: np.ndarray, rho: float, n_drop: int, latency_s: float,
-                knots: np.ndarray | None, residual_dipole: bool, torque_bias: bool) -> DipoleFit:
-    """The unknowns read out of their layout: vec(C) column-major, then m_r, then d (each when
-    estimated), then the rate bias's knot values."""
+                knots: np.ndarray | None, residual_dipole: bool, torque_bias: bool, inertia_shape: bool) -> DipoleFit:
+    """The unknowns read out of their layout: vec(C) column-major, then m_r, then d, then the
+    inertia-shape coefficients (each when estimated), then the rate bias's knot values."""
     theta = sol.theta
     C = theta[:9].reshape(3, 3, order="F")
     C_sigma = np.sqrt(np.clip(var[:9], 0, None)).reshape(3, 3, order="F")
@@ -315,12 +329,16 @@ def _dipole_fit(sol: _Solution, cov: np.ndarray, var: np.ndarray, rho: float, n_
     if torque_bias:
         d = theta[k:k + 3]
         k += 3
+    p = p_sig = None
+    if inertia_shape:
+        p, p_sig = theta[k:k + 5], np.sqrt(np.clip(var[k:k + 5], 0, None))
+        k += 5
     e = e_sig = None
     if knots is not None:
         e = theta[k:].reshape(-1, 3)
         e_sig = np.sqrt(np.clip(var[k:], 0, None)).reshape(-1, 3)
     return DipoleFit(C, C_sigma, cov, m_r, d, int(sol.keep.sum()), n_drop, sol.s2, rho, float(np.sum(sol.r * sol.r)),
-                     float(latency_s), knots, e, e_sig)
+                     float(latency_s), knots, e, e_sig, p, p_sig)
 
 
 def chi2_unit(fit) -> float:
