@@ -86,7 +86,8 @@ def test_nominal_passes_nees_inside_chi_square_bounds(nominal_runs):
 
 def test_dead_gyro_pass_uses_dynamics_mode():
     """Scenario gyro_dead: the output drops to zero 40 % into the pass. Measured (seed 1): smoothed
-    0.15 deg and 0.0015 deg/s RMS after 20 minutes (forward 0.19 deg, 0.003 deg/s)."""
+    0.21 deg and 0.0014 deg/s RMS after 20 minutes (forward 0.21 deg, 0.003 deg/s); 0.15 deg with the
+    mission file's model taken as exact, before the model fit (which passes its likelihood-ratio test here)."""
     sp = simulate_pass("gyro_dead", 1, None, duration_s=DURATION_S)
     h = estimate_attitude(sp.time_utc, **_inputs(sp))
     assert h.mode == "dynamics"
@@ -115,7 +116,9 @@ def test_bias_jump_pass():
 def test_no_gyro_cold_start_on_a_detumbling_pass():
     """The same B-dot pass without any gyro: magnetometer-only start and dynamics mode with the logged,
     gated coil currents. Measured (seed 3): smoothed 0.51 deg, 0.002 deg/s RMS after 20 minutes
-    (forward 0.54 deg, 0.004 deg/s)."""
+    (forward 0.54 deg, 0.004 deg/s); the model fit does not pass its likelihood-ratio test here, so the
+    mission file's model is kept, and the error is 0.59 times the stated sigma (1.2 in the version without
+    the fit and its consider term)."""
     sp = simulate_pass("nominal", 3, None, duration_s=DURATION_S)
     kw = _inputs(sp)
     kw.pop("gyro_t_utc")
