@@ -6,16 +6,15 @@ forward filter gives the innovations ``nu_k`` of every magnetometer update and t
 prior's ``1/2 |L^-1 (p - p0)|^2``. The parameters (inertia shape, residual dipole, actuation
 latency: :mod:`.dynamics_params`) act on the motion, hardly on ``S_k``, so as in the filter-error
 method the ``ln det`` term is left out of the Gauss-Newton steps: the cost is the sum of squared
-whitened innovations ``e_k = L_k^T nu_k`` (``S_k^-1 = L_k L_k^T``) and the whitened prior residual.
+whitened innovations ``e_k = L_k^-1 nu_k`` (``S_k = L_k L_k^T``) and the whitened prior residual.
 Levenberg-Marquardt steps with forward-difference sensitivities (one forward run per parameter) in
 prior-whitened coordinates ``z = L^-1 (p - p0)``; the covariance of the estimate is ``L (G^T G)^-1
 L^T`` with ``G`` the sensitivity of the stacked residuals to ``z`` (Cramer-Rao bound of the
 Gauss-Newton approximation). The fitted model replaces the mission file's only when the
 likelihood-ratio test says the data demand it (Wilks 1938).
 
-``S_k`` is not stored by the filter; it is recovered from the updated covariance ``P+``: with
-``R = s^2 I``, ``H P+ H^T = R - R S^-1 R``, so ``S^-1 = (s^2 I - H P+ H^T) / s^4`` (H evaluated at
-the updated state, which differs from the predicted one by the update's small correction).
+The compiled update writes each ``e_k`` and ``ln det S_k`` from the predicted ``S_k`` it factors
+(:mod:`.kernels.update`).
 
 References
 ----------
@@ -36,13 +35,12 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from numba import njit
 from scipy.stats import chi2
 
 from .coil_torque import CoilSchedule
 from .dynamics_params import ModelLayout, ModelPrior
 from .initial import InitialState
-from .kernels import MODE_DYNAMICS, P_SIGF, P_SIGM, N, attitude_matrix, forward_pass
+from .kernels import MODE_DYNAMICS, P_SIGF, N, forward_pass
 from .run import filter_params
 from .types import NoiseModel
 
@@ -137,7 +135,7 @@ def forward_only(t: np.ndarray, u: np.ndarray, usable: np.ndarray, b_body_nT: np
     p0[3:6, 3:6] = np.diag(init.sigma_v ** 2)
     p0[6:, 6:] = np.eye(3) * prm[P_SIGF] ** 2
     q, v, db = np.empty((kk, 4)), np.empty((kk, 3)), np.empty((kk, 3))
-    packed, nis, innov = np.empty((kk, N * (N + 1) // 2)), np.empty(kk), np.empty((kk, 3))
+    packed, nis, innov = np.empty((kk, N * (N + 1) // 2)), np.empty(kk), np.empty((kk, 4))
     forward_pass(MODE_DYNAMICS, t, u, usable, b_body_nT, b_ref_nT, prm, np.asarray(init.q_body_from_gcrf, float),
                  np.asarray(init.v, float).copy(), np.zeros(3), p0, q, v, db, packed, nis, innov)
     return ForwardRun(q, v, db, packed, nis, innov, prm)
@@ -149,107 +147,26 @@ def forward_run(problem: FitProblem, p: np.ndarray, init: InitialState) -> Forwa
     return forward_only(problem.t, u, problem.usable, problem.b_body_nT, problem.b_ref_nT, prm, init)
 
 
-@njit(cache=True)
-def _cholesky3(a, out):
-    """Lower Cholesky factor of a symmetric 3x3 into out; False when a is not positive definite."""
-    for i in range(3):
-        for j in range(3):
-            out[i, j] = 0.0
-    for j in range(3):
-        s = a[j, j]
-        for c in range(j):
-            s -= out[j, c] * out[j, c]
-        if s <= 0.0:
-            return False
-        out[j, j] = np.sqrt(s)
-        for i in range(j + 1, 3):
-            s = a[i, j]
-            for c in range(j):
-                s -= out[i, c] * out[j, c]
-            out[i, j] = s / out[j, j]
-    return True
-
-
-@njit(cache=True)
-def whitened_innovations(q, db, p_packed, innov, nis, b_ref, use, sig_m):
-    """``e_k = L_k^T nu_k`` with ``S_k^-1 = L_k L_k^T`` recovered from P+ (see the module's notes), (K, 3),
-    and ``ln det S_k`` (K,).
-
-    Rows without an update are zero. Where the recovered ``S^-1`` is not positive definite (the very
-    first updates, while the correction is large) the innovation is scaled to the filter's own NIS,
-    ``nu sqrt(NIS) / |nu|``, and ``ln det S`` is NaN.
-    """
-    kk = q.shape[0]
-    out = np.zeros((kk, 3))
-    logdet = np.zeros(kk)
-    pf = np.empty((N, N))
-    g = np.zeros((3, 6))
-    sinv = np.empty((3, 3))
-    low = np.empty((3, 3))
-    s2 = sig_m * sig_m
-    sel = (0, 1, 2, 6, 7, 8)
-    for k in range(kk):
-        if not use[k]:
-            continue
-        c = 0
-        for i in range(N):
-            for j in range(i, N):
-                pf[i, j] = p_packed[k, c]
-                pf[j, i] = p_packed[k, c]
-                c += 1
-        a = attitude_matrix(q[k])
-        r0, r1, r2 = b_ref[k, 0] + db[k, 0], b_ref[k, 1] + db[k, 1], b_ref[k, 2] + db[k, 2]
-        h0 = a[0, 0] * r0 + a[0, 1] * r1 + a[0, 2] * r2
-        h1 = a[1, 0] * r0 + a[1, 1] * r1 + a[1, 2] * r2
-        h2 = a[2, 0] * r0 + a[2, 1] * r1 + a[2, 2] * r2
-        # H restricted to the attitude and field-error columns: [[h x], A]
-        g[0, 0], g[0, 1], g[0, 2] = 0.0, -h2, h1
-        g[1, 0], g[1, 1], g[1, 2] = h2, 0.0, -h0
-        g[2, 0], g[2, 1], g[2, 2] = -h1, h0, 0.0
-        for i in range(3):
-            for j in range(3):
-                g[i, 3 + j] = a[i, j]
-        for i in range(3):
-            for j in range(i, 3):
-                acc = 0.0
-                for m in range(6):
-                    gm = g[i, m]
-                    if gm == 0.0:
-                        continue
-                    for n in range(6):
-                        acc += gm * pf[sel[m], sel[n]] * g[j, n]
-                val = ((s2 if i == j else 0.0) - acc) / (s2 * s2)
-                sinv[i, j] = val
-                sinv[j, i] = val
-        if _cholesky3(sinv, low):
-            logdet[k] = -2.0 * (np.log(low[0, 0]) + np.log(low[1, 1]) + np.log(low[2, 2]))
-            for i in range(3):
-                out[k, i] = low[i, i] * innov[k, i]
-                for j in range(i + 1, 3):
-                    out[k, i] += low[j, i] * innov[k, j]
-        else:
-            norm = np.sqrt(innov[k, 0] ** 2 + innov[k, 1] ** 2 + innov[k, 2] ** 2)
-            f = np.sqrt(max(nis[k], 0.0)) / norm if norm > 0.0 else 0.0
-            logdet[k] = np.nan
-            for i in range(3):
-                out[k, i] = f * innov[k, i]
-    return out, logdet
+def whitened_innovations(innov: np.ndarray, use: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The forward pass's whitened innovations ``L_k^-1 nu_k`` (``S_k = L_k L_k^T``, the predicted
+    innovation covariance), (K, 3), and ``ln det S_k`` (K,), as the compiled update writes them; rows
+    without an update are zero."""
+    out = np.where(use[:, None], np.nan_to_num(innov[:, :3]), 0.0)
+    return out, np.where(use, np.nan_to_num(innov[:, 3]), 0.0)
 
 
 def neg_log_likelihood(problem: FitProblem, run: ForwardRun) -> float:
     """``sum (NIS_k + ln det S_k)`` over the updates (twice the negative log-likelihood less a constant);
     the first updates, where S cannot be recovered, count with their NIS alone."""
-    _, logdet = whitened_innovations(run.q, run.db, run.p_packed, run.innov, run.nis, problem.b_ref_nT,
-                                     problem.usable, run.prm[P_SIGM])
+    _, logdet = whitened_innovations(run.innov, problem.usable)
     use = problem.usable
-    return float(np.sum(run.nis[use]) + np.nansum(logdet[use]))
+    return float(np.sum(run.nis[use]) + np.sum(logdet[use]))
 
 
 def _residuals(problem: FitProblem, z: np.ndarray, init: InitialState) -> np.ndarray:
     """Stacked whitened innovations of the updates and the whitened prior residual ``z``."""
     run = forward_run(problem, problem.prior.params(z), init)
-    e, _ = whitened_innovations(run.q, run.db, run.p_packed, run.innov, run.nis, problem.b_ref_nT, problem.usable,
-                             run.prm[P_SIGM])
+    e, _ = whitened_innovations(run.innov, problem.usable)
     return np.r_[e[problem.usable].ravel(), z]
 
 
