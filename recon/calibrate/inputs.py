@@ -25,6 +25,7 @@ from ..core import (
     held_values,
     in_off_window,
     infer_first_tick,
+    seconds_since,
 )
 
 __all__ = ["DEFAULT_NOISE_nT", "CalibrationInputs", "prepare_inputs", "seconds_since", "reference_magnitude",
@@ -33,11 +34,6 @@ __all__ = ["DEFAULT_NOISE_nT", "CalibrationInputs", "prepare_inputs", "seconds_s
 # Default magnetometer noise when the mission file gives none: the middle of 10-100 nT rms for COTS
 # magnetoresistive sensors (common practice, no source).
 DEFAULT_NOISE_nT = 50.0
-
-
-def seconds_since(t, t0_ns) -> np.ndarray:
-    """Seconds of the datetime64 times ``t`` since ``t0_ns`` (int64 nanoseconds since 1970, UTC)."""
-    return (np.asarray(t, dtype="datetime64[ns]").astype(np.int64) - np.int64(t0_ns)).astype(float) / NS_PER_S
 
 
 @dataclass(frozen=True)
