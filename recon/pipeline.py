@@ -19,7 +19,7 @@ from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import RAD_S_PER_UNIT, Anomaly, InputError, __version__
-from .estimate import AlignmentPrior, NoiseModel, estimate_attitude
+from .estimate import AlignmentPrior, FilterDiverged, NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
 from .load import load_pass
@@ -188,6 +188,20 @@ def _gyro_full_scale(mission: Mission) -> float | None:
     return None if g is None or g.full_scale is None else float(g.full_scale) * RAD_S_PER_UNIT[g.unit]
 
 
+def _nearest_rows(t_ref: np.ndarray, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Index of the nearest row of ``t_ref`` (sorted datetime64) for each of ``t``, and whether it lies
+    within half of ``t_ref``'s median interval."""
+    ref = np.asarray(t_ref, "datetime64[ns]").astype(np.int64)
+    x = np.asarray(t, "datetime64[ns]").astype(np.int64)
+    if len(ref) == 0:
+        return np.zeros(len(x), np.int64), np.zeros(len(x), bool)
+    hi = np.clip(np.searchsorted(ref, x), 0, len(ref) - 1)
+    lo = np.clip(hi - 1, 0, len(ref) - 1)
+    k = np.where(np.abs(ref[lo] - x) <= np.abs(ref[hi] - x), lo, hi)
+    half = 0.5 * float(np.median(np.diff(ref))) if len(ref) > 1 else 0.0
+    return k, np.abs(ref[k] - x) <= half
+
+
 def _judge(mission: Mission, cleaned, cal, ref, hist):
     mag = cleaned.magnetometer
     m_stb = mission.magnetometer.sensor_to_body
@@ -195,10 +209,14 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
     gyro = cleaned.gyro
     # the history's rows are magnetometer instants (possibly fewer than the log's): align the reference
     # field by time, then judge the motion where the rate, the attitude and the reference all exist
-    k = np.clip(np.searchsorted(ref.time_utc, hist.time_utc), 0, len(ref.time_utc) - 1)
+    # (nearest row within half an interval: the estimator may have moved the instants by the residual
+    # time-tag offset it fitted)
+    k, near = _nearest_rows(ref.time_utc, hist.time_utc)
     b_ref, r_ref = ref.b_gcrf_nT[k], ref.r_gcrf_km[k]
-    sel = ((ref.time_utc[k] == hist.time_utc) & np.isfinite(b_ref).all(axis=1) & np.isfinite(r_ref).all(axis=1)
+    sel = (near & np.isfinite(b_ref).all(axis=1) & np.isfinite(r_ref).all(axis=1)
            & np.isfinite(hist.w_body_rad_s).all(axis=1) & np.isfinite(hist.q_body_from_gcrf).all(axis=1))
+    if not sel.any():
+        return None
     w_cov = hist.smoothed.covariance[sel, 3:6, 3:6] if hist.mode == "dynamics" else None
     return judge_pass(
         controller=mission.controller, coils=mission.coils, inertia_kg_m2=mission.inertia_kg_m2,
@@ -220,7 +238,11 @@ def _attitude_stage(mission, cleaned, cal, ref, timing, out, bar, skipped):
     if not np.isfinite(cal.b_body_calibrated_nT).any():
         skipped["estimate"] = "no calibrated magnetometer sample is usable"
         return None
-    hist = _estimate(mission, cleaned, cal, ref, timing, bar)
+    try:
+        hist = _estimate(mission, cleaned, cal, ref, timing, bar)
+    except FilterDiverged as exc:
+        skipped["estimate"] = f"{exc}; no attitude history could be formed"
+        return None
     write_attitude_csv(out / "attitude.csv", hist)
     write_aem(out / "attitude.aem", hist.time_utc, hist.q_body_from_gcrf,
               creation_date=hist.time_utc[-1], originator="recon", object_name=mission.pass_id,
@@ -231,7 +253,8 @@ def _attitude_stage(mission, cleaned, cal, ref, timing, out, bar, skipped):
 def _controller_stage(mission, cleaned, cal, ref, hist, bar, skipped):
     """The controller judgement, or None with the reason in ``skipped``."""
     if mission.controller is None or mission.coils is None:
-        skipped["controller"] = "the mission file has no [controller] and [coils] sections"
+        missing = [f"[{n}]" for n, v in (("controller", mission.controller), ("coils", mission.coils)) if v is None]
+        skipped["controller"] = f"the mission file has no {' and no '.join(missing)} section"
     elif cleaned.coils is None or len(cleaned.coils.time_utc) == 0:
         skipped["controller"] = "no coil current sample survived cleaning"
     elif hist is None:
@@ -240,6 +263,9 @@ def _controller_stage(mission, cleaned, cal, ref, hist, bar, skipped):
         say(bar, "judge the controller", 0.0)
         judgement = _judge(mission, cleaned, cal, ref, hist)
         say(bar, "judge the controller", 1.0)
+        if judgement is None:
+            skipped["controller"] = ("no row of the rate history has a finite rate, attitude and reference "
+                                     "field to judge the controller from")
         return judgement
     return None
 

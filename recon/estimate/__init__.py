@@ -2,6 +2,7 @@
 
 from .alignment import AlignmentPrior, AlignmentResult
 from .attitude import estimate_attitude
+from .dynamics_fit import FilterDiverged
 from .noise import gyro_noise_figures
 from .types import AttitudeHistory, FilterStart, GyroAllanFigures, NoiseModel, NoiseSource, OpeningFit, Track
 
@@ -12,6 +13,7 @@ __all__ = [
     "Track",
     "AttitudeHistory",
     "estimate_attitude",
+    "FilterDiverged",
     "gyro_noise_figures",
     "GyroAllanFigures",
     "NoiseSource",

@@ -141,10 +141,24 @@ def forward_only(t: np.ndarray, u: np.ndarray, usable: np.ndarray, b_body_nT: np
     return ForwardRun(q, v, db, packed, nis, innov, prm)
 
 
+class FilterDiverged(ArithmeticError):
+    """The dynamics-mode filter lost its track: an update's innovation or covariance is not finite
+    (an opening rate far from the truth on steps too coarse for it, or model parameters far off)."""
+
+
 def forward_run(problem: FitProblem, p: np.ndarray, init: InitialState) -> ForwardRun:
-    """The forward filter alone (no smoother) for model parameters ``p`` from the opening ``init``."""
+    """The forward filter alone (no smoother) for model parameters ``p`` from the opening ``init``.
+
+    Raises
+    ------
+    FilterDiverged
+        Any update's whitened innovation is not finite.
+    """
     prm, u = problem.model(p)
-    return forward_only(problem.t, u, problem.usable, problem.b_body_nT, problem.b_ref_nT, prm, init)
+    run = forward_only(problem.t, u, problem.usable, problem.b_body_nT, problem.b_ref_nT, prm, init)
+    if not np.isfinite(run.innov[problem.usable, :3]).all():
+        raise FilterDiverged("the dynamics-mode filter diverged (non-finite innovation)")
+    return run
 
 
 def whitened_innovations(innov: np.ndarray, use: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -281,9 +295,12 @@ def fit_model(problem: FitProblem, init: InitialState, *, free: np.ndarray | Non
         while lam < 1e8:
             step = np.zeros(size)
             step[free] = -np.linalg.solve(h + lam * np.diag(np.diag(h)), grad)
-            r_new = _residuals(problem, z + step, init)
             runs += 1
-            c_new = float(r_new @ r_new)
+            try:
+                r_new = _residuals(problem, z + step, init)
+                c_new = float(r_new @ r_new)
+            except FilterDiverged:  # a step too long: treated as one that does not lower the cost
+                c_new = np.inf
             if c_new < cost:
                 accepted = True
                 break

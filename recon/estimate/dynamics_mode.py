@@ -41,7 +41,7 @@ import numpy as np
 
 from ..core import NS_PER_S
 from .coil_torque import CoilSchedule, CoilTiming, coil_schedule
-from .dynamics_fit import FitProblem, ModelFit, fit_model, held_at_prior, significant
+from .dynamics_fit import FilterDiverged, FitProblem, ModelFit, fit_model, held_at_prior, significant
 from .dynamics_params import ModelLayout, ModelPrior, model_prior
 from .dynamics_search import OPENING_WINDOWS, choose_opening
 from .dynamics_smooth import consider_changes, smoothed_run, with_consider
@@ -91,17 +91,18 @@ def _fill_rows(t: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 
 def _candidates(problem: FitProblem, inputs: PassInputs, check: GyroCheck | None, noise: NoiseModel,
-                init_window_s: float) -> list[InitialState]:
-    """The opening candidates at t[0]: the gyro-seeded start when the gyro died later in the pass, else
-    the distinct minima of the magnetometer-only opening fits over windows of several lengths."""
+                init_window_s: float, seeded: bool = True) -> list[InitialState]:
+    """The opening candidates at t[0]: the gyro-seeded start when the gyro died later in the pass (and
+    ``seeded``), else the distinct minima of the magnetometer-only opening fits over windows of several
+    lengths."""
     t, usable = problem.t, problem.usable
     prm, u = problem.model(problem.prior.mean)
     m_steps = u[:, 0:3]
     sig_vec = float(np.hypot(noise.mag_nT, noise.field_model_nT / np.sqrt(3.0)))
     found = None
-    if inputs.t_gyro_ns is not None:
-        seeded = gyro_seeded_start(t, inputs, check, noise, sig_vec, init_window_s)
-        found = None if seeded is None else [seeded]
+    if seeded and inputs.t_gyro_ns is not None:
+        start = gyro_seeded_start(t, inputs, check, noise, sig_vec, init_window_s)
+        found = None if start is None else [start]
     if found is None:
         found = distinct_openings(opening_candidates(
             t[usable], inputs.b_body_nT[usable], inputs.b_ref_gcrf_nT[usable], m_steps[usable], problem.r_km[usable],
@@ -145,7 +146,15 @@ def reconstruct_dynamics(inputs: PassInputs, noise: NoiseModel, inertia: np.ndar
     candidates = _candidates(problem, inputs, check, noise, init_window_s)
     free = np.array([i for i in range(ModelLayout.SIZE) if schedule is not None or i not in ModelLayout.COILS])
     report("opening and model on a coarse grid", 0.1)
-    choice = choose_opening(problem, candidates, free, fit=fit_model_parameters)
+    try:
+        choice = choose_opening(problem, candidates, free, fit=fit_model_parameters)
+    except FilterDiverged:
+        if inputs.t_gyro_ns is None:
+            raise
+        # the gyro-seeded opening lost the track (the gyro's last rates were already wrong): open from
+        # the magnetometer alone
+        candidates = _candidates(problem, inputs, check, noise, init_window_s, seeded=False)
+        choice = choose_opening(problem, candidates, free, fit=fit_model_parameters)
     fit, p = choice.fit, problem.prior.mean
     if fit is not None and not significant(fit, len(free)):
         fit = held_at_prior(fit)

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .dynamics_fit import FitProblem, ModelFit, fit_model, forward_run, neg_log_likelihood
+from .dynamics_fit import FilterDiverged, FitProblem, ModelFit, fit_model, forward_run, neg_log_likelihood
 from .dynamics_smooth import backward_start, relinearised
 from .initial import InitialState
 
@@ -73,13 +73,19 @@ def choose_opening(problem: FitProblem, candidates: list[InitialState], free: np
     p0 = problem.prior.mean
     best, costs = None, []
     for cand in candidates:
-        _, init = relinearised(coarse, p0, cand, 1)
-        f = fit_model(coarse, init, free=free) if fit else None
-        p = p0 if f is None else f.params
-        run, init = relinearised(coarse, p, init, 1)
-        init = backward_start(coarse, p, run, init)
-        cost = neg_log_likelihood(coarse, forward_run(coarse, p, init))
+        try:
+            _, init = relinearised(coarse, p0, cand, 1)
+            f = fit_model(coarse, init, free=free) if fit else None
+            p = p0 if f is None else f.params
+            run, init = relinearised(coarse, p, init, 1)
+            init = backward_start(coarse, p, run, init)
+            cost = neg_log_likelihood(coarse, forward_run(coarse, p, init))
+        except FilterDiverged:  # this opening loses the track: it cannot be the most likely
+            costs.append(np.inf)
+            continue
         costs.append(cost)
         if best is None or cost < best[0]:
             best = (cost, init, f)
+    if best is None:
+        raise FilterDiverged(f"the dynamics-mode filter diverged from every one of {len(candidates)} openings")
     return OpeningChoice(best[1], best[2], len(candidates), np.asarray(costs))

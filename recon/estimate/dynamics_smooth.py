@@ -34,7 +34,7 @@ import dataclasses
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from .dynamics_fit import FitProblem, ModelFit, dynamics_inputs, forward_only
+from .dynamics_fit import FilterDiverged, FitProblem, ModelFit, dynamics_inputs, forward_only
 from .initial import InitialState
 from .kernels import MODE_DYNAMICS, unpack_covariance
 from .run import FilterRun, run_filter
@@ -47,11 +47,20 @@ BACKWARD_COVARIANCE_FACTOR = 2.0
 
 
 def filter_run(problem: FitProblem, p: np.ndarray, init: InitialState) -> FilterRun:
-    """Forward filter and smoother over all rows of ``problem`` for model parameters ``p``."""
+    """Forward filter and smoother over all rows of ``problem`` for model parameters ``p``.
+
+    Raises
+    ------
+    FilterDiverged
+        The smoothed attitude or rate is not finite somewhere.
+    """
     prm, u = problem.model(p)
     k = len(problem.t)
-    return run_filter(MODE_DYNAMICS, problem.t, u, problem.usable.copy(), problem.b_body_nT, problem.b_ref_nT, prm,
-                      init, np.arange(k, dtype=np.int64), k)
+    run = run_filter(MODE_DYNAMICS, problem.t, u, problem.usable.copy(), problem.b_body_nT, problem.b_ref_nT, prm,
+                     init, np.arange(k, dtype=np.int64), k)
+    if not (np.isfinite(run.q_s).all() and np.isfinite(run.v_s).all()):
+        raise FilterDiverged("the dynamics-mode filter diverged (non-finite smoothed state)")
+    return run
 
 
 def _positive(q: np.ndarray) -> np.ndarray:

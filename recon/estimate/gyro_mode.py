@@ -135,12 +135,20 @@ def _corrections(params: dict) -> Corrections:
 def _likelihood(inputs: PassInputs, sol: GyroSolution, prm: np.ndarray) -> Callable[[dict], np.ndarray]:
     """The filter's whitened innovations (stacked, the updates of the first solution) as a function of
     the alignment parameters, from the first solution's opening and bias step."""
-    keep = np.isfinite(forward_innovations(MODE_GYRO, sol.grid.t_s, _step_u(sol.grid, sol.step), sol.grid.is_mag,
-                                           sol.grid.z, sol.grid.r, prm, sol.init)).all(axis=1)
+    n_mag = len(inputs.t_mag_ns)
+
+    def per_row(g: StepGrid) -> np.ndarray:
+        # innovations by magnetometer row, not by step: a time-tag shift can move a row onto a gyro
+        # stamp (the steps merge) or out of the gyro's span, which changes the number of steps
+        white = forward_innovations(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init)
+        rows = np.full((n_mag, 3), np.nan)
+        rows[g.first_row + np.arange(len(g.mag_pos))] = white[g.mag_pos]
+        return rows
+
+    keep = np.isfinite(per_row(sol.grid)).all(axis=1)
 
     def evaluate(params: dict) -> np.ndarray:
-        g = step_grid(corrected_inputs(inputs, _corrections(params)))
-        white = forward_innovations(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init)
+        white = per_row(step_grid(corrected_inputs(inputs, _corrections(params))))
         return np.nan_to_num(white[keep]).ravel()
 
     return evaluate

@@ -14,7 +14,7 @@ from numba import njit
 from .layout import N
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def qmul(p, q):
     """Hamilton product p (x) q, scalar-last (scipy: ``(P * Q).as_quat()``)."""
     out = np.empty(4)
@@ -25,7 +25,7 @@ def qmul(p, q):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def quat_from_rotvec(v0, v1, v2):
     """Quaternion of the rotation vector (v0, v1, v2) (scipy ``from_rotvec``)."""
     th = np.sqrt(v0 * v0 + v1 * v1 + v2 * v2)
@@ -41,7 +41,7 @@ def quat_from_rotvec(v0, v1, v2):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def rotvec_from_quat(q):
     """Rotation vector of q (shortest rotation, sign of q irrelevant)."""
     x, y, z, w = q[0], q[1], q[2], q[3]
@@ -59,13 +59,13 @@ def rotvec_from_quat(q):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def qnormalize(q):
     n = np.sqrt(q[0] * q[0] + q[1] * q[1] + q[2] * q[2] + q[3] * q[3])
     return q / n
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def rot_step_into(v0, v1, v2, q, out):
     """out = normalised q(v) (x) q for the rotation vector v: one step of the kinematics, no allocation."""
     th = np.sqrt(v0 * v0 + v1 * v1 + v2 * v2)
@@ -85,7 +85,7 @@ def rot_step_into(v0, v1, v2, q, out):
     out[3] = w / nn
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def attitude_matrix_into(q, a):
     """Write A(q) into the (3, 3) array ``a`` (see :func:`attitude_matrix`)."""
     x, y, z, w = q[0], q[1], q[2], q[3]
@@ -100,7 +100,7 @@ def attitude_matrix_into(q, a):
     a[2, 2] = w * w - x * x - y * y + z * z
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def attitude_matrix(q):
     """A(q) with ``A @ v_gcrf = v_body`` (scipy ``as_matrix``)."""
     a = np.empty((3, 3))
@@ -108,7 +108,7 @@ def attitude_matrix(q):
     return a
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _skew_into(v, out, r0, c0, scale):
     """out[r0:r0+3, c0:c0+3] = scale * [v x]."""
     out[r0 + 0, c0 + 0] = 0.0
@@ -122,14 +122,14 @@ def _skew_into(v, out, r0, c0, scale):
     out[r0 + 2, c0 + 2] = 0.0
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def skew(v):
     s = np.empty((3, 3))
     _skew_into(v, s, 0, 0, 1.0)
     return s
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def cross(a, b):
     out = np.empty(3)
     out[0] = a[1] * b[2] - a[2] * b[1]
@@ -138,7 +138,7 @@ def cross(a, b):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def cholesky_solve(a, b, lwork, out):
     """Solve a x = b for symmetric positive-definite a (N x N), b (N x N). Returns False if not SPD.
 

@@ -22,7 +22,7 @@ from .propagation import predict_into
 from .update import update_into
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
                  q_out, v_out, db_out, p_out, nis_out, innov_out):
     """Forward MEKF over K steps. Step k sits at t[k]; propagation k-1 -> k uses u[k-1].
@@ -81,7 +81,7 @@ def forward_pass(mode, t, u, is_mag, z, r, prm, q0, v0, db0, p0,
     return 0
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def unpack_into(packed, out):
     c = 0
     for i in range(N):
@@ -100,7 +100,7 @@ def unpack_covariance(packed: np.ndarray, size: int = N) -> np.ndarray:
     return np.ascontiguousarray(full[:, :size, :size])
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def attitude_error_rotvec(ax, ay, az, aw, qm):
     """Rotation vector dtheta of the small rotation from the predicted quaternion qm to the smoothed one
     (ax, ay, az, aw), with ``q_s = q(-dtheta) (x) q-``: the attitude part of the smoother's state error.
@@ -120,7 +120,7 @@ def attitude_error_rotvec(ax, ay, az, aw, qm):
     return -f * ex, -f * ey, -f * ez
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True, error_model="numpy", inline="always")
 def smoothed_covariance_into(ps, pk, pm, x, tmp):
     """ps = P_s,k = P+ - Ks (P- - P_s,k+1) Ks^T, with ps holding P_s,k+1 on entry, pk = P+_k, pm = P-_k+1
     (overwritten) and x = Ks^T; tmp is work space.
@@ -149,7 +149,7 @@ def smoothed_covariance_into(ps, pk, pm, x, tmp):
             ps[j, i] = ps[i, j]
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def smoother_pass(mode, t, u, r, prm, q_f, v_f, db_f, p_f, out_idx,
                   q_s, v_s, db_s, p_s6, p_sfull):
     """Rauch-Tung-Striebel smoother in error-state form over the stored forward pass.

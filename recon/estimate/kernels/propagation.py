@@ -38,7 +38,7 @@ from .layout import MODE_GYRO, P_ACC, P_HNOM, P_J, P_JINV, P_MU, P_SIGF, P_SIGTA
 
 
 # ----------------------------------------------------------------------------- gyro propagation
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def gyro_transition(w, dt, phi):
     """Fill phi[0:3, 0:6] for a rate w (rad/s, body) held over dt.
 
@@ -72,7 +72,7 @@ def gyro_transition(w, dt, phi):
             phi[i, 3 + j] = -(eye * dt - c2 * sk + c3 * sk2)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _field_decay(dt, prm):
     """Gauss-Markov factor e = exp(-dt/tau_f) and its process noise sig_f^2 (1 - e^2); e = 0 if tau_f <= 0."""
     tau = prm[P_TAUF]
@@ -80,7 +80,7 @@ def _field_decay(dt, prm):
     return e, prm[P_SIGF] * prm[P_SIGF] * (1.0 - e * e)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _gyro_noise(dt, s0, extra, prm, rate_psd=0.0):
     """Discrete Q coefficients (a11, a12, a22) of one gyro step (see the module docstring).
 
@@ -106,7 +106,7 @@ def _gyro_noise(dt, s0, extra, prm, rate_psd=0.0):
     return a11, -0.5 * su2 * dt * dt, su2 * dt + extra
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
     """One gyro-mode step, reference form: returns (q_next, beta_next, db_next) and fills the full
     Phi and Q (N x N). ``u = [w_meas (3), s0, extra]``: the held gyro sample (rad/s, body), the time
@@ -138,7 +138,7 @@ def propagate_gyro(q, beta, db, u, dt, prm, phi, qd):
 
 
 # ------------------------------------------------------------------------- dynamics propagation
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _torque(q, w, m_body, b_gcrf_nT, r_gcrf_km, prm):
     """Magnetic m x B plus gravity gradient, N m, body; also returns J w for reuse."""
     a = attitude_matrix(q)
@@ -157,7 +157,7 @@ def _torque(q, w, m_body, b_gcrf_nT, r_gcrf_km, prm):
     return tau
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _wdot(q, w, m_body, b, r, prm):
     tau = _torque(q, w, m_body, b, r, prm)
     jw = np.empty(3)
@@ -170,7 +170,7 @@ def _wdot(q, w, m_body, b, r, prm):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _qdot(q, w):
     """dq/dt = -1/2 (w, 0) (x) q (scalar-last Hamilton)."""
     hw = np.empty(4)
@@ -181,7 +181,7 @@ def _qdot(q, w):
     return qmul(hw, q)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def rk4_rigid_body(q, w, dt, m_body, b0, b1, r0, r1, prm):
     """One RK4 step of kinematics and Euler's equations; field and position linear in time."""
     bm = 0.5 * (b0 + b1)
@@ -205,7 +205,7 @@ def rk4_rigid_body(q, w, dt, m_body, b0, b1, r0, r1, prm):
     return qnormalize(qn), wn
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def dynamics_jacobian(q, w, m_body, b_gcrf_nT, r_gcrf_km, prm, f):
     """Fill f[0:6, 0:6] with the error-state Jacobian of the dynamics mode."""
     a = attitude_matrix(q)
@@ -234,7 +234,7 @@ def dynamics_jacobian(q, w, m_body, b_gcrf_nT, r_gcrf_km, prm, f):
             f[3 + i, 3 + j] = f_ww[i, j]
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, phi, qd):
     """One dynamics-mode step: returns (q_next, w_next, db_next); fills phi and qd.
 
@@ -289,7 +289,7 @@ def propagate_dynamics(q, w, db, u, b0, b1, dt, prm, phi, qd):
     return qn, wn, dbn
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def predict_into(mode, k, q, v, db, t, u, r, prm, p, qn, vn, dbn, m, pm, blk, w3, phi, qd):
     """Prediction k -> k+1 in place: state into (qn, vn, dbn), ``m = Phi P``, ``pm = Phi P Phi^T + Q``.
 

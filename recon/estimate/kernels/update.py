@@ -21,7 +21,7 @@ from .algebra import attitude_matrix_into, rot_step_into
 from .layout import P_SIGM, N
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
     """white[:3] = L^-1 innov with S = L L^T (the Cholesky factor of the symmetric 3x3 S, lower);
     white[3] = log det S = 2 log(l00 l11 l22)."""
@@ -37,7 +37,7 @@ def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
     white[3] = 2.0 * np.log(l00 * l11 * l22)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, white):
     """Vector update in place (work arrays a (3, 3), pht (N, 3), kg (N, 3), dx (N,)); returns NIS.
 
@@ -92,6 +92,14 @@ def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, 
     c01 = s02 * s12 - s01 * s22
     c02 = s01 * s12 - s02 * s11
     det = s00 * c00 + s01 * c01 + s02 * c02
+    if not det > 0.0:  # S lost positive definiteness (a diverged state): no update, marked NaN
+        for i in range(4):
+            qn[i] = q[i]
+            white[i] = np.nan
+        for i in range(3):
+            vn[i] = v[i]
+            dbn[i] = db[i]
+        return np.nan
     i00 = c00 / det
     i01 = c01 / det
     i02 = c02 / det
@@ -130,7 +138,7 @@ def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, 
     return nis
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def vector_update(q, v, db, p, z, b_ref, prm, innov):
     """Update with one body-frame field measurement z (nT) against the GCRF reference b_ref (nT).
 
