@@ -19,7 +19,7 @@ from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
 from .core import RAD_S_PER_UNIT, Anomaly, InputError, __version__
-from .estimate import AlignmentPrior, FilterDiverged, NoiseModel, estimate_attitude
+from .estimate import AlignmentPrior, CoilTiming, FilterDiverged, NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
 from .load import load_pass
@@ -179,8 +179,17 @@ def _estimate(mission: Mission, cleaned, cal, ref, timing, progress):
         field_residual_rms_nT=cal.residual_rms_nT.get("after"),
         gyro_clipped=None if gyro is None else gyro.saturated,
         gyro_sensor_to_body=None if mission.gyro is None else mission.gyro.sensor_to_body,
-        gyro_full_scale_rad_s=_gyro_full_scale(mission),
+        gyro_full_scale_rad_s=_gyro_full_scale(mission), coil_timing=_coil_timing(mission),
         progress=None if progress is None else (lambda stage, f: progress(f"attitude: {stage}", f)))
+
+
+def _coil_timing(mission: Mission) -> CoilTiming | None:
+    """When the coil commands switch, from the mission file's [controller] and [coils]."""
+    ctl, coils = mission.controller, mission.coils
+    if ctl is None or coils is None:
+        return None
+    return CoilTiming(period_s=ctl.period_s, first_tick_utc=ctl.first_tick, off_window_s=coils.off_window_s,
+                      mag_sampling=coils.mag_sampling)
 
 
 def _gyro_full_scale(mission: Mission) -> float | None:

@@ -63,6 +63,16 @@ def test_flight_like_detumble_without_gyro_estimates_the_model():
     j_true = np.asarray(truth["inertia_true_kg_m2"])
     j_true = j_true * np.trace(inertia0) / np.trace(j_true)
     assert np.linalg.norm(fit.inertia_kg_m2 - j_true) < 0.1 * np.linalg.norm(inertia0 - j_true)
+    # the history carries the model as reported (summary.json's "dynamics_model"): the same figures,
+    # with sigmas that cover the truth (principal moments within 3 sigma)
+    model = res.history.model
+    assert model is not None and model.fitted
+    np.testing.assert_allclose(model.residual_dipole_Am2, fit.params[lay.DIPOLE])
+    np.testing.assert_allclose(model.residual_dipole_sigma_Am2, fit.sigma[lay.DIPOLE])
+    d = np.abs(np.diag(model.inertia_kg_m2) - np.diag(j_true))
+    assert np.all(d <= 3.0 * np.diag(model.inertia_sigma_kg_m2) + 1e-6), (d, np.diag(model.inertia_sigma_kg_m2))
+    block = res.history.to_summary()["dynamics_model"]
+    assert block["source"] == "fitted on this pass" and len(block["coil_gain_sigma"]) == 3
     # the target for gyro-less mode is under 1.5 deg; sigmas that neither hide the error nor
     # are more than three times too large (common practice, no source)
     att, ratio = _error_and_ratio(res.history.smoothed, sp.q_body_from_gcrf, sp.t_s > 600.0)

@@ -2,9 +2,19 @@
 
 from .alignment import AlignmentPrior, AlignmentResult
 from .attitude import estimate_attitude
+from .coil_torque import CoilTiming
 from .dynamics_fit import FilterDiverged
 from .noise import gyro_noise_figures
-from .types import AttitudeHistory, FilterStart, GyroAllanFigures, NoiseModel, NoiseSource, OpeningFit, Track
+from .types import (
+    AttitudeHistory,
+    DynamicsModel,
+    FilterStart,
+    GyroAllanFigures,
+    NoiseModel,
+    NoiseSource,
+    OpeningFit,
+    Track,
+)
 
 __all__ = [
     "AlignmentPrior",
@@ -14,6 +24,8 @@ __all__ = [
     "AttitudeHistory",
     "estimate_attitude",
     "FilterDiverged",
+    "CoilTiming",
+    "DynamicsModel",
     "gyro_noise_figures",
     "GyroAllanFigures",
     "NoiseSource",

@@ -45,6 +45,7 @@ import numpy as np
 from ..core import NS_PER_S, InputError, held_values, white_noise_from_differences
 from .alignment import AlignmentPrior
 from .clipping import with_clipped_solved
+from .coil_torque import CoilTiming
 from .consistency import consistency_anomaly
 from .dynamics_mode import estimate_dynamics
 from .gyro_check import GyroCheck, check_gyro
@@ -64,6 +65,7 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
                       rate_window_s: float = 0.5, alignment_prior: AlignmentPrior | None = None,
                       field_residual_rms_nT: float | None = None, gyro_clipped: np.ndarray | None = None,
                       gyro_sensor_to_body: np.ndarray | None = None, gyro_full_scale_rad_s: float | None = None,
+                      coil_timing: CoilTiming | None = None,
                       progress: Callable[[str, float], None] | None = None) -> AttitudeHistory:
     """Reconstruct attitude, rate and gyro bias over one pass.
 
@@ -111,6 +113,11 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         Gyro mode: what is known of the magnetometer's misalignment, the gyro's scale and the
         time-tag offset before the pass (see :mod:`recon.estimate.alignment`); default: misalignment
         zero +- 1 deg, scale +- 3 %, skew +- 1 %, time tags known.
+    coil_timing : CoilTiming, optional
+        Dynamics mode: the control ticks, the coil-off window and the magnetometer's sampling, so the
+        coil log is placed on the instants its commands switch and the actuation latency is estimated
+        from the tick (:func:`recon.estimate.coil_torque.coil_schedule`); default: the log's own
+        stamps are the switching instants.
     progress : callable(stage: str, fraction: float), optional
 
     Returns
@@ -155,7 +162,7 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         hist = estimate_gyro(inputs, noise, init_window_s, rate_window_s, report, alignment_prior)
     else:
         hist = estimate_dynamics(inputs, noise, inertia_kg_m2, coil_t_utc, i_coil_A, dipole_per_amp, r_gcrf_km,
-                                 init_window_s, report, check=choice.check)
+                                 init_window_s, report, check=choice.check, timing=coil_timing)
     hist = dataclasses.replace(hist, mode_reason=choice.reason, anomalies=choice.anomalies + tuple(hist.anomalies))
     if raised and hist.noise_source.field_model_nT in (None, "given"):  # not fitted on the pass
         hist = dataclasses.replace(hist, noise_source=dataclasses.replace(hist.noise_source,

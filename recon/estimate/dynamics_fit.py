@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from scipy.stats import chi2
@@ -219,25 +218,6 @@ class ModelFit:
     @property
     def sigma(self) -> np.ndarray:
         return np.sqrt(np.clip(np.diag(self.covariance), 0.0, None))
-
-    def to_summary(self) -> dict[str, Any]:
-        lay, s = ModelLayout, self.sigma
-        return {
-            "inertia_kg_m2": self.inertia_kg_m2.tolist(),
-            "principal_moment_ratio_change": self.params[lay.MOMENTS].tolist(),
-            "principal_moment_ratio_change_sigma": s[lay.MOMENTS].tolist(),
-            "principal_axes_tilt_deg": np.rad2deg(self.params[lay.TILT]).tolist(),
-            "principal_axes_tilt_deg_sigma": np.rad2deg(s[lay.TILT]).tolist(),
-            "residual_dipole_Am2": self.params[lay.DIPOLE].tolist(),
-            "residual_dipole_Am2_sigma": s[lay.DIPOLE].tolist(),
-            "coil_gain": np.exp(self.params[lay.COIL_GAIN]).tolist(),
-            "coil_gain_sigma": (np.exp(self.params[lay.COIL_GAIN]) * s[lay.COIL_GAIN]).tolist(),
-            "actuation_latency_s": float(self.params[lay.LATENCY]),
-            "actuation_latency_s_sigma": float(s[lay.LATENCY]),
-            "iterations": self.iterations, "filter_runs": self.filter_runs,
-            "cost_decrease": float(self.cost_start - self.cost), "likelihood_ratio": self.likelihood_ratio,
-            "accepted": self.accepted,
-        }
 
 
 def significant(fit: ModelFit, n_free: int) -> bool:

@@ -38,10 +38,11 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.stats import chi2
 
 from ..core import NS_PER_S
 from .coil_torque import CoilSchedule, CoilTiming, coil_schedule
-from .dynamics_fit import FilterDiverged, FitProblem, ModelFit, fit_model, held_at_prior, significant
+from .dynamics_fit import FIT_FALSE_ALARM, FilterDiverged, FitProblem, ModelFit, fit_model, held_at_prior, significant
 from .dynamics_params import ModelLayout, ModelPrior, model_prior
 from .dynamics_search import OPENING_WINDOWS, choose_opening
 from .dynamics_smooth import consider_changes, smoothed_run, with_consider
@@ -51,7 +52,7 @@ from .initial import InitialState
 from .kernels import MODE_DYNAMICS
 from .noise import resolve_noise
 from .run import extract_track
-from .types import AttitudeHistory, FilterStart, NoiseModel, PassInputs
+from .types import AttitudeHistory, DynamicsModel, FilterStart, NoiseModel, PassInputs
 
 __all__ = ["DynamicsResult", "reconstruct_dynamics", "estimate_dynamics"]
 
@@ -175,9 +176,36 @@ def reconstruct_dynamics(inputs: PassInputs, noise: NoiseModel, inertia: np.ndar
     init = choice.init
     start = FilterStart(init.method, init.window_s, np.rad2deg(init.sigma_att_rad).tolist(), run.smoother_bad,
                         init.fit, init.carried_back_s, rate0_dps=np.rad2deg(init.v).tolist())
+    model = None if fit is None else model_figures(fit, free, schedule is not None, choice.candidates)
     hist = AttitudeHistory(t_mag_ns.astype("datetime64[ns]"), smoothed, forward, run.nis[usable],
-                           t_mag_ns[usable].astype("datetime64[ns]"), "dynamics", "", (), noise, source, start)
+                           t_mag_ns[usable].astype("datetime64[ns]"), "dynamics", "", (), noise, source, start,
+                           model=model)
     return DynamicsResult(hist, fit, schedule, choice.candidates)
+
+
+def model_figures(fit: ModelFit, free: np.ndarray, coils: bool, openings: int) -> DynamicsModel:
+    """The fitted model's figures with their 1-sigma (first-order propagation of the fit's covariance;
+    the inertia's by central differences of the inertia in the shape parameters)."""
+    lay, p, cov = ModelLayout, fit.params, fit.covariance
+    sig = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    shape = list(range(lay.MOMENTS.start, lay.TILT.stop))
+    jac = np.empty((9, len(shape)))
+    for col, i in enumerate(shape):
+        h = 1e-6
+        up, dn = p.copy(), p.copy()
+        up[i] += h
+        dn[i] -= h
+        jac[:, col] = (fit.prior.inertia(up) - fit.prior.inertia(dn)).ravel() / (2.0 * h)
+    j_var = np.einsum("ij,jk,ik->i", jac, cov[np.ix_(shape, shape)], jac)
+    gains = ModelPrior.coil_gains(p) if coils else None
+    return DynamicsModel(
+        fitted=bool(fit.accepted), likelihood_ratio=float(fit.likelihood_ratio),
+        threshold=float(chi2.ppf(1.0 - FIT_FALSE_ALARM, len(free))), free=int(len(free)),
+        inertia_kg_m2=fit.prior.inertia(p), inertia_sigma_kg_m2=np.sqrt(np.clip(j_var, 0.0, None)).reshape(3, 3),
+        residual_dipole_Am2=ModelPrior.residual_dipole(p), residual_dipole_sigma_Am2=sig[lay.DIPOLE].copy(),
+        coil_gain=gains, coil_gain_sigma=None if gains is None else gains * sig[lay.COIL_GAIN],
+        latency_s=ModelPrior.latency(p) if coils else None, latency_sigma_s=float(sig[lay.LATENCY]) if coils else None,
+        openings=int(openings))
 
 
 def estimate_dynamics(inputs: PassInputs, noise: NoiseModel, inertia: np.ndarray, coil_t_utc: np.ndarray | None,

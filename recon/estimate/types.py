@@ -20,6 +20,7 @@ from scipy import stats
 
 from ..core import NT_PER_UNIT, RAD_S_PER_UNIT, InputError, utc_text
 from .alignment import AlignmentResult
+from .dynamics_figures import DynamicsModel
 
 __all__ = ["NoiseModel", "Track", "PassInputs", "GyroClipping", "GyroAllanFigures", "NoiseSource", "OpeningFit",
            "FilterStart", "AttitudeHistory"]
@@ -302,6 +303,7 @@ class AttitudeHistory:
     noise_source : NoiseSource, where each level came from
     init : FilterStart, how the filter was started
     alignment : AlignmentResult or None, the sensors' alignment found in gyro mode
+    model : DynamicsModel or None, the rigid-body model dynamics mode used (fitted or the mission file's)
     """
 
     time_utc: np.ndarray
@@ -317,6 +319,7 @@ class AttitudeHistory:
     init: FilterStart
     nis_dof: int = 3
     alignment: AlignmentResult | None = None
+    model: DynamicsModel | None = None
 
     @property
     def q_body_from_gcrf(self) -> np.ndarray:
@@ -378,4 +381,5 @@ class AttitudeHistory:
             "noise": {k: (None if v is None else float(v)) for k, v in dataclasses.asdict(self.noise).items()},
             "noise_source": self.noise_source.to_summary(),
             "init": self.init.to_summary(),
+            **({} if self.model is None else {"dynamics_model": self.model.to_summary()}),
         }

@@ -164,12 +164,79 @@ def _section_magnetometer(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     if isinstance(agree, Mapping) and agree.get("agree") is not None:
         parts.append(f"<p>The two independent crosstalk estimates {'agree' if agree['agree'] else 'do NOT agree'}"
                      f" within their uncertainty (p = {_num(agree.get('p_value'), '.2g')}).</p>")
+    parts.append(_alignment_part(cal))
     und = cal.get("undetermined") or {}
     items = und.items() if isinstance(und, Mapping) else ((None, r) for r in und)
     for name, reason in items:
         parts.append(f'<p class="skip">Undetermined{" " + _e(name) if name else ""}: {_e(reason)}</p>')
     parts.append(_figures(figs, "magnetometer"))
     return "".join(parts)
+
+
+def _pm(values: Any, sigmas: Any, spec: str = ".3f") -> str:
+    """'a ± s' per axis (x, y, z) or one 'a ± s'."""
+    if isinstance(values, list | tuple):
+        sigmas = sigmas if isinstance(sigmas, list | tuple) else [None] * len(values)
+        return ", ".join(f"{ax} {_num(v, spec)} &plusmn; {_num(sd, '.2g')}"
+                         for ax, v, sd in zip(AXES, values, sigmas, strict=False))
+    return f"{_num(values, spec)} &plusmn; {_num(sigmas, '.2g')}"
+
+
+def _alignment_part(cal: Mapping[str, Any]) -> str:
+    """The magnetometer's alignment to the body, its time-tag offset and the gyro's scale, as
+    estimated on the pass (with 1-sigma) or taken from the mission file."""
+    rows = []
+    if cal.get("misalignment_deg") is not None:
+        rows.append(["Magnetometer misalignment to the body (deg, small angles about body x, y, z)",
+                     _pm(cal["misalignment_deg"], cal.get("misalignment_deg_sigma")),
+                     _e(cal.get("misalignment_source", ""))])
+    if cal.get("time_offset_s") is not None:
+        rows.append(["Magnetometer time-tag offset (s, positive: stamped late)",
+                     _pm(cal["time_offset_s"], cal.get("time_offset_s_sigma")),
+                     _e(f"{cal.get('time_offset_method', '')}: {cal.get('time_offset_note', '')}".strip(": "))])
+    if cal.get("gyro_scale") is not None:
+        diag = [row[i] for i, row in enumerate(cal["gyro_scale"])]
+        sd = cal.get("gyro_scale_sigma")
+        rows.append(["Gyro scale-factor error (diagonal of the scale and skew matrix)",
+                     _pm(diag, None if sd is None else [row[i] for i, row in enumerate(sd)], ".4f"),
+                     _e(cal.get("gyro_scale_note", ""))])
+    elif cal.get("gyro_scale_note"):
+        rows.append(["Gyro scale factor and skew", "not estimated", _e(cal["gyro_scale_note"])])
+    if not rows:
+        return ""
+    return "<p>Alignment and timing, with 1-sigma:</p>" + _table(["quantity", "value", "source"], rows)
+
+
+def _model_part(est: Mapping[str, Any]) -> str:
+    """The unmodelled field's level and, in dynamics mode, the rigid-body model, with 1-sigma."""
+    rows = []
+    noise, src = est.get("noise") or {}, est.get("noise_source") or {}
+    if noise.get("field_model_nT") is not None:
+        iv = src.get("field_model_nT_interval_68")
+        rows.append(["Unmodelled field, level used (nT per axis)", _num(noise["field_model_nT"], ".0f"),
+                     _e(src.get("field_model_nT", "")) + ("" if iv is None else
+                                                           f"; 68 % interval of the fit {_num(iv[0], '.0f')}"
+                                                           f"&ndash;{_num(iv[1], '.0f')} nT")])
+    dm = est.get("dynamics_model")
+    if isinstance(dm, Mapping):
+        src_txt = _e(dm.get("source", "")) + (f" (likelihood ratio {_num(dm.get('likelihood_ratio'), '.1f')}"
+                                              f" against {_num(dm.get('likelihood_ratio_threshold'), '.1f')})")
+        j, js = dm.get("inertia_kg_m2"), dm.get("inertia_kg_m2_sigma")
+        if j is not None:
+            rows.append(["Principal-axis inertia terms Jxx, Jyy, Jzz (kg m², at the mission file's trace)",
+                         _pm([j[i][i] for i in range(3)], None if js is None else [js[i][i] for i in range(3)],
+                             ".5f"), src_txt])
+        rows.append(["Residual dipole (A m², body)", _pm(dm.get("residual_dipole_Am2"),
+                                                         dm.get("residual_dipole_Am2_sigma"), ".4f"), src_txt])
+        if dm.get("coil_gain") is not None:
+            rows.append(["Coil dipole per amp over the mission file's", _pm(dm["coil_gain"], dm.get("coil_gain_sigma")),
+                         src_txt])
+        if dm.get("latency_s") is not None:
+            rows.append(["Actuation latency after the control tick (s)",
+                         _pm(dm["latency_s"], dm.get("latency_s_sigma")), src_txt])
+    if not rows:
+        return ""
+    return "<p>Models estimated on this pass, with 1-sigma:</p>" + _table(["quantity", "value", "source"], rows)
 
 
 def _flatten(d: Mapping[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
@@ -198,7 +265,7 @@ def _section_attitude(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
     rows = [[_e(k), _value(v)] for k, v in _flatten(main)]
     rest = {k: v for k, v in est.items() if k not in ("mode", "mode_reason", "accuracy", "consistency")}
     detail = "".join(f"<tr><td>{_e(k)}</td><td>{_value(v)}</td></tr>" for k, v in _flatten(rest))
-    return ("<h2>Attitude and rate</h2>" + head + _table(["figure", "value"], rows)
+    return ("<h2>Attitude and rate</h2>" + head + _table(["figure", "value"], rows) + _model_part(est)
             + _figures(figs, "attitude")
             + f"<details><summary>Filter settings and start-up</summary><table>{detail}</table></details>")
 

@@ -38,6 +38,18 @@ def _whiten(innov, s00, s01, s02, s11, s12, s22, white):
 
 
 @njit(cache=True, error_model="numpy")
+def _no_update(q, v, db, qn, vn, dbn, white):
+    """The state carried through unchanged and the whitened innovation marked NaN; returns NaN (no NIS)."""
+    for i in range(4):
+        qn[i] = q[i]
+        white[i] = np.nan
+    for i in range(3):
+        vn[i] = v[i]
+        dbn[i] = db[i]
+    return np.nan
+
+
+@njit(cache=True, error_model="numpy")
 def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, white):
     """Vector update in place (work arrays a (3, 3), pht (N, 3), kg (N, 3), dx (N,)); returns NIS.
 
@@ -45,14 +57,11 @@ def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, 
     ``L^-1 (z - h(x))`` with ``S = L L^T`` (Cholesky), whose squared length is the NIS, then
     ``log det S`` (S in nT^2): the two terms of the update's contribution to -2 log-likelihood.
 
-    ``h(x) = A(q) (b_ref + db)``, ``H = [[h x], 0, A]``, ``R = sig_m^2 I``. The covariance update is Joseph's form
-    ``(I - K H) P (I - K H)^T + K R K^T``, evaluated as ``P - K (H P) - (K (H P))^T + K S K^T``, which
-    is the same expression multiplied out (valid for any gain K) at a third of the cost.
-    """
+    ``h(x) = A(q) (b_ref + db)``, ``H = [[h x], 0, A]``, ``R = sig_m^2 I``. Joseph's covariance update
+    ``(I - K H) P (I - K H)^T + K R K^T``, multiplied out as ``P - K (H P) - (K (H P))^T + K S K^T``
+    (valid for any gain K, a third of the cost). An S that is not positive definite: no update, NaN."""
     attitude_matrix_into(q, a)
-    r0 = b_ref[0] + db[0]
-    r1 = b_ref[1] + db[1]
-    r2 = b_ref[2] + db[2]
+    r0, r1, r2 = b_ref[0] + db[0], b_ref[1] + db[1], b_ref[2] + db[2]
     h0 = a[0, 0] * r0 + a[0, 1] * r1 + a[0, 2] * r2
     h1 = a[1, 0] * r0 + a[1, 1] * r1 + a[1, 2] * r2
     h2 = a[2, 0] * r0 + a[2, 1] * r1 + a[2, 2] * r2
@@ -92,14 +101,8 @@ def update_into(q, v, db, p, z, b_ref, prm, innov, qn, vn, dbn, a, pht, kg, dx, 
     c01 = s02 * s12 - s01 * s22
     c02 = s01 * s12 - s02 * s11
     det = s00 * c00 + s01 * c01 + s02 * c02
-    if not det > 0.0:  # S lost positive definiteness (a diverged state): no update, marked NaN
-        for i in range(4):
-            qn[i] = q[i]
-            white[i] = np.nan
-        for i in range(3):
-            vn[i] = v[i]
-            dbn[i] = db[i]
-        return np.nan
+    if not det > 0.0:  # a diverged state
+        return _no_update(q, v, db, qn, vn, dbn, white)
     i00 = c00 / det
     i01 = c01 / det
     i02 = c02 / det
