@@ -10,11 +10,11 @@ import argparse
 import sys
 from pathlib import Path
 
-from .core import InputError
+from .core import InputError, __version__
 
 __all__ = ["main", "EXIT_OK", "EXIT_CRITICAL", "EXIT_BAD_INPUT"]
 
-EXIT_OK, EXIT_CRITICAL, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_CRITICAL, EXIT_BAD_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
 
 
 class _Parser(argparse.ArgumentParser):
@@ -185,6 +185,15 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("recon: interrupted", file=sys.stderr)
         return 130
+    except Exception as e:  # a fault of recon itself: one line, never a traceback, never exit 1
+        where = e.__traceback__
+        while where is not None and where.tb_next is not None:
+            where = where.tb_next
+        at = "" if where is None else f" at {Path(where.tb_frame.f_code.co_filename).name}:{where.tb_lineno}"
+        print(f"recon: internal error: {type(e).__name__}: {' '.join(str(e).split())}{at} (recon {__version__}); "
+              "this is a fault in recon, not in your data or spacecraft: please report it with the mission file "
+              "and the logs", file=sys.stderr)
+        return EXIT_INTERNAL
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -148,3 +148,21 @@ def test_pass_longer_than_its_position_log_keeps_going(tmp_path):
     assert res.summary["estimate"] is not None
     frac = [a.value for a in res.anomalies if a.code == "reference_incomplete"][0] / res.summary["estimate"]["samples"]
     assert 0.05 < frac < 0.2  # ~20 s of 180 s
+
+
+def test_internal_error_is_one_line_and_exit_3(monkeypatch, capsys, mission_dir):
+    """A fault of recon itself (here a stage made to fail) never shows a traceback nor exit 1 (which
+    means a critical finding): one line naming the error and where, a hint to report it, exit 3."""
+    import recon.pipeline
+    from recon.cli import main
+
+    def broken(*args, **kwargs):
+        raise IndexError("index 0 is out of bounds for axis 0 with size 0")
+
+    monkeypatch.setattr(recon.pipeline, "_estimate", broken)
+    code = main(["run", str(mission_dir / "mission.toml"), "--out", str(mission_dir / "out")])
+    err = capsys.readouterr().err
+    assert code == 3
+    assert "Traceback" not in err
+    assert len(err.strip().splitlines()) == 1
+    assert err.startswith("recon: internal error: IndexError") and "please report" in err
