@@ -153,6 +153,24 @@ def crosstalk_scores(summary: dict, truth: dict) -> dict:
     return out
 
 
+def alignment_scores(summary: dict, truth: dict) -> dict:
+    """The magnetometer's estimated misalignment (small angles, body from magnetometer) and time-tag
+    offset against the simulator's: error and its chi-square against the stated sigma."""
+    cal, mag = summary.get("calibration") or {}, truth["magnetometer"]
+    out: dict = {}
+    est, sig = cal.get("misalignment_deg"), cal.get("misalignment_deg_sigma")
+    if est is not None and mag.get("misalignment_body_deg") is not None:
+        d = np.asarray(est, float) - np.asarray(mag["misalignment_body_deg"], float)
+        out["misalignment_error_deg"] = float(np.linalg.norm(d))
+        out["misalignment_source"] = cal.get("misalignment_source")
+        if sig is not None and all(v > 0 for v in sig):
+            out["misalignment_chi2"] = float(np.sum((d / np.asarray(sig, float)) ** 2))
+    if cal.get("time_offset_s") is not None and mag.get("time_offset_s") is not None:
+        out["time_offset_error_s"] = float(cal["time_offset_s"] - mag["time_offset_s"])
+        out["time_offset_method"] = cal.get("time_offset_method")
+    return out
+
+
 def oracle_scores(sim, mission_path: Path) -> dict:
     """The same filter given the truth of what recon estimates: the magnetometer calibrated with the
     true bias, soft iron, crosstalk and misalignment, stamped at the true instants; the gyro with its
@@ -218,6 +236,7 @@ def score_pass(family: Family, seed: int, duration_s: float | None, oracle: bool
             if s.get("estimate") is not None:
                 rec.update(attitude_scores(res.out_dir, d / "pass" / "truth"))
             rec.update(crosstalk_scores(s, truth))
+            rec.update(alignment_scores(s, truth))
             if oracle:
                 rec.update(oracle_scores(sim, d / "pass" / "mission.toml"))
     except Exception as exc:  # a crash is a result too: it is counted, not hidden
@@ -302,6 +321,17 @@ def figures(records: list[dict]) -> dict:
                 f["oracle_attitude_rms_deg_median"] = float(np.median([r["oracle_attitude_rms_deg"] for r in orc]))
                 f["attitude_over_oracle_median"] = float(np.median([r["attitude_rms_deg"] / r["oracle_attitude_rms_deg"]
                                                                     for r in orc]))
+        mis = [r for r in rs if "misalignment_error_deg" in r]
+        if mis:
+            f["misalignment_error_deg_median"] = float(np.median([r["misalignment_error_deg"] for r in mis]))
+            f["misalignment_error_deg_max"] = float(np.max([r["misalignment_error_deg"] for r in mis]))
+            chi = [r["misalignment_chi2"] for r in mis if "misalignment_chi2" in r]
+            if chi:
+                f["misalignment_chi2_mean_per_dof"] = float(np.mean(chi) / 3.0)
+        tof = [abs(r["time_offset_error_s"]) for r in rs if "time_offset_error_s" in r]
+        if tof:
+            f["time_offset_abs_error_s_median"] = float(np.median(tof))
+            f["time_offset_abs_error_s_max"] = float(np.max(tof))
         kk = [r for r in rs if r.get("crosstalk_determined")]
         f["crosstalk_determined"] = len(kk)
         if kk:
@@ -347,6 +377,12 @@ def print_figures(fig: dict, old: dict | None = None) -> None:
               f"{_fmt(f.get('oracle_attitude_rms_deg_median')):>8}{_fmt(f.get('rate_rms_dps_median'), '.3f'):>8}"
               f"{_fmt(f.get('crosstalk_rel_error_median')):>7}"
               f"{_fmt(f.get('crosstalk_chi2_mean_per_dof'), '.1f'):>9}{f['seconds_mean']:>7.0f}")
+        if "misalignment_error_deg_median" in f or "time_offset_abs_error_s_median" in f:
+            print(f"{'':<20}misalignment |error| median {_fmt(f.get('misalignment_error_deg_median'), '.3f')} deg"
+                  f" (max {_fmt(f.get('misalignment_error_deg_max'), '.3f')}, chi2/3 "
+                  f"{_fmt(f.get('misalignment_chi2_mean_per_dof'), '.1f')}); time offset |error| median "
+                  f"{_fmt(f.get('time_offset_abs_error_s_median'), '.3f')} s "
+                  f"(max {_fmt(f.get('time_offset_abs_error_s_max'), '.3f')})")
         if "latency_abs_error_s" in f:
             le = f["latency_abs_error_s"]
             print(f"{'':<20}latency |error| median {_fmt(le['median'])} s, max {_fmt(le['max'])} s over {le['n']}")
