@@ -106,7 +106,8 @@ def test_nearest_rows_join_within_half_an_interval():
 def test_chatter_passes_of_the_scorecard_run_to_a_verdict(tmp_path, seed):
     """The two chatter passes (seeds 72000, 72001 of the scorecard's chatter family) that crashed the
     run: the first on the alignment fit's time offset (stamps merging), the second in dynamics mode
-    (a diverging opening). Both now end with the chatter found. Slow: 30 s and 2 min."""
+    (a diverging opening; then, in gyro mode, on the consider runs' row count). Both now end with the
+    chatter found and the gyro not called dead. Slow: 30 s and 1 min."""
     from recon.pipeline import run_pass
     from recon.simulate import simulate_pass
 
@@ -115,4 +116,8 @@ def test_chatter_passes_of_the_scorecard_run_to_a_verdict(tmp_path, seed):
     s = run_pass(tmp_path / "pass" / "mission.toml", tmp_path / "rep", report=False).summary
     assert s["estimate"] is not None
     assert s["controller"]["verdict"] == "not_as_intended"
-    assert "crosstalk_feedback" in {a["code"] for a in s["anomalies"]}
+    codes = {a["code"] for a in s["anomalies"]}
+    assert "crosstalk_feedback" in codes
+    # the crosstalk left in the field spoils the gyro's kinematic test, but the gyro still carries the
+    # turn in every part of the pass: untestable, not dead (seed 72001 was called dead before)
+    assert "gyro_dead" not in codes

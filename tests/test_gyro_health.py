@@ -93,6 +93,46 @@ def test_stuck_gyro_while_tumbling_is_dead(seed):
     assert h.dead_start_s == pytest.approx(400.0, abs=0.1)
 
 
+def _tumble(t):
+    """2 deg/s about an axis that precesses once in 700 s (the rate never settles, so a constant
+    reading never fits a part of the pass)."""
+    ang = 2.0 * np.pi * t / 700.0
+    ax = np.stack([np.cos(ang), np.sin(ang), np.full_like(t, 0.5)], axis=-1)
+    return 2.0 * DEG * ax / np.linalg.norm(ax, axis=-1, keepdims=True)
+
+
+def _switching_disturbance(tm, size_nT=3000.0, period_s=1.0, seed=9):
+    """A field error that jumps at every control tick, as coil crosstalk sampled with the coils on
+    and left in the calibrated field: (N, 3) nT, constant over each period."""
+    rng = np.random.default_rng(seed)
+    k = np.floor(tm / period_s).astype(int)
+    return size_nT * rng.normal(size=(k.max() + 1, 3))[k]
+
+
+def test_live_gyro_in_a_field_disturbed_at_every_tick_is_not_dead():
+    """The chatter case of the scorecard: a healthy gyro while the sensed field jumps by 3000 nT rms at
+    every control tick (crosstalk left in it). No bias fits the field's motion, but in every quarter
+    of the pass the gyro explains the field's turn far better than a constant reading: "untestable",
+    never "dead". The same disturbance with the gyro at zero stays "dead"."""
+    tm, b, ref, tg, w = _pass(6, _tumble)
+    noisy = b + _switching_disturbance(tm)
+    h = assess_gyro(tg, _gyro(tg, w, 6), tm, noisy, ref)
+    assert h.health == "untestable", h.reason
+    assert "far better than a constant" in h.reason
+    dead = assess_gyro(tg, _gyro(tg, np.zeros_like(w), 6), tm, noisy, ref)
+    assert dead.health == "dead", dead.reason
+
+
+def test_gyro_dead_over_the_last_half_is_still_dead():
+    """A gyro that reads zero from half-way on fails the per-part comparison in the parts where it is
+    dead (it fits there exactly as a constant does): "dead"."""
+    tm, b, ref, tg, w = _pass(7, _tumble)
+    wg = _gyro(tg, w, 7)
+    wg[tg > 600.0] = 0.0
+    h = assess_gyro(tg, wg, tm, b + _switching_disturbance(tm, 1000.0), ref)
+    assert h.health == "dead", h.reason
+
+
 def test_frozen_noisy_gyro_while_tumbling_fails_the_kinematics():
     """A gyro whose output is noise about a constant (no exact repeats, so the stuck test cannot see
     it) while the body detumbles: no bias and no step fit the field's motion, the power against a dead

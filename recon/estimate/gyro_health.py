@@ -57,6 +57,11 @@ POWER_MIN = 0.99
 BIAS_WALK_RAD_S_SQRT_S = 2e-4 / DEG_PER_RAD
 # Independent slopes needed for the kinematic test (about five minutes of data).
 MIN_SAMPLES = 30
+# Parts of the pass in each of which a misfitting gyro must still carry the body's turn to be called
+# alive rather than dead (a gyro dead over a quarter of the pass or more fails in that part).
+SEGMENTS = 4
+# Slopes each part needs: twice the fit's twelve unknowns (bias and scale-misalignment matrix).
+PART_MIN_SAMPLES = 24
 # Stuck output: a run of identical values this long and this share of the log (a live gyro's noise
 # of 0.004 deg/s/sqrt(Hz) never repeats a value twice in a row at 20 Hz) (common practice, no source).
 STUCK_MIN_S = 30.0
@@ -248,8 +253,41 @@ def _decide(fm: FieldMotion, dense: FieldMotion, bias0_sigma: float, bias_walk: 
     why = (f"a bias of {np.linalg.norm(one.beta) * DEG_PER_RAD:.2f} deg/s would be needed (turn-on bias 1-sigma "
            f"{bias0_sigma * DEG_PER_RAD:.2f} deg/s, p = {p_prior:.2g})" if p_prior < ALPHA else
            "neither one bias nor two fit")
+    alive = _follows_the_turn(fm, one)
+    if alive is not None:
+        return GyroHealth("untestable", f"gyro does not fit the field's motion ({why}), yet in every part of the pass "
+                                        f"it explains the field's turn far better than a constant reading would "
+                                        f"({alive}): the field carries a disturbance the calibration left (coil "
+                                        f"crosstalk sampled with the coils on, say), not a dead gyro; {figures}.",
+                          **base)
     return GyroHealth("dead", f"gyro output does not follow the measured field's motion: {why}; {figures}.",
                       dead_start_s=float(fm.t_s[0]), dead_stop_s=float(fm.t_s[-1]), **base)
+
+
+def _follows_the_turn(fm: FieldMotion, one: LengthFit) -> str | None:
+    """Whether the gyro carries the body's turn in each of ``SEGMENTS`` consecutive parts of the pass
+    although the model misfits: in each, the fit with the gyro against the same fit with the gyro
+    replaced by its mean reading over that part, both at the whole pass's noise level. The gain in
+    chi-square, in units of the gyro fit's own chi-square per degree of freedom (its misfit), must
+    exceed the chi-square quantile of 3 degrees of freedom at ``ALPHA``. A dead gyro (zero or constant
+    output) fits exactly as the constant does in the parts where it is dead, so it never passes.
+    Returns the figures when it passes in every part, else None."""
+    parts = np.array_split(np.arange(len(fm.t_s)), SEGMENTS)
+    if min(len(p) for p in parts) < PART_MIN_SAMPLES:
+        return None
+    crit = float(stats.chi2.isf(ALPHA, 3))
+    gains = []
+    for idx in parts:
+        seg = fm.take(idx)
+        live = fit_lengths(seg, noise_level=one.noise_level)
+        const = fit_lengths(seg, noise_level=one.noise_level,
+                            w_gyro_rad_s=np.broadcast_to(seg.w_gyro_rad_s.mean(axis=0), seg.w_gyro_rad_s.shape))
+        unit = max(live.chi2 / max(live.dof, 1), 1.0)
+        gains.append((const.chi2 - live.chi2) / unit)
+        if not gains[-1] > crit:
+            return None
+    return (f"scaled chi-square gain over a constant reading {', '.join(f'{g:.0f}' for g in gains)} in its "
+            f"{SEGMENTS} parts, each above {crit:.1f}")
 
 
 def _fmt_dps(v: np.ndarray) -> str:

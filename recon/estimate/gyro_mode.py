@@ -173,7 +173,11 @@ def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
     Every run starts from the solution's start with its bias step, so the runs differ only by the
     corrections (not by where the iterated solution happened to start)."""
 
+    n_mag = len(inputs.t_mag_ns)
+
     def one(c: Corrections) -> tuple[np.ndarray, np.ndarray]:
+        # by magnetometer row (NaN before the run's first): a moved time-tag offset can move the first
+        # row the filter uses
         fixed = corrected_inputs(inputs, c)
         g = step_grid(fixed)
         out_idx = np.full(len(g.t_s), -1, np.int64)
@@ -182,13 +186,23 @@ def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
                          len(g.mag_pos))
         w_out, _ = _rates(GyroSolution(fixed, g, sol.init, run, sol.step), rate_window_s)
         q = run.q_s[g.mag_pos]
-        return np.where(q[:, 3:4] < 0, -q, q), w_out - run.v_s[g.mag_pos]
+        rows = g.first_row + np.arange(len(g.mag_pos))
+        q_rows, w_rows = np.full((n_mag, 4), np.nan), np.full((n_mag, 3), np.nan)
+        q_rows[rows] = np.where(q[:, 3:4] < 0, -q, q)
+        w_rows[rows] = w_out - run.v_s[g.mag_pos]
+        return q_rows, w_rows
 
+    q0, w0 = one(corr)
+    keep = np.isfinite(q0).all(axis=1)
     out = []
     for layout, cov in blocks:
         chol = np.linalg.cholesky(cov + 1e-30 * np.eye(len(cov)))
-        out += [one(corr.moved(chol[:, j], layout)) for j in range(len(cov))]
-    return one(corr), out
+        for j in range(len(cov)):
+            q, w = one(corr.moved(chol[:, j], layout))
+            missing = ~np.isfinite(q).all(axis=1)  # rows this run did not reach: no change counted
+            q[missing], w[missing] = q0[missing], w0[missing]
+            out.append((q[keep], w[keep]))
+    return (q0[keep], w0[keep]), out
 
 
 def _consider_blocks(fit: AlignmentFit, prior: AlignmentPrior) -> list[tuple[tuple[str, ...], np.ndarray]]:
