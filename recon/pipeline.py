@@ -18,7 +18,7 @@ import numpy as np
 from .calibrate import calibrate_pass, format_crosstalk_table, mag_time_offset
 from .clean import clean_pass
 from .config import Mission, load_mission
-from .core import RAD_S_PER_UNIT, Anomaly, InputError, __version__
+from .core import RAD_S_PER_UNIT, Anomaly, InputError, __version__, nearest_rows
 from .estimate import AlignmentPrior, CoilTiming, FilterDiverged, NoiseModel, estimate_attitude
 from .field import reference_field
 from .judge import judge_pass
@@ -197,20 +197,6 @@ def _gyro_full_scale(mission: Mission) -> float | None:
     return None if g is None or g.full_scale is None else float(g.full_scale) * RAD_S_PER_UNIT[g.unit]
 
 
-def _nearest_rows(t_ref: np.ndarray, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Index of the nearest row of ``t_ref`` (sorted datetime64) for each of ``t``, and whether it lies
-    within half of ``t_ref``'s median interval."""
-    ref = np.asarray(t_ref, "datetime64[ns]").astype(np.int64)
-    x = np.asarray(t, "datetime64[ns]").astype(np.int64)
-    if len(ref) == 0:
-        return np.zeros(len(x), np.int64), np.zeros(len(x), bool)
-    hi = np.clip(np.searchsorted(ref, x), 0, len(ref) - 1)
-    lo = np.clip(hi - 1, 0, len(ref) - 1)
-    k = np.where(np.abs(ref[lo] - x) <= np.abs(ref[hi] - x), lo, hi)
-    half = 0.5 * float(np.median(np.diff(ref))) if len(ref) > 1 else 0.0
-    return k, np.abs(ref[k] - x) <= half
-
-
 def _judge(mission: Mission, cleaned, cal, ref, hist):
     mag = cleaned.magnetometer
     m_stb = mission.magnetometer.sensor_to_body
@@ -220,7 +206,7 @@ def _judge(mission: Mission, cleaned, cal, ref, hist):
     # field by time, then judge the motion where the rate, the attitude and the reference all exist
     # (nearest row within half an interval: the estimator may have moved the instants by the residual
     # time-tag offset it fitted)
-    k, near = _nearest_rows(ref.time_utc, hist.time_utc)
+    k, near = nearest_rows(ref.time_utc, hist.time_utc)
     b_ref, r_ref = ref.b_gcrf_nT[k], ref.r_gcrf_km[k]
     sel = (near & np.isfinite(b_ref).all(axis=1) & np.isfinite(r_ref).all(axis=1)
            & np.isfinite(hist.w_body_rad_s).all(axis=1) & np.isfinite(hist.q_body_from_gcrf).all(axis=1))

@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 from test_estimate_truth import INERTIA, make_truth
 
+from recon.core import nearest_rows
 from recon.estimate import FilterDiverged, NoiseModel
 from recon.estimate.dynamics_fit import forward_run
 from recon.estimate.dynamics_mode import _problem
@@ -28,7 +29,6 @@ from recon.estimate.nuisance import Corrections
 from recon.estimate.run import filter_params
 from recon.estimate.step_grid import step_grid
 from recon.estimate.types import PassInputs
-from recon.pipeline import _nearest_rows
 
 DEG = np.pi / 180.0
 NOISE = NoiseModel(mag_nT=100.0, gyro_arw_rad_sqrt_s=0.004 * DEG, gyro_bias_walk_rad_s_sqrt_s=1e-4 * DEG,
@@ -94,9 +94,10 @@ def test_dynamics_filter_from_a_wild_opening_raises_filter_diverged():
 
 
 def test_nearest_rows_join_within_half_an_interval():
+    # the judge joins the rate history to the reference field this way
     ref = np.datetime64("2026-07-14T09:12:00", "ns") + np.arange(5) * np.timedelta64(100, "ms")
     t = ref + np.timedelta64(10, "ms")
-    k, near = _nearest_rows(ref, np.r_[t, ref[-1] + np.timedelta64(80, "ms")])
+    k, near = nearest_rows(ref, np.r_[t, ref[-1] + np.timedelta64(80, "ms")])
     np.testing.assert_array_equal(k, [0, 1, 2, 3, 4, 4])
     np.testing.assert_array_equal(near, [True] * 5 + [False])
 

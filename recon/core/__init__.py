@@ -57,7 +57,15 @@ from .frames import (
     utc_to_jd,
 )
 from .laws import bdot_dipole, cross_product_dipole, currents_from_dipole
-from .signal import held_integral, held_mean, local_slope, robust_scale, white_noise_from_differences, window_mean
+from .signal import (
+    held_integral,
+    held_mean,
+    local_slope,
+    nearest_rows,
+    robust_scale,
+    white_noise_from_differences,
+    window_mean,
+)
 from .timetext import seconds_since, utc_at, utc_text, utc_texts
 from .version import __version__
 
@@ -75,6 +83,7 @@ __all__ = [
     "effective_current", "held_values", "in_off_window", "in_off_window_utc", "infer_first_tick",
     "mean_dipole_over_steps", "tick_phase",
     "held_integral", "held_mean", "local_slope", "robust_scale", "white_noise_from_differences", "window_mean",
+    "nearest_rows",
     "utc_text", "utc_texts", "seconds_since", "utc_at", "cross_matrices", "__version__",
     "bdot_dipole", "cross_product_dipole", "currents_from_dipole",
 ]

@@ -16,7 +16,7 @@ import numpy as np
 from scipy.stats import median_abs_deviation
 
 __all__ = ["local_slope", "window_mean", "held_integral", "held_mean", "robust_scale",
-           "white_noise_from_differences"]
+           "white_noise_from_differences", "nearest_rows"]
 
 
 def local_slope(t: np.ndarray, x: np.ndarray, half_width_s: float) -> np.ndarray:
@@ -143,3 +143,25 @@ def white_noise_from_differences(x: np.ndarray) -> float:
     d2 = a[2:] - 2.0 * a[1:-1] + a[:-2]
     s = robust_scale(d2, axis=0) / np.sqrt(6.0)
     return float(np.sqrt(np.mean(s ** 2)))
+
+
+def nearest_rows(t_ref: np.ndarray, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Index of the nearest row of ``t_ref`` for each of ``t``, and whether it lies within half of
+    ``t_ref``'s median interval (times numeric, or datetime64 taken in ns; ``t_ref`` increasing).
+
+    Returns
+    -------
+    (M,) int64 indices (0 where ``t_ref`` is empty); (M,) bool
+    """
+    def ticks(x):
+        x = np.asarray(x)
+        return x.astype("datetime64[ns]").astype(np.int64) if x.dtype.kind == "M" else x.astype(float)
+
+    ref, x = ticks(t_ref), ticks(t)
+    if len(ref) == 0:
+        return np.zeros(len(x), np.int64), np.zeros(len(x), bool)
+    hi = np.clip(np.searchsorted(ref, x), 0, len(ref) - 1)
+    lo = np.clip(hi - 1, 0, len(ref) - 1)
+    k = np.where(np.abs(ref[lo] - x) <= np.abs(ref[hi] - x), lo, hi)
+    half = 0.5 * float(np.median(np.diff(ref))) if len(ref) > 1 else 0.0
+    return k, np.abs(ref[k] - x) <= half
