@@ -138,12 +138,8 @@ def _likelihood(inputs: PassInputs, sol: GyroSolution, prm: np.ndarray) -> Calla
     n_mag = len(inputs.t_mag_ns)
 
     def per_row(g: StepGrid) -> np.ndarray:
-        # innovations by magnetometer row, not by step: a time-tag shift can move a row onto a gyro
-        # stamp (the steps merge) or out of the gyro's span, which changes the number of steps
         white = forward_innovations(MODE_GYRO, g.t_s, _step_u(g, sol.step), g.is_mag, g.z, g.r, prm, sol.init)
-        rows = np.full((n_mag, 3), np.nan)
-        rows[g.first_row + np.arange(len(g.mag_pos))] = white[g.mag_pos]
-        return rows
+        return _by_row(g, white[g.mag_pos], n_mag)
 
     keep = np.isfinite(per_row(sol.grid)).all(axis=1)
 
@@ -152,6 +148,16 @@ def _likelihood(inputs: PassInputs, sol: GyroSolution, prm: np.ndarray) -> Calla
         return np.nan_to_num(white[keep]).ravel()
 
     return evaluate
+
+
+def _by_row(g: StepGrid, x_at_mag: np.ndarray, n_rows: int) -> np.ndarray:
+    """Values at the grid's magnetometer steps placed by magnetometer row, NaN on the rows before the
+    grid's first. Runs with different corrections are compared by row, not by step: a time-tag shift
+    can move a row onto a gyro stamp (the steps merge), off one, or out of the gyro's span, which
+    changes the number of steps and the first row used."""
+    out = np.full((n_rows,) + x_at_mag.shape[1:], np.nan)
+    out[g.first_row + np.arange(len(g.mag_pos))] = x_at_mag
+    return out
 
 
 def _step_u(grid: StepGrid, step: BiasStep | None) -> np.ndarray:
@@ -176,8 +182,6 @@ def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
     n_mag = len(inputs.t_mag_ns)
 
     def one(c: Corrections) -> tuple[np.ndarray, np.ndarray]:
-        # by magnetometer row (NaN before the run's first): a moved time-tag offset can move the first
-        # row the filter uses
         fixed = corrected_inputs(inputs, c)
         g = step_grid(fixed)
         out_idx = np.full(len(g.t_s), -1, np.int64)
@@ -186,11 +190,7 @@ def _perturbed(sol: GyroSolution, inputs: PassInputs, corr: Corrections,
                          len(g.mag_pos))
         w_out, _ = _rates(GyroSolution(fixed, g, sol.init, run, sol.step), rate_window_s)
         q = run.q_s[g.mag_pos]
-        rows = g.first_row + np.arange(len(g.mag_pos))
-        q_rows, w_rows = np.full((n_mag, 4), np.nan), np.full((n_mag, 3), np.nan)
-        q_rows[rows] = np.where(q[:, 3:4] < 0, -q, q)
-        w_rows[rows] = w_out - run.v_s[g.mag_pos]
-        return q_rows, w_rows
+        return _by_row(g, np.where(q[:, 3:4] < 0, -q, q), n_mag), _by_row(g, w_out - run.v_s[g.mag_pos], n_mag)
 
     q0, w0 = one(corr)
     keep = np.isfinite(q0).all(axis=1)
