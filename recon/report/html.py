@@ -153,9 +153,7 @@ def _section_magnetometer(s: Mapping[str, Any], figs: Sequence[Figure]) -> str:
                      + ", ".join(f"{ax} {_num(v, '.0f')}" for ax, v in zip(AXES, full, strict=False)) + "</p>")
     bias = cal.get("bias_nT")
     if bias is not None:
-        bs = cal.get("bias_nT_sigma") or [None] * 3
-        parts.append("<p>Bias (nT): " + ", ".join(f"{ax} {_num(b, '.0f')} &plusmn; {_num(sd, '.2g')}"
-                                                 for ax, b, sd in zip(AXES, bias, bs, strict=False)) + "</p>")
+        parts.append("<p>Bias (nT): " + _pm(bias, cal.get("bias_nT_sigma") or None, ".0f") + "</p>")
     res = cal.get("residual_rms_nT") or {}
     if res:
         parts.append(f"<p>|b| against the reference field, RMS: before {_num(res.get('before'), '.0f')} nT, "
