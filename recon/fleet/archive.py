@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import datetime as dt
 import sqlite3
+import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -34,6 +35,7 @@ __all__ = ["Archive", "SCHEMA_VERSION", "BUSY_TIMEOUT_S", "PASS_COLUMNS", "ANY_S
 SCHEMA_VERSION = 1
 # how long a writer waits for another writer's transaction (a pass's rows take milliseconds to write)
 BUSY_TIMEOUT_S = 120.0
+_RETRY_PAUSE_S = 0.05  # between tries to open a file another writer holds (see Archive._prepare)
 ANY_SATELLITE = object()  # ``records(satellite=ANY_SATELLITE)``: every satellite
 
 _FIXED = [("pass_id", "TEXT PRIMARY KEY"), ("satellite", "TEXT"), ("object_id", "TEXT"),
@@ -58,6 +60,12 @@ _SCHEMA = (
     "CREATE INDEX IF NOT EXISTS passes_by_satellite ON passes (satellite, start_utc)",
     "CREATE INDEX IF NOT EXISTS anomalies_by_code ON anomalies (code)",
 )
+
+
+def _busy(e: sqlite3.OperationalError) -> bool:
+    """Whether SQLite refused because another connection holds the file (worth waiting for)."""
+    text = str(e).lower()
+    return "locked" in text or "busy" in text
 
 
 def _now_utc() -> str:
@@ -100,19 +108,34 @@ class Archive:
         except (OSError, sqlite3.Error) as e:
             raise InputError(f"expected a writable archive file, got {e}", self.path) from None
         try:
-            self.db.execute("PRAGMA foreign_keys = ON")
-            mode = self.db.execute("PRAGMA journal_mode").fetchone()[0]
-            if create and str(mode).lower() != "wal":  # a reader leaves the file as it is
-                mode = self.db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-                if str(mode).lower() != "wal":
-                    raise InputError(f"expected the archive in WAL mode, the file system gave {mode!r}", self.path)
-            self._schema(create)
+            self._prepare(create)
         except sqlite3.DatabaseError as e:
             self.db.close()
             raise InputError(f"expected a recon archive (SQLite), got {e}", self.path) from None
         except InputError:
             self.db.close()
             raise
+
+    def _prepare(self, create: bool) -> None:
+        """Switch the file to WAL and create or check the schema. Changing the journal mode takes the file's
+        exclusive lock and does not go through SQLite's busy handler, so while another batch is opening or
+        writing the same new file this is retried (a short pause each time) until :data:`BUSY_TIMEOUT_S`."""
+        deadline = time.monotonic() + BUSY_TIMEOUT_S
+        while True:
+            try:
+                self.db.execute("PRAGMA foreign_keys = ON")
+                mode = self.db.execute("PRAGMA journal_mode").fetchone()[0]
+                if create and str(mode).lower() != "wal":  # a reader leaves the file as it is
+                    mode = self.db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+                    if str(mode).lower() != "wal":
+                        raise InputError(f"expected the archive in WAL mode, the file system gave {mode!r}",
+                                         self.path)
+                self._schema(create)
+                return
+            except sqlite3.OperationalError as e:
+                if not _busy(e) or time.monotonic() > deadline:
+                    raise
+                time.sleep(_RETRY_PAUSE_S)
 
     def __enter__(self) -> Archive:
         return self
@@ -146,11 +169,13 @@ class Archive:
 
     def _schema(self, create: bool) -> None:
         version = self.db.execute("PRAGMA user_version").fetchone()[0]
-        self._check_version(version)
         if version == SCHEMA_VERSION:
             return
         if not create:
+            self._check_version(version)
             raise InputError("expected a recon archive, got an empty SQLite file", self.path)
+        # version and tables are read together only inside the write transaction: between two reads out
+        # here, another batch may commit a whole new schema
         with self._transaction():  # another batch may be creating it at the same instant
             version = self.db.execute("PRAGMA user_version").fetchone()[0]
             self._check_version(version)
