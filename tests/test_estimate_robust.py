@@ -6,6 +6,8 @@
 - A dynamics-mode opening far from the truth makes the filter diverge on the coarse grid; the
   innovation covariance then stops being positive definite. The update must not divide by zero, the
   opening search must drop that opening, and a pass where every opening diverges says so.
+- The alignment fit's Gauss-Newton search stays inside the physical range: a pass whose crosstalk
+  feedback fills the field with switching steps drove the time-tag offset to -5 and -9.5 s.
 - The judge joins the rate history to the reference field by the nearest row, since the estimator
   reports the instants corrected by the time-tag offset it fitted.
 """
@@ -18,8 +20,10 @@ import numpy as np
 import pytest
 from test_estimate_truth import INERTIA, make_truth
 
+from recon.calibrate import MAX_OFFSET_S
 from recon.core import nearest_rows
 from recon.estimate import FilterDiverged, NoiseModel
+from recon.estimate.alignment import AlignmentPrior, AlignmentResult, fit_alignment
 from recon.estimate.dynamics_fit import forward_run
 from recon.estimate.dynamics_mode import _problem
 from recon.estimate.gyro_mode import _likelihood, _solve
@@ -122,3 +126,36 @@ def test_chatter_passes_of_the_scorecard_run_to_a_verdict(tmp_path, seed):
     # the crosstalk left in the field spoils the gyro's kinematic test, but the gyro still carries the
     # turn in every part of the pass: untestable, not dead (seed 72001 was called dead before)
     assert "gyro_dead" not in codes
+
+
+def _linear_innovations(theta_true, time_true, sigma=0.05):
+    """Whitened innovations of a linear model in (theta, time): a stand-in for the filter run whose
+    minimum sits where the caller puts it (rad, s)."""
+    rng = np.random.default_rng(5)
+    a = rng.normal(size=(600, 3)) * 2000.0  # 1/rad: well observed
+    g = rng.normal(size=600) * 10.0  # 1/s
+    noise = rng.normal(size=600) * sigma
+
+    def evaluate(params):
+        return a @ (params["theta"] - theta_true) + g * (params["time"][0] - time_true) + noise
+    return evaluate
+
+
+def test_alignment_fit_finds_a_well_observed_misalignment_and_offset():
+    """The guard on each Gauss-Newton step does not stop a fit the data determine."""
+    theta_true = np.deg2rad([0.6, -0.4, 0.8])
+    fit = fit_alignment(_linear_innovations(theta_true, 0.21), AlignmentPrior(time_offset_sigma_s=0.3))
+    assert np.allclose(fit.theta_rad, theta_true, atol=np.deg2rad(0.01))
+    assert fit.time_offset_s == pytest.approx(0.21, abs=0.01)
+
+
+def test_alignment_fit_keeps_the_time_offset_inside_the_search_range():
+    """A likelihood pulling the offset to -9 s (the chatter passes' innovations did): the offset stops
+    at the control law's search range and the misalignment within five prior sigmas."""
+    theta_true = np.deg2rad([9.0, 0.0, 0.0])
+    fit = fit_alignment(_linear_innovations(theta_true, -9.0), AlignmentPrior(time_offset_sigma_s=0.3))
+    assert fit.time_offset_s == pytest.approx(-MAX_OFFSET_S)
+    assert abs(fit.theta_rad[0]) <= 5 * np.deg2rad(1.0) + 1e-12
+    # pinned at the edge: the sigma spans the range and the summary says the data do not tell
+    result = AlignmentResult.from_fit(fit, AlignmentPrior(time_offset_sigma_s=0.3))
+    assert result.time_offset_sigma_s >= MAX_OFFSET_S and "edge" in result.to_summary()["time_offset_note"]

@@ -17,7 +17,7 @@ from .prior import prior_sigma_nT_per_A
 from .summary import (
     format_crosstalk_table,
 )
-from .timing import TimeOffset, mag_time_offset, time_offset_from_replay
+from .timing import MAX_OFFSET_S, TimeOffset, mag_time_offset, time_offset_from_replay
 
 __all__ = [
     "Calibration",
@@ -31,6 +31,7 @@ __all__ = [
     "fuse_crosstalk",
     "prior_sigma_nT_per_A",
     "TimeOffset",
+    "MAX_OFFSET_S",
     "mag_time_offset",
     "time_offset_from_replay",
 ]

@@ -37,6 +37,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..calibrate import MAX_OFFSET_S
+
 __all__ = ["AlignmentPrior", "AlignmentFit", "AlignmentResult", "fit_alignment", "sym_from_six", "six_from_sym",
            "DETERMINED_SHRINK", "GAUSS_NEWTON_STEPS"]
 
@@ -49,6 +51,14 @@ GAUSS_NEWTON_STEPS = 3
 # Forward-difference step, as a fraction of each parameter's prior sigma.
 DIFFERENCE_STEP = 0.1
 BLOCK_SIZE = {"theta": 3, "scale": 6, "time": 1, "field": 3}
+# Gauss-Newton is guarded: a step moves no parameter more than STEP_SIGMAS of its prior sigma, is halved
+# up to HALVINGS times until the penalised cost falls (else the fit stops), and the parameters stay
+# within BLOCK_BOUND_SIGMAS prior sigmas of the prior mean; the time-tag offset within the control
+# law's search range, +-MAX_OFFSET_S. Unguarded, a pass whose crosstalk feedback fills the field with
+# switching steps drove the offset to -5 and -9.5 s (common practice, no source, for the three values).
+STEP_SIGMAS = 3.0
+HALVINGS = 4
+BLOCK_BOUND_SIGMAS = 5.0
 
 
 @dataclass(frozen=True)
@@ -176,6 +186,12 @@ def _gauss_newton(evaluate: Callable[[dict], np.ndarray], blocks: tuple[str, ...
     def unpack(x):
         return dict(zip(blocks, np.split(x, np.cumsum(sizes)[:-1]), strict=True))
 
+    bound = np.concatenate([np.full(1, MAX_OFFSET_S) if n == "time" else BLOCK_BOUND_SIGMAS * prior.block(n)[1]
+                            for n in blocks])
+
+    def cost(x, e):
+        return float(e @ e) + float(np.sum(((x - x0) / s0) ** 2))
+
     x = x0.copy()
     e = evaluate(unpack(x))
     info = np.diag(1.0 / s0 ** 2)
@@ -188,8 +204,16 @@ def _gauss_newton(evaluate: Callable[[dict], np.ndarray], blocks: tuple[str, ...
         info = jac.T @ jac + np.diag(1.0 / s0 ** 2)
         grad = jac.T @ e + (x - x0) / s0 ** 2
         step = np.linalg.solve(info, -grad)
-        x = x + step
-        e = evaluate(unpack(x))
+        step *= min(1.0, float(np.min(STEP_SIGMAS * s0 / np.maximum(np.abs(step), 1e-300))))  # trust region
+        for _half in range(HALVINGS + 1):  # a step is taken only when it lowers the penalised cost
+            trial = np.clip(x + step, x0 - bound, x0 + bound)
+            e_trial = evaluate(unpack(trial))
+            if np.all(np.isfinite(e_trial)) and cost(trial, e_trial) < cost(x, e):
+                break
+            step = step / 2.0
+        else:
+            break  # no step lowers the cost: x is the minimum as far as these steps can tell
+        x, e = trial, e_trial
         if np.all(np.abs(step) <= 0.1 * np.sqrt(np.diag(np.linalg.inv(info)))):
             break
     return x, info, float(e @ e), int(e.size)
@@ -261,9 +285,12 @@ class AlignmentResult:
                 f"{fit.scale_penalty:.0f}); their prior ({100 * prior.scale_sigma:.0f} % scale, "
                 f"{100 * prior.skew_sigma:.0f} % skew) enters the attitude's uncertainty")
         scale, tm = fit.part("scale"), fit.part("time")
+        offset = None if tm is None else float(tm[0][0])
+        offset_sigma = None if tm is None else float(np.sqrt(tm[1][0, 0]))
+        if offset is not None and abs(offset) >= MAX_OFFSET_S * (1.0 - 1e-9):
+            offset_sigma = max(offset_sigma, MAX_OFFSET_S)  # pinned at the range's edge: the data do not tell
         return cls(fit.theta_rad, fit.theta_cov, source, None if scale is None else sym_from_six(scale[0]),
-                   None if scale is None else scale[1], note, None if tm is None else float(tm[0][0]),
-                   None if tm is None else float(np.sqrt(tm[1][0, 0])), fit.chi2_per_dof)
+                   None if scale is None else scale[1], note, offset, offset_sigma, fit.chi2_per_dof)
 
     def to_summary(self) -> dict:
         """The alignment entries of summary.json's calibration block (angles in degrees)."""
@@ -278,4 +305,7 @@ class AlignmentResult:
         if self.time_offset_s is not None:
             out.update({"time_offset_s": self.time_offset_s, "time_offset_s_sigma": self.time_offset_sigma_s,
                         "time_offset_method": "filter innovations"})
+            if abs(self.time_offset_s) >= MAX_OFFSET_S * (1.0 - 1e-9):
+                out["time_offset_note"] = (f"at the edge of the searched range (+-{MAX_OFFSET_S:g} s): the "
+                                           f"innovations do not determine it; its sigma spans the range")
         return out
