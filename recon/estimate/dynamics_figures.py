@@ -21,8 +21,9 @@ class DynamicsModel:
     fitted : bool, True when the fit passed its likelihood-ratio test and is used; False when the
         mission file's model was kept (the sigmas are then the fit's: how far the data allow the model
         to be from the mission file's, which the stated attitude covariance carries)
-    likelihood_ratio : float; threshold : float, its chi-square threshold (1 % false alarm); free : int,
-        parameters fitted
+    likelihood_ratio : float, the test's statistic (on the coarse grid the opening search fits on; the
+        refit on all rows that follows an accepted fit only refines it); threshold : float, its
+        chi-square threshold (1 % false alarm); free : int, parameters fitted
     inertia_kg_m2, inertia_sigma_kg_m2 : (3, 3), at the mission file's trace (the overall scale trades
         against the coil scale and is not estimated)
     residual_dipole_Am2, residual_dipole_sigma_Am2 : (3,), body frame
