@@ -106,6 +106,11 @@ class AlignmentPrior:
         return np.zeros(1), np.full(1, self.time_offset_sigma_s or 0.3)
 
 
+def _at_range_edge(offset_s: float) -> bool:
+    """Whether a fitted time-tag offset is pinned at the +-MAX_OFFSET_S bound of the guarded fit."""
+    return abs(offset_s) >= MAX_OFFSET_S * (1.0 - 1e-9)
+
+
 def sym_from_six(e: np.ndarray) -> np.ndarray:
     """Symmetric 3x3 from (xx, yy, zz, xy, xz, yz)."""
     return np.array([[e[0], e[3], e[4]], [e[3], e[1], e[5]], [e[4], e[5], e[2]]])
@@ -287,8 +292,8 @@ class AlignmentResult:
         scale, tm = fit.part("scale"), fit.part("time")
         offset = None if tm is None else float(tm[0][0])
         offset_sigma = None if tm is None else float(np.sqrt(tm[1][0, 0]))
-        if offset is not None and abs(offset) >= MAX_OFFSET_S * (1.0 - 1e-9):
-            offset_sigma = max(offset_sigma, MAX_OFFSET_S)  # pinned at the range's edge: the data do not tell
+        if offset is not None and _at_range_edge(offset):
+            offset_sigma = max(offset_sigma, MAX_OFFSET_S)  # the data do not tell
         return cls(fit.theta_rad, fit.theta_cov, source, None if scale is None else sym_from_six(scale[0]),
                    None if scale is None else scale[1], note, offset, offset_sigma, fit.chi2_per_dof)
 
@@ -305,7 +310,7 @@ class AlignmentResult:
         if self.time_offset_s is not None:
             out.update({"time_offset_s": self.time_offset_s, "time_offset_s_sigma": self.time_offset_sigma_s,
                         "time_offset_method": "filter innovations"})
-            if abs(self.time_offset_s) >= MAX_OFFSET_S * (1.0 - 1e-9):
+            if _at_range_edge(self.time_offset_s):
                 out["time_offset_note"] = (f"at the edge of the searched range (+-{MAX_OFFSET_S:g} s): the "
                                            f"innovations do not determine it; its sigma spans the range")
         return out
