@@ -63,9 +63,10 @@ _SCHEMA = (
 
 
 def _busy(e: sqlite3.OperationalError) -> bool:
-    """Whether SQLite refused because another connection holds the file (worth waiting for)."""
-    text = str(e).lower()
-    return "locked" in text or "busy" in text
+    """Whether SQLite refused because another connection holds the file (worth waiting for): its primary
+    result code (the low byte of an extended one such as SQLITE_BUSY_RECOVERY) is BUSY or LOCKED."""
+    code = getattr(e, "sqlite_errorcode", None)
+    return code is not None and (code & 0xFF) in (sqlite3.SQLITE_BUSY, sqlite3.SQLITE_LOCKED)
 
 
 def _now_utc() -> str:
