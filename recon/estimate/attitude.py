@@ -42,10 +42,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import NS_PER_S, InputError, held_values, white_noise_from_differences
+from ..core import NS_PER_S, InputError, white_noise_from_differences
 from .alignment import AlignmentPrior
 from .clipping import with_clipped_solved
-from .coil_torque import CoilTiming
+from .coil_torque import CoilTiming, coil_schedule
 from .consistency import consistency_anomaly
 from .dynamics_mode import estimate_dynamics
 from .gyro_check import GyroCheck, check_gyro
@@ -149,7 +149,8 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
         inputs = with_clipped_solved(dataclasses.replace(inputs, gyro_clipping=GyroClipping(
             w_gyro, clipped, np.asarray(gyro_sensor_to_body, float), float(gyro_full_scale_rad_s),
             inertia_kg_m2=None if inertia_kg_m2 is None else _inertia(inertia_kg_m2),
-            m_body_Am2=_coil_dipole_at(t_gyro_ns, coil_t_utc, i_coil_A, dipole_per_amp))), noise)
+            m_body_Am2=_coil_dipole_at(t_gyro_ns, t_mag_ns[0], coil_t_utc, i_coil_A, dipole_per_amp,
+                                        coil_timing))), noise)
     if noise.mag_nT is None and field_residual_rms_nT is not None:
         noise = dataclasses.replace(noise, mag_nT=white_noise_from_differences(b_body_nT[inputs.usable]))
     noise, raised = field_model_from_residual(noise, field_residual_rms_nT)
@@ -174,14 +175,16 @@ def estimate_attitude(t_mag_utc: np.ndarray, b_body_nT: np.ndarray, b_ref_gcrf_n
     return hist
 
 
-def _coil_dipole_at(t_ns: np.ndarray, coil_t_utc, i_coil_A, dipole_per_amp) -> np.ndarray | None:
-    """The coils' dipole C i at the given times (current held from each log row; zero before the log
-    and where a current is missing), A m^2; None without a coil log."""
+def _coil_dipole_at(t_ns: np.ndarray, t_epoch_ns: int, coil_t_utc, i_coil_A, dipole_per_amp,
+                    timing: CoilTiming | None) -> np.ndarray | None:
+    """The coils' applied dipole over each step between the given times (the applied-current profile:
+    latency, off windows; :mod:`.coil_torque`), A m^2; None without a coil log. Without a tick grid
+    the log's stamps stand for the switching instants."""
     if coil_t_utc is None or i_coil_A is None or dipole_per_amp is None:
         return None
-    t_coil = _times_ns(coil_t_utc, "coil_t_utc")
-    i = held_values(t_coil, np.asarray(i_coil_A, float), t_ns)
-    return np.nan_to_num(i) @ np.asarray(dipole_per_amp, float).T
+    t_s = (t_ns - t_epoch_ns) / NS_PER_S
+    sched = coil_schedule(t_epoch_ns, float(t_s[-1]), coil_t_utc, np.asarray(i_coil_A, float), dipole_per_amp, timing)
+    return sched.dipole_over_steps(t_s, sched.latency_prior_s[0])
 
 
 # ------------------------------------------------------------------------------------ input checks

@@ -8,22 +8,21 @@ axes, by weighted least squares from what is still known there:
 - the measured field's kinematics: in body axes ``db/dt = -w x b + A db_ref/dt``, so
   ``[b x] w = db/dt - A db_ref/dt`` gives the two components of w across the field (the slope of the
   field over one second, with the magnetometer's noise);
-- the rate carried through the clipped run by Euler's equations from the unclipped samples that bound
-  it, with the covariance the inertia's and the torque's uncertainty give it (:mod:`.euler_prior`; it
-  carries the component along the field when the other two say nothing of it). Without an inertia,
-  the rate interpolated between those samples, with an uncertainty growing with the distance to the
-  nearer one at the pass's typical angular acceleration (it cannot see a rate beyond the range, so
-  it is a poorer stand-in).
+- between samples, Euler's equations, with the coils' torque scale, a residual dipole and the gyro's
+  bias estimated along (:mod:`.rate_smoother`: a Kalman smoother on the rate through each clipped
+  run). Without an inertia, each sample is solved alone with the rate interpolated between the run's
+  unclipped ends as a prior, its uncertainty growing with the distance to the nearer one at the
+  pass's typical angular acceleration (a poorer stand-in: it cannot see a rate beyond the range).
 
 The clipped components of the sample are replaced by the solution (held to the bound: a solution that
-falls inside the range is set to the full scale). The solution's error is not white: across the field
-it comes from the field's slope over ``2 SLOPE_HALF_WIDTH_S`` seconds, along the field from the
-interpolation across the whole clipped run, so it is nearly the same from one sample to the next over
-those times. An error of variance ``s^2`` held for a time ``tau`` turns the attitude as much as white
-noise of density ``2 s^2 tau`` would over the same time, so each sample carries the density
-``2 max(s_along^2 tau_along, s_across^2 tau_across)`` (``tau_along`` half the clipped run,
-``tau_across`` the slope's window) for the filter to add to its attitude process noise while it uses
-that sample. With no attitude yet
+falls inside the range is set to the full scale); they are the rate plus the bias, read by no gyro,
+so the gyro's scale correction leaves them alone (:func:`recon.estimate.nuisance.corrected_inputs`).
+The solution's error is not white: it comes from the torque's and the bias's errors, the same over
+the whole run, and from the field's slope over ``2 SLOPE_HALF_WIDTH_S`` seconds. An error of
+variance ``s^2`` held for a time ``tau`` turns the attitude as much as white noise of density
+``2 s^2 tau`` would over the same time, so each sample carries the density ``2 s^2 tau`` (``s^2`` the
+largest eigenvalue of the solution's covariance, ``tau`` half the clipped run, at least the slope's
+window) for the filter to add to its attitude process noise while it uses that sample. With no attitude yet
 the field's own turn ``A db_ref/dt`` is left out (about 80 nT/s against the several thousand of a fast
 tumble); the caller solves again with the filter's attitude and bias.
 
@@ -42,7 +41,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from ..core import NS_PER_S, cross_matrices, local_slope, white_noise_from_differences
-from .euler_prior import euler_prior
+from .rate_smoother import smooth_clipped_rate
 from .types import NoiseModel, PassInputs
 
 __all__ = ["ClippedGyro", "reconstruct_clipped", "with_clipped_solved", "SLOPE_HALF_WIDTH_S"]
@@ -88,7 +87,7 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
                         b_body_nT: np.ndarray, sigma_mag_nT: float, arw_rad_sqrt_s: float, accel_rms_rad_s2: float,
                         *, beta_body_rad_s: np.ndarray | None = None, q_body_from_gcrf: np.ndarray | None = None,
                         b_ref_gcrf_nT: np.ndarray | None = None, inertia_kg_m2: np.ndarray | None = None,
-                        m_body_Am2: np.ndarray | None = None) -> ClippedGyro:
+                        m_body_Am2: np.ndarray | None = None, gyro_scale_E: np.ndarray | None = None) -> ClippedGyro:
     """Solve the clipped axes of a gyro log (see the module docstring).
 
     Parameters
@@ -104,6 +103,8 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
     inertia_kg_m2 : (3, 3) nominal inertia, for Euler's equations through a clipped run (the bounds'
         interpolation without it); m_body_Am2 : (G, 3) the coils' dipole at the gyro samples (zero
         without it)
+    gyro_scale_E : (3, 3) the gyro's scale and misalignment when known (the unclipped axes read
+        ``(I + E)(w + beta)``); the clipped axes' values returned are the rate plus bias, unscaled
 
     Returns
     -------
@@ -116,50 +117,75 @@ def reconstruct_clipped(t_gyro_s: np.ndarray, w_gyro_body: np.ndarray, clipped_s
     m = np.asarray(sensor_to_body, float)
     beta = np.zeros((len(t_gyro_s), 3)) if beta_body_rad_s is None else np.asarray(beta_body_rad_s, float)
     w_true_logged = np.asarray(w_gyro_body, float) - beta
-    prior, prior_var, run_s = _bounds_prior(t_gyro_s, w_true_logged, clipped_any, accel_rms_rad_s2)
     dt = float(np.median(np.diff(t_gyro_s)))
     g_var = (arw_rad_sqrt_s or 1e-4) ** 2 / dt
-    prior_cov = np.eye(3)[None] * prior_var[:, None, None]
     if inertia_kg_m2 is not None:
-        b_at = _field_at(t_gyro_s, t_mag_s, b_body_nT)
-        m_at = np.zeros((len(t_gyro_s), 3)) if m_body_Am2 is None else m_body_Am2
-        prior, prior_cov = euler_prior(t_gyro_s, w_true_logged, clipped_any, inertia_kg_m2, m_at, b_at, g_var)
-    c, c_var = _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t_gyro_s[clipped_any], q_body_from_gcrf,
-                                 b_ref_gcrf_nT)
+        w_hat, bias, cov, run_s = _smoothed(t_gyro_s, np.asarray(w_gyro_body, float), clipped_sensor, m, g_var,
+                                            t_mag_s, b_body_nT, sigma_mag_nT, q_body_from_gcrf, b_ref_gcrf_nT,
+                                            inertia_kg_m2, m_body_Am2, beta_body_rad_s, gyro_scale_E)
+        # the filter takes its own bias out of what it is given: without one, the smoother's stands in
+        beta = beta if beta_body_rad_s is not None else bias
+    else:
+        w_hat, cov, run_s = _per_sample(t_gyro_s, w_true_logged, clipped_sensor, m, g_var, t_mag_s, b_body_nT,
+                                        sigma_mag_nT, q_body_from_gcrf, b_ref_gcrf_nT, accel_rms_rad_s2)
     idx = np.flatnonzero(clipped_any)
     w_out = np.asarray(w_gyro_body, float).copy()
     extra = np.zeros(len(t_gyro_s))
     w_sensor_logged = w_out @ m  # rows of M^T w
-    for k, g in enumerate(idx):
-        info = np.linalg.inv(prior_cov[g]) if np.all(np.isfinite(prior_cov[g])) else np.zeros((3, 3))
-        rhs = info @ prior[g]
-        bx, d = c[k]
-        if np.all(np.isfinite(bx)) and np.all(np.isfinite(d)):
-            info += bx.T @ bx / c_var[k]
-            rhs += bx.T @ d / c_var[k]
-        for j in np.flatnonzero(~clipped_sensor[g]):
-            row = m[:, j]
-            info += np.outer(row, row) / g_var
-            rhs += row * (w_sensor_logged[g, j] - row @ beta[g]) / g_var
-        cov = np.linalg.inv(info)
-        w_hat = cov @ rhs
-        w_sensor = (w_hat + beta[g]) @ m
+    for g in idx:
+        w_sensor = (w_hat[g] + beta[g]) @ m
         for j in np.flatnonzero(clipped_sensor[g]):
             sign = np.sign(w_sensor_logged[g, j])
             w_sensor_logged[g, j] = sign * max(sign * w_sensor[j], full_scale_rad_s)
         w_out[g] = m @ w_sensor_logged[g]
-        # along the field the error is the interpolation's, the same over the run; across it the slope's
-        along = _field_unit(bx) if np.all(np.isfinite(bx)) else np.zeros(3)
-        var_along = float(along @ cov @ along) if along.any() else float(np.max(np.diag(cov)))
-        var_across = max(float(np.trace(cov)) - var_along, 0.0) / 2.0
-        extra[g] = 2.0 * max(var_along * max(0.5 * run_s[g], 2.0 * SLOPE_HALF_WIDTH_S),
-                             var_across * 2.0 * SLOPE_HALF_WIDTH_S)
+        # the error is nearly the same over the run (its torque and inertia) or the slope's window
+        extra[g] = 2.0 * float(np.max(np.linalg.eigvalsh(cov[g]))) * max(0.5 * run_s[g], 2.0 * SLOPE_HALF_WIDTH_S)
     frac = n / len(t_gyro_s)
     note = (f"{n} gyro samples ({100 * frac:.1f} %) had an axis at full scale "
             f"({np.degrees(full_scale_rad_s):.3g} deg/s); "
             f"their clipped axes were solved from the field's kinematics and the unclipped axes (median "
             f"rate error {np.degrees(np.sqrt(np.median(extra[idx]))):.3g} deg/sqrt(s))")
     return ClippedGyro(w_out, extra, n, frac, note)
+
+
+def _smoothed(t, w_logged, clipped_sensor, m, g_var, t_mag_s, b_body_nT, sigma_mag_nT, q, b_ref, inertia, m_body,
+              beta, gyro_scale_e):
+    """The rate smoother's rate, gyro bias, rate covariance and run length at every sample
+    (:mod:`.rate_smoother`)."""
+    dt = float(np.median(np.diff(t)))
+    every = max(int(round(2.0 * SLOPE_HALF_WIDTH_S / dt)), 1)
+    at = np.arange(0, len(t), every)
+    c, c_var = _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t[at], q, b_ref)
+    constraints = {int(g): cd for g, cd in zip(at, c, strict=True)
+                   if np.all(np.isfinite(cd[0])) and np.all(np.isfinite(cd[1]))}
+    m_at = np.zeros((len(t), 3)) if m_body is None else m_body
+    rate = smooth_clipped_rate(t, w_logged, clipped_sensor, m, g_var, constraints,
+                               float(c_var[0]) if len(c_var) else 1.0, inertia, m_at, _field_at(t, t_mag_s, b_body_nT),
+                               beta, gyro_scale_e)
+    return rate.w_rad_s, rate.bias_rad_s, rate.cov, rate.run_s
+
+
+def _per_sample(t, w_true, clipped_sensor, m, g_var, t_mag_s, b_body_nT, sigma_mag_nT, q, b_ref, accel):
+    """Without an inertia: each clipped sample solved alone from its unclipped axes, the field's slope
+    and the rate interpolated between the run's ends (rate, covariance, run length)."""
+    clipped_any = clipped_sensor.any(axis=1)
+    prior, prior_var, run_s = _bounds_prior(t, w_true, clipped_any, accel)
+    c, c_var = _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t[clipped_any], q, b_ref)
+    w_hat, cov = w_true.copy(), np.zeros((len(t), 3, 3))
+    w_axes = w_true @ m
+    for k, g in enumerate(np.flatnonzero(clipped_any)):
+        info = np.eye(3) / prior_var[g] if np.isfinite(prior_var[g]) else np.zeros((3, 3))
+        rhs = info @ prior[g]
+        bx, d = c[k]
+        if np.all(np.isfinite(bx)) and np.all(np.isfinite(d)):
+            info += bx.T @ bx / c_var[k]
+            rhs += bx.T @ d / c_var[k]
+        for j in np.flatnonzero(~clipped_sensor[g]):
+            info += np.outer(m[:, j], m[:, j]) / g_var
+            rhs += m[:, j] * w_axes[g, j] / g_var
+        cov[g] = np.linalg.inv(info)
+        w_hat[g] = cov[g] @ rhs
+    return w_hat, cov, run_s
 
 
 def _field_at(t_query: np.ndarray, t_mag_s: np.ndarray, b_body_nT: np.ndarray) -> np.ndarray:
@@ -198,7 +224,7 @@ def _field_constraint(t_mag_s, b_body_nT, sigma_mag_nT, t_query, q, b_ref):
 
 
 def with_clipped_solved(inputs: PassInputs, noise: NoiseModel, *, beta_gyro_body: np.ndarray | None = None,
-                        q_mag: np.ndarray | None = None) -> PassInputs:
+                        q_mag: np.ndarray | None = None, gyro_scale_E: np.ndarray | None = None) -> PassInputs:
     """The pass's inputs with the gyro's clipped axes solved (``inputs.gyro_clipping`` holds the log as
     it was), given the gyro's bias at its samples and the attitude at the magnetometer's when known."""
     c = inputs.gyro_clipping
@@ -216,6 +242,6 @@ def with_clipped_solved(inputs: PassInputs, noise: NoiseModel, *, beta_gyro_body
                               t_m[ok], inputs.b_body_nT[ok], sigma_mag, arw, max(accel, 1e-4),
                               beta_body_rad_s=beta_gyro_body, q_body_from_gcrf=None if q_mag is None else q_mag[ok],
                               b_ref_gcrf_nT=None if q_mag is None else inputs.b_ref_gcrf_nT[ok],
-                              inertia_kg_m2=c.inertia_kg_m2, m_body_Am2=c.m_body_Am2)
+                              inertia_kg_m2=c.inertia_kg_m2, m_body_Am2=c.m_body_Am2, gyro_scale_E=gyro_scale_E)
     return dataclasses.replace(inputs, w_gyro_body_rad_s=rec.w_body_rad_s, gyro_extra_psd=rec.extra_psd_rad2_s,
                                gyro_clipping=dataclasses.replace(c, note=rec.note))
