@@ -67,10 +67,14 @@ def _run_allowing_bias_step(grid: StepGrid, inputs: PassInputs, noise: NoiseMode
         return run_filter(MODE_GYRO, grid.t_s, u, grid.is_mag, grid.z, grid.r, prm, init, out_idx,
                           len(grid.mag_pos))
 
+    # the clipped axes' solved values are no gyro readings: samples at full scale are left out
+    clip = inputs.gyro_clipping
+
     def find_step(run_: FilterRun) -> BiasStep | None:
         return find_bias_step(grid.t_s[grid.mag_pos][usable], inputs.b_body_nT[grid.first_row:][usable],
                               inputs.b_ref_gcrf_nT[grid.first_row:][usable], run_.q_s[grid.mag_pos][usable],
-                              grid.t_gyro_s, inputs.w_gyro_body_rad_s, noise.gyro_bias_walk_rad_s_sqrt_s)
+                              grid.t_gyro_s, inputs.w_gyro_body_rad_s, noise.gyro_bias_walk_rad_s_sqrt_s,
+                              full_scale_rad_s=None if clip is None else clip.full_scale_rad_s)
 
     result = run(grid.u)
     step = find_step(result)
@@ -254,6 +258,9 @@ def estimate_gyro(inputs: PassInputs, noise: NoiseModel, init_window_s: float, r
     report("sensor alignment (maximum likelihood)", 0.35)
     fit = fit_alignment(_likelihood(inputs, sol, prm), prior)
     corr = Corrections(fit.theta_rad, fit.E, fit.time_offset_s, fit.field_offset_nT)
+    if inputs.gyro_clipping is not None:
+        # the clipped axes once more, in the corrected field and with the gyro's scale
+        inputs = _clipped_again(inputs, _solve(inputs, corr, noise, prm, init_window_s, report), noise, corr)
     report("unmodelled field (maximum likelihood)", 0.6)
     noise, prm, field = _with_field_fit(inputs, sol, corr, noise, prm, grid0.dt_gyro_s, True, given_field_nT)
     source = dataclasses.replace(source, field_model_nT="maximum likelihood on this pass",
@@ -289,15 +296,23 @@ def _with_field_fit(inputs: PassInputs, sol: GyroSolution, corr: Corrections, no
     return noise, filter_params(noise, dt_gyro_s, None), field
 
 
-def _clipped_again(inputs: PassInputs, sol: GyroSolution, noise: NoiseModel) -> PassInputs:
-    """The gyro's clipped axes solved again with a solution's bias (at the gyro samples) and attitude."""
+def _clipped_again(inputs: PassInputs, sol: GyroSolution, noise: NoiseModel, corr: Corrections | None = None
+                   ) -> PassInputs:
+    """The gyro's clipped axes solved again with a solution's bias (at the gyro samples) and attitude,
+    and with the corrections when known (the field rotated and re-stamped, the gyro's scale in its
+    reading of the unclipped axes); the pass's inputs (uncorrected) with them."""
     g = sol.grid
     t_mag = g.t_s[g.mag_pos]
     beta = np.column_stack([np.interp(g.t_gyro_s, t_mag, sol.run.v_s[g.mag_pos][:, a]) for a in range(3)])
     q = np.full((len(inputs.t_mag_ns), 4), np.nan)
     q[g.first_row:] = sol.run.q_s[g.mag_pos]
     q[:g.first_row] = q[g.first_row]
-    return with_clipped_solved(inputs, noise, beta_gyro_body=beta, q_mag=q)
+    if corr is None:
+        return with_clipped_solved(inputs, noise, beta_gyro_body=beta, q_mag=q)
+    fixed = dataclasses.replace(corrected_inputs(inputs, corr), w_gyro_body_rad_s=inputs.w_gyro_body_rad_s)
+    solved = with_clipped_solved(fixed, noise, beta_gyro_body=beta, q_mag=q, gyro_scale_E=corr.E)
+    return dataclasses.replace(inputs, w_gyro_body_rad_s=solved.w_gyro_body_rad_s,
+                               gyro_extra_psd=solved.gyro_extra_psd, gyro_clipping=solved.gyro_clipping)
 
 
 def _history(sol: GyroSolution, smoothed, forward, noise, source, alignment) -> AttitudeHistory:

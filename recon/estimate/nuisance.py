@@ -79,7 +79,7 @@ def corrected_inputs(inputs: PassInputs, c: Corrections) -> PassInputs:
     b = inputs.b_body_nT if not np.any(c.theta_rad) else Rotation.from_rotvec(c.theta_rad).apply(inputs.b_body_nT)
     w = inputs.w_gyro_body_rad_s
     if w is not None and np.any(c.E):
-        w = np.linalg.solve(np.eye(3) + c.E, w.T).T
+        w = _scale_taken_out(w, c.E, inputs.gyro_clipping)
     t = inputs.t_mag_ns
     ref = inputs.b_ref_gcrf_nT
     if c.time_offset_s:
@@ -91,6 +91,23 @@ def corrected_inputs(inputs: PassInputs, c: Corrections) -> PassInputs:
     if np.any(c.field_nT):
         ref = ref + np.asarray(c.field_nT, float)[None, :]
     return dataclasses.replace(inputs, t_mag_ns=t, b_body_nT=b, w_gyro_body_rad_s=w, b_ref_gcrf_nT=ref)
+
+
+def _scale_taken_out(w: np.ndarray, e: np.ndarray, clipping) -> np.ndarray:
+    """The gyro with its scale and misalignment ``(I + E)`` taken out. A clipped axis's value was
+    solved from the field and the body's dynamics (:mod:`.clipping`), not read by the gyro, so it
+    carries no scale error: in sensor axes the corrected sample ``s`` keeps it and takes the gyro's
+    own axes through ``(I + E_s) s = logged`` (``E_s = M^T E M``)."""
+    out = np.linalg.solve(np.eye(3) + e, w.T).T
+    if clipping is None or not clipping.clipped_sensor.any():
+        return out
+    m = clipping.sensor_to_body
+    rows = np.flatnonzero(clipping.clipped_sensor.any(axis=1))
+    flags = clipping.clipped_sensor[rows]
+    a = np.where(flags[:, :, None], np.eye(3)[None], (np.eye(3) + m.T @ e @ m)[None])
+    s = np.linalg.solve(a, (w[rows] @ m)[:, :, None])[:, :, 0]
+    out[rows] = s @ m.T
+    return out
 
 
 def consider_covariance(q_nominal: np.ndarray, w_nominal: np.ndarray,
