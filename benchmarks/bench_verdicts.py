@@ -204,7 +204,8 @@ def oracle_scores(sim, mission_path: Path) -> dict:
                              alignment_prior=given,
                              mode=mission.estimator.mode, inertia_kg_m2=sim.inertia_kg_m2,
                              coil_t_utc=sim.tick_time_utc, i_coil_A=sim.i_cmd_A,
-                             dipole_per_amp=mission.coils.dipole_per_amp, r_gcrf_km=ref.r_gcrf_km, **kw)
+                             dipole_per_amp=mission.coils.dipole_per_amp, r_gcrf_km=ref.r_gcrf_km,
+                             coil_timing=_coil_timing(mission), **kw)
     k = np.searchsorted(sim.time_utc, hist.time_utc)
     e = np.rad2deg((Rotation.from_quat(hist.q_body_from_gcrf) * Rotation.from_quat(sim.q_body_from_gcrf[k]).inv())
                    .as_rotvec())
@@ -212,6 +213,17 @@ def oracle_scores(sim, mission_path: Path) -> dict:
     rms = float(np.sqrt(np.mean(np.sum(e ** 2, axis=1))))
     return {"oracle_attitude_rms_deg": rms, "oracle_mode": hist.mode,
             "oracle_error_over_sigma": rms / float(np.sqrt(np.mean(np.sum(s ** 2, axis=1))))}
+
+
+def _coil_timing(mission):
+    """When the coil commands switch, as the mission file says (the same the pipeline gives the estimator)."""
+    from recon.estimate import CoilTiming
+
+    ctl, coils = mission.controller, mission.coils
+    if ctl is None or coils is None:
+        return None
+    return CoilTiming(period_s=ctl.period_s, first_tick_utc=ctl.first_tick, off_window_s=coils.off_window_s,
+                      mag_sampling=coils.mag_sampling)
 
 
 def score_pass(family: Family, seed: int, duration_s: float | None, oracle: bool = False) -> dict:
