@@ -8,10 +8,10 @@ import pytest
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 
-from recon.estimate.clipping import reconstruct_clipped
 from recon.estimate import rate_smoother
-from recon.estimate.rate_smoother import smooth_clipped_rate
+from recon.estimate.clipping import reconstruct_clipped
 from recon.estimate.field_noise import SIGMA_BOUNDS_nT, fit_field_noise
+from recon.estimate.rate_smoother import smooth_clipped_rate
 
 # an asymmetric small-satellite inertia (kg m^2), off-diagonal terms included (our own)
 J = np.array([[0.060, 0.002, -0.001], [0.002, 0.080, 0.003], [-0.001, 0.003, 0.030]])
@@ -91,7 +91,8 @@ def _smoothed_slow_spin(torque_sigma: float, monkeypatch):
     p = _clipped_pass(1.10, seed=5, w0=(0.01, 0.02, 0.17), duration_s=300.0, gain=3e5)
     t, w, b_nT, rng = p["t"], p["w"], p["b_true_nT"], np.random.default_rng(6)
     # the field fixed in inertial space: db/dt = -w x b, so [b x] w = db/dt
-    constraints = {g: (_cross(b_nT[g]), np.cross(b_nT[g], w[g]) + rng.normal(0.0, 50.0, 3)) for g in range(0, len(t), 20)}
+    constraints = {g: (_cross(b_nT[g]), np.cross(b_nT[g], w[g]) + rng.normal(0.0, 50.0, 3))
+                   for g in range(0, len(t), 20)}
     rate = smooth_clipped_rate(t, p["logged"], p["clipped"], np.eye(3), p["arw"] ** 2 / 0.05, constraints, 50.0 ** 2,
                                J, p["m"], b_nT)
     c = p["clipped"].any(axis=1)
